@@ -1,0 +1,3 @@
+from tightfit.cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,1 @@
+"""Data sources (built-in synthetic parts, image folders, Fashion-MNIST) and deterministic splits."""

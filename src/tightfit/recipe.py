@@ -1,0 +1,225 @@
+"""TOML recipes → frozen dataclasses, with one-line errors that name the key.
+
+A recipe has four parts: top-level ``name``/``seed``, ``[data]``, ``[space]`` with
+``[[space.stage]]`` entries, and ``[train]``. See recipes/*.toml for examples.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import tomllib
+from dataclasses import asdict, dataclass, fields
+from pathlib import Path
+from typing import Any
+
+from tightfit.errors import UserError
+from tightfit.space import ACTIVATIONS, SpaceSpec, StageSpec
+
+DATA_SOURCES = ("builtin", "folder", "fashion-mnist")
+OPTIMIZERS = ("sgd", "adamw")
+KERNEL_MODES = ("transform", "centre")
+
+
+@dataclass(frozen=True)
+class DataConfig:
+    source: str = "builtin"
+    path: str = ""                 # image folder root, or folder holding the Fashion-MNIST IDX files
+    image_size: int = 32
+    channels: int = 3
+    samples: int = 12000           # builtin only: images generated in total
+    val_fraction: float = 0.1      # carved from the training data
+    test_fraction: float = 0.15    # builtin/folder only (Fashion-MNIST has its own test set)
+    flip: bool = True              # random horizontal flips while training
+    shift: int = 2                 # random translation in pixels while training
+
+
+@dataclass(frozen=True)
+class TrainConfig:
+    epochs: float = 3.0
+    batch_size: int = 128
+    optimizer: str = "sgd"
+    lr: float = 0.1
+    momentum: float = 0.9
+    weight_decay: float = 4e-5
+    warmup_epochs: float = 0.2
+    label_smoothing: float = 0.1
+    random_subnets: int = 2        # sandwich: largest + smallest + this many random subnets per step
+    distill: bool = True           # in-place distillation from the largest subnet
+    kernel_mode: str = "centre"    # "centre" crop or learned "transform" (Cai et al. 2020)
+    channels_last: bool = False
+    recalibration_batches: int = 20
+    checkpoint_every: int = 0      # steps; 0 = only at the end of every epoch
+    eval_batch_size: int = 512
+
+
+@dataclass(frozen=True)
+class Recipe:
+    name: str
+    seed: int
+    data: DataConfig
+    space: SpaceSpec
+    train: TrainConfig
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+    def hash(self) -> str:
+        blob = json.dumps(self.to_dict(), sort_keys=True).encode()
+        return hashlib.sha256(blob).hexdigest()[:16]
+
+
+def _fail(key: str, value: Any, allowed: str) -> UserError:
+    return UserError(f"recipe key '{key}' = {value!r} is invalid: {allowed}")
+
+
+def _check_keys(table: dict, cls_or_names, where: str) -> None:
+    names = {f.name for f in fields(cls_or_names)} if not isinstance(cls_or_names, (set, tuple)) else set(cls_or_names)
+    for k in table:
+        if k not in names:
+            raise UserError(f"unknown recipe key '{where}{k}'; allowed here: {', '.join(sorted(names))}")
+
+
+def _typed(table: dict, key: str, where: str, kind: type, default: Any, *, positive: bool = False) -> Any:
+    if key not in table:
+        return default
+    v = table[key]
+    ok = isinstance(v, kind) and not (kind in (int, float) and isinstance(v, bool))
+    if kind is float and isinstance(v, int) and not isinstance(v, bool):
+        v, ok = float(v), True
+    if not ok:
+        raise _fail(where + key, v, f"expected {kind.__name__}")
+    if positive and v <= 0:
+        raise _fail(where + key, v, "must be > 0")
+    return v
+
+
+def _dataclass_from(table: dict, cls, where: str, positive: tuple[str, ...] = ()):
+    _check_keys(table, cls, where)
+    kw = {}
+    for f in fields(cls):
+        kind = type(f.default)
+        kw[f.name] = _typed(table, f.name, where, kind, f.default, positive=f.name in positive)
+    return cls(**kw)
+
+
+def _choices(st: dict, key: str, where: str, kind: type) -> tuple:
+    if key not in st:
+        raise UserError(f"recipe key '{where}{key}' is missing: give a list of allowed values")
+    v = st[key]
+    if not isinstance(v, list) or not v:
+        raise _fail(where + key, v, "expected a non-empty list")
+    out = []
+    for x in v:
+        if isinstance(x, bool) or not isinstance(x, (int, float)) or (kind is int and not isinstance(x, int)):
+            raise _fail(where + key, v, f"every entry must be {'an integer' if kind is int else 'a number'}")
+        out.append(int(x) if float(x).is_integer() else float(x))
+    if len(set(out)) != len(out):
+        raise _fail(where + key, v, "entries must be distinct")
+    return tuple(sorted(out))
+
+
+def _act(table: dict, key: str, where: str, default: str) -> str:
+    v = table.get(key, default)
+    if v not in ACTIVATIONS:
+        raise _fail(where + key, v, f"choose one of {', '.join(ACTIVATIONS)}")
+    return v
+
+
+def _stage(st: Any, i: int) -> StageSpec:
+    where = f"space.stage[{i}]."
+    if not isinstance(st, dict):
+        raise UserError(f"recipe key 'space.stage[{i}]' must be a table ([[space.stage]])")
+    _check_keys(st, {"channels", "stride", "depths", "expansions", "kernels", "activation", "squeeze_excite"}, where)
+    chs = _typed(st, "channels", where, int, None)
+    if chs is None or chs <= 0:
+        raise _fail(where + "channels", st.get("channels"), "must be an integer > 0")
+    stride = _typed(st, "stride", where, int, 1)
+    if stride not in (1, 2):
+        raise _fail(where + "stride", stride, "must be 1 or 2")
+    depths = _choices(st, "depths", where, int)
+    if min(depths) < 1:
+        raise _fail(where + "depths", list(depths), "every depth must be >= 1")
+    exps = _choices(st, "expansions", where, float)
+    if min(exps) <= 0:
+        raise _fail(where + "expansions", list(exps), "every expansion ratio must be > 0")
+    kernels = _choices(st, "kernels", where, int)
+    if any(k < 1 or k % 2 == 0 for k in kernels):
+        raise _fail(where + "kernels", list(kernels), "kernel sizes must be odd and >= 1 (e.g. 3, 5, 7)")
+    return StageSpec(chs, stride, depths, exps, kernels, _act(st, "activation", where, "relu6"),
+                     _typed(st, "squeeze_excite", where, bool, False))
+
+
+def _space(sp: dict) -> SpaceSpec:
+    _check_keys(sp, {"stem_channels", "stem_stride", "stem_activation", "head_channels",
+                     "head_activation", "dropout", "stage"}, "space.")
+    stem = _typed(sp, "stem_channels", "space.", int, 16, positive=True)
+    stem_stride = _typed(sp, "stem_stride", "space.", int, 1)
+    if stem_stride not in (1, 2):
+        raise _fail("space.stem_stride", stem_stride, "must be 1 or 2")
+    head = _typed(sp, "head_channels", "space.", int, 0)
+    if head < 0:
+        raise _fail("space.head_channels", head, "must be >= 0 (0 means no head conv)")
+    dropout = _typed(sp, "dropout", "space.", float, 0.0)
+    if not 0 <= dropout < 1:
+        raise _fail("space.dropout", dropout, "must be in [0, 1)")
+    stages = sp.get("stage")
+    if not isinstance(stages, list) or not stages:
+        raise UserError("recipe needs at least one [[space.stage]] table")
+    return SpaceSpec(stem, stem_stride, tuple(_stage(s, i) for i, s in enumerate(stages)), head,
+                     _act(sp, "stem_activation", "space.", "relu6"), _act(sp, "head_activation", "space.", "relu6"),
+                     dropout)
+
+
+def parse_recipe(doc: dict, default_name: str = "recipe") -> Recipe:
+    _check_keys(doc, {"name", "seed", "data", "space", "train"}, "")
+    for sect in ("data", "space", "train"):
+        if sect in doc and not isinstance(doc[sect], dict):
+            raise UserError(f"recipe key '{sect}' must be a table ([{sect}])")
+    if "space" not in doc:
+        raise UserError("recipe has no [space] table: add [space] and at least one [[space.stage]]")
+    name = _typed(doc, "name", "", str, default_name)
+    seed = _typed(doc, "seed", "", int, 0)
+    data = _dataclass_from(doc.get("data", {}), DataConfig, "data.",
+                           positive=("image_size", "channels", "samples"))
+    if data.source not in DATA_SOURCES:
+        raise _fail("data.source", data.source, f"choose one of {', '.join(DATA_SOURCES)}")
+    if data.channels not in (1, 3):
+        raise _fail("data.channels", data.channels, "must be 1 (grey) or 3 (RGB)")
+    for key in ("val_fraction", "test_fraction"):
+        if not 0 <= getattr(data, key) < 0.9:
+            raise _fail("data." + key, getattr(data, key), "must be in [0, 0.9)")
+    if data.shift < 0:
+        raise _fail("data.shift", data.shift, "must be >= 0")
+    train = _dataclass_from(doc.get("train", {}), TrainConfig, "train.",
+                            positive=("epochs", "batch_size", "lr", "recalibration_batches", "eval_batch_size"))
+    if train.optimizer not in OPTIMIZERS:
+        raise _fail("train.optimizer", train.optimizer, f"choose one of {', '.join(OPTIMIZERS)}")
+    if train.kernel_mode not in KERNEL_MODES:
+        raise _fail("train.kernel_mode", train.kernel_mode, f"choose one of {', '.join(KERNEL_MODES)}")
+    for key in ("random_subnets", "checkpoint_every", "weight_decay", "warmup_epochs", "momentum"):
+        if getattr(train, key) < 0:
+            raise _fail("train." + key, getattr(train, key), "must be >= 0")
+    if not 0 <= train.label_smoothing < 1:
+        raise _fail("train.label_smoothing", train.label_smoothing, "must be in [0, 1)")
+    return Recipe(name, seed, data, _space(doc["space"]), train)
+
+
+def load_recipe(path: str | Path) -> Recipe:
+    path = Path(path)
+    if not path.is_file():
+        raise UserError(f"recipe file not found: {path} (see recipes/ for examples)")
+    try:
+        doc = tomllib.loads(path.read_text(encoding="utf-8"))
+    except tomllib.TOMLDecodeError as e:
+        raise UserError(f"recipe {path} is not valid TOML: {e}") from None
+    except UnicodeDecodeError:
+        raise UserError(f"recipe {path} is not a UTF-8 text file") from None
+    return parse_recipe(doc, default_name=path.stem)
+
+
+def recipe_from_dict(d: dict[str, Any]) -> Recipe:
+    """Rebuild a Recipe from ``Recipe.to_dict()`` (as stored in checkpoints)."""
+    sp = dict(d["space"])
+    sp["stages"] = tuple(StageSpec(**{**s, "depths": tuple(s["depths"]), "exp_ratios": tuple(s["exp_ratios"]),
+                                      "kernels": tuple(s["kernels"])}) for s in sp["stages"])
+    return Recipe(d["name"], d["seed"], DataConfig(**d["data"]), SpaceSpec(**sp), TrainConfig(**d["train"]))

@@ -1,0 +1,61 @@
+"""The run directory: where each step of the pipeline reads and writes.
+
+RUN_DIR/
+  recipe.toml          copy of the recipe the run was started with
+  checkpoint.pt        latest training checkpoint (weights_only-loadable)
+  metrics.jsonl        one JSON object per logged training step / epoch
+  exports/NAME/        one folder per exported subnet (model.onnx, manifest.json, state_dict.pt)
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import torch
+
+from tightfit.checkpoint import CHECKPOINT_NAME, load_checkpoint
+from tightfit.errors import UserError
+from tightfit.recipe import Recipe, recipe_from_dict
+from tightfit.supernet import Supernet
+
+
+@dataclass
+class TrainedRun:
+    supernet: Supernet
+    recipe: Recipe
+    class_names: tuple[str, ...]
+    mean: tuple[float, ...]
+    std: tuple[float, ...]
+    complete: bool
+
+
+def checkpoint_path(run_dir: str | Path) -> Path:
+    return Path(run_dir) / CHECKPOINT_NAME
+
+
+def load_trained(run_dir: str | Path) -> TrainedRun:
+    """Rebuild the supernet and its recipe from a run directory's checkpoint."""
+    if not Path(run_dir).is_dir():
+        raise UserError(f"run directory not found: {run_dir}")
+    state = load_checkpoint(checkpoint_path(run_dir))
+    try:
+        recipe = recipe_from_dict(state["recipe"])
+        net = Supernet(recipe.space, recipe.data.channels, len(state["class_names"]),
+                       kernel_transform=recipe.train.kernel_mode == "transform")
+        net.load_state_dict(state["model"])
+    except (KeyError, TypeError, RuntimeError) as e:
+        raise UserError(f"checkpoint in {run_dir} does not match its recipe ({type(e).__name__}); retrain") from None
+    net.eval()
+    return TrainedRun(net, recipe, tuple(state["class_names"]), tuple(state["mean"]), tuple(state["std"]),
+                      bool(state.get("complete", False)))
+
+
+def pick_device(requested: str | None = None) -> torch.device:
+    """CUDA when present, else CPU; ``requested`` ('cpu', 'cuda', 'cuda:1') forces one."""
+    if requested:
+        if requested.startswith("cuda") and not torch.cuda.is_available():
+            raise UserError(f"--device {requested} asked for, but CUDA is not available here; use --device cpu")
+        if not (requested == "cpu" or requested.startswith("cuda")):
+            raise UserError(f"--device {requested!r} is not understood: use 'cpu', 'cuda' or 'cuda:N'")
+        return torch.device(requested)
+    return torch.device("cuda" if torch.cuda.is_available() else "cpu")

@@ -1,0 +1,222 @@
+"""Supernet training with the sandwich rule and in-place distillation (Yu & Huang 2019).
+
+Each step: the largest subnet learns from the labels; the smallest and N random subnets
+learn from the largest's detached soft predictions; gradients accumulate and one
+optimizer step follows. Subnet sampling and augmentation are seeded from the step, so a
+resumed run (and every distributed rank) draws exactly the same subnets and batches.
+"""
+from __future__ import annotations
+
+import json
+import math
+import random
+import shutil
+import signal
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import torch
+import torch.nn.functional as F
+from torch import nn
+from tqdm import tqdm
+
+from tightfit.checkpoint import save_checkpoint
+from tightfit.data.dataset import Dataset, calibration_batches, eval_batches, load_dataset, steps_per_epoch, train_batches
+from tightfit.errors import Interrupted, UserError
+from tightfit.recalibrate import subnet_accuracy
+from tightfit.recipe import Recipe, TrainConfig
+from tightfit.checkpoint import load_checkpoint
+from tightfit.rundir import checkpoint_path
+from tightfit.space import SpaceSpec, Subnet
+from tightfit.supernet import Supernet
+
+
+def sandwich(space: SpaceSpec, step: int, seed: int, n_random: int) -> list[Subnet]:
+    """[largest, smallest, n random]; the draw depends only on (seed, step)."""
+    rng = random.Random(seed * 7_919 + step)
+    return [space.largest(), space.smallest()] + [space.sample(rng) for _ in range(n_random)]
+
+
+def param_groups(model: nn.Module, weight_decay: float) -> list[dict]:
+    """No weight decay on BatchNorm, biases and the kernel-transform matrices (common practice)."""
+    decay, no_decay = [], []
+    for name, p in model.named_parameters():
+        (no_decay if p.ndim <= 1 or "transforms" in name else decay).append(p)
+    return [{"params": decay, "weight_decay": weight_decay}, {"params": no_decay, "weight_decay": 0.0}]
+
+
+def make_optimizer(model: nn.Module, cfg: TrainConfig) -> torch.optim.Optimizer:
+    groups = param_groups(model, cfg.weight_decay)
+    if cfg.optimizer == "sgd":
+        return torch.optim.SGD(groups, lr=cfg.lr, momentum=cfg.momentum, nesterov=cfg.momentum > 0)
+    return torch.optim.AdamW(groups, lr=cfg.lr)
+
+
+def lr_at(step: int, total: int, warmup: int, base: float) -> float:
+    """Linear warm-up, then cosine decay to zero (Loshchilov & Hutter 2017)."""
+    if step < warmup:
+        return base * (step + 1) / warmup
+    t = (step - warmup) / max(1, total - warmup)
+    return base * 0.5 * (1 + math.cos(math.pi * min(1.0, t)))
+
+
+def distill_loss(logits: torch.Tensor, soft_targets: torch.Tensor) -> torch.Tensor:
+    """Cross-entropy against the teacher's probabilities (in-place distillation)."""
+    return -(soft_targets * F.log_softmax(logits, 1)).sum(1).mean()
+
+
+def build_supernet(recipe: Recipe, num_classes: int) -> Supernet:
+    return Supernet(recipe.space, recipe.data.channels, num_classes,
+                    kernel_transform=recipe.train.kernel_mode == "transform")
+
+
+def train_step(model: Supernet, opt: torch.optim.Optimizer, x: torch.Tensor, y: torch.Tensor,
+               subnets: list[Subnet], cfg: TrainConfig) -> dict[str, float]:
+    """One sandwich step; returns the largest's and smallest's losses."""
+    opt.zero_grad(set_to_none=True)
+    losses = {}
+    soft = None
+    for i, subnet in enumerate(subnets):
+        model.set_subnet(subnet)
+        logits = model(x)
+        if i == 0 or not cfg.distill:
+            loss = F.cross_entropy(logits, y, label_smoothing=cfg.label_smoothing)
+        else:
+            loss = distill_loss(logits, soft)
+        if i == 0:
+            soft = logits.detach().softmax(1)
+        loss.backward()
+        if i < 2:
+            losses["loss_largest" if i == 0 else "loss_smallest"] = loss.item()
+    opt.step()
+    return losses
+
+
+@dataclass
+class Progress:
+    step: int = 0
+    done: bool = False
+
+
+class _StopFlag:
+    """Turns SIGINT/SIGTERM into a flag checked between steps, so the checkpoint is consistent."""
+
+    def __init__(self) -> None:
+        self.signum: int | None = None
+        self._old: dict[int, object] = {}
+
+    def __enter__(self) -> "_StopFlag":
+        for s in (signal.SIGINT, signal.SIGTERM):
+            self._old[s] = signal.signal(s, self._handle)
+        return self
+
+    def _handle(self, signum, frame) -> None:
+        self.signum = signum
+
+    def __exit__(self, *exc) -> None:
+        for s, h in self._old.items():
+            signal.signal(s, h)
+
+
+def _state(model, opt, step, recipe, ds: Dataset, complete: bool) -> dict:
+    return {"model": model.state_dict(), "optimizer": opt.state_dict(), "step": step,
+            "rng": torch.get_rng_state(), "recipe": recipe.to_dict(), "recipe_hash": recipe.hash(),
+            "class_names": list(ds.class_names), "mean": list(ds.mean), "std": list(ds.std), "complete": complete}
+
+
+def _log(path: Path, record: dict) -> None:
+    with open(path, "a") as f:
+        f.write(json.dumps(record) + "\n")
+
+
+def _trim_log(path: Path, step: int) -> None:
+    """On resume, drop records written after the checkpoint we resume from."""
+    if path.exists():
+        keep = [ln for ln in path.read_text().splitlines() if ln.strip() and json.loads(ln).get("step", 0) <= step]
+        path.write_text("".join(ln + "\n" for ln in keep))
+
+
+def _epoch_eval(model: Supernet, recipe: Recipe, ds: Dataset, epoch: int, step: int) -> dict:
+    calib = calibration_batches(ds, recipe.train.batch_size, min(5, recipe.train.recalibration_batches), recipe.seed)
+    rec = {"step": step, "epoch": epoch}
+    for name, sub in (("largest", recipe.space.largest()), ("smallest", recipe.space.smallest())):
+        rec[f"val_acc_{name}"] = subnet_accuracy(model, sub, calib, eval_batches(ds.val_x, ds.val_y, ds, 512))
+    model.train()
+    return rec
+
+
+def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, recipe_path: str | Path | None = None,
+          progress: bool = True, ds: Dataset | None = None) -> Path:
+    """Train (or resume) the supernet of ``recipe`` into ``run_dir``; returns the checkpoint path."""
+    run_dir = Path(run_dir)
+    ckpt = checkpoint_path(run_dir)
+    if ckpt.exists() and not resume:
+        raise UserError(f"{run_dir} already holds a training run: add --resume to continue it, or pick a new --run")
+    try:
+        run_dir.mkdir(parents=True, exist_ok=True)
+        (run_dir / ".write-test").touch()
+        (run_dir / ".write-test").unlink()
+    except OSError as e:
+        raise UserError(f"cannot write to run directory {run_dir}: {e.strerror}") from None
+    ds = ds or load_dataset(recipe.data, recipe.seed)
+    torch.manual_seed(recipe.seed)
+    model = build_supernet(recipe, ds.num_classes)
+    opt = make_optimizer(model, recipe.train)
+    start = 0
+    if resume and ckpt.exists():
+        state = load_checkpoint(ckpt)
+        if state.get("recipe_hash") != recipe.hash():
+            raise UserError(f"checkpoint in {run_dir} was trained from a different recipe; use that recipe or a new --run")
+        model.load_state_dict(state["model"])
+        opt.load_state_dict(state["optimizer"])
+        torch.set_rng_state(state["rng"])
+        start = int(state["step"])
+    if recipe_path is not None and not (run_dir / "recipe.toml").exists():
+        shutil.copyfile(recipe_path, run_dir / "recipe.toml")
+    return _loop(model, opt, recipe, ds, run_dir, start, progress)
+
+
+def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, start: int, progress: bool) -> Path:
+    cfg = recipe.train
+    spe = steps_per_epoch(ds, cfg.batch_size)
+    if spe == 0:
+        raise UserError(f"train.batch_size = {cfg.batch_size} is larger than the training split ({len(ds.train_y)} images)")
+    total = max(1, int(round(cfg.epochs * spe)))
+    warmup = int(cfg.warmup_epochs * spe)
+    metrics = run_dir / "metrics.jsonl"
+    _trim_log(metrics, start)
+    ckpt = checkpoint_path(run_dir)
+    model.train()
+    step = start
+    bar = tqdm(total=total, initial=start, desc="supernet", unit="step", disable=not progress, dynamic_ncols=True)
+    t0, seen = time.perf_counter(), 0
+    with _StopFlag() as stop:
+        while step < total:
+            epoch = step // spe
+            for x, y in train_batches(ds, recipe.data, cfg.batch_size, recipe.seed, epoch, start=step % spe):
+                lr = lr_at(step, total, warmup, cfg.lr)
+                for g in opt.param_groups:
+                    g["lr"] = lr
+                losses = train_step(model, opt, x, y, sandwich(recipe.space, step, recipe.seed, cfg.random_subnets), cfg)
+                step += 1
+                seen += len(y)
+                ips = seen / (time.perf_counter() - t0)
+                bar.update(1)
+                bar.set_postfix(loss=f"{losses['loss_largest']:.3f}", img_s=f"{ips:.0f}")
+                if step % 20 == 0 or step == total:
+                    _log(metrics, {"step": step, "epoch": step / spe, "lr": lr, "images_per_s": ips, **losses})
+                end_of_epoch = step % spe == 0 or step == total
+                if end_of_epoch:
+                    _log(metrics, _epoch_eval(model, recipe, ds, epoch + 1, step))
+                if end_of_epoch or (cfg.checkpoint_every and step % cfg.checkpoint_every == 0) or stop.signum:
+                    save_checkpoint(ckpt, _state(model, opt, step, recipe, ds, step == total))
+                if stop.signum:
+                    bar.close()
+                    raise Interrupted(130 if stop.signum == signal.SIGINT else 143,
+                                      f"interrupted at step {step}; checkpoint written. Resume with: "
+                                      f"tightfit train RECIPE --run {run_dir} --resume")
+                if step >= total or end_of_epoch:
+                    break
+    bar.close()
+    return ckpt

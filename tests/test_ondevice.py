@@ -1,0 +1,236 @@
+"""On-device measurement layer: statistics, interleaving, fresh-process repeats, the runner CLI,
+and that the runner works where torch cannot be imported."""
+from __future__ import annotations
+
+import ast
+import json
+import os
+import subprocess
+import sys
+import zipfile
+from pathlib import Path
+
+import numpy as np
+import onnx
+import pytest
+from onnx import TensorProto, helper, numpy_helper
+
+from tightfit.ondevice import runner
+from tightfit.ondevice.protocol import (Protocol, combine_repeats, make_session, measure_interleaved,
+                                        measure_one, measure_repeated, random_input, summarize)
+
+SRC = str(Path(__file__).resolve().parents[1] / "src")
+TINY = Protocol(warmup_min_runs=5, settle_window=5, warmup_max_runs=40, min_runs=30, min_seconds=0.05,
+                layer_min_runs=10, layer_min_seconds=0.01, repeats=1)
+TINY_FLAGS = ["--quick", "--min-runs", "20", "--min-seconds", "0.05", "--layer-min-runs", "10",
+              "--layer-min-seconds", "0.01", "--warmup-min-runs", "5", "--warmup-max-runs", "40"]
+
+
+def matmul_model(path: Path, width: int, depth: int = 1) -> str:
+    """X[N, width] through `depth` MatMuls with width x width weights; N is a symbolic batch axis."""
+    rng = np.random.default_rng(width)
+    inits, nodes, prev = [], [], "x"
+    for i in range(depth):
+        w = (rng.standard_normal((width, width)) / np.sqrt(width)).astype(np.float32)
+        inits.append(numpy_helper.from_array(w, f"w{i}"))
+        nodes.append(helper.make_node("MatMul", [prev, f"w{i}"], [f"h{i}"]))
+        prev = f"h{i}"
+    graph = helper.make_graph(nodes, "probe", [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", width])],
+                              [helper.make_tensor_value_info(prev, TensorProto.FLOAT, ["N", width])], inits)
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)], ir_version=9)
+    onnx.checker.check_model(model)
+    onnx.save(model, str(path))
+    return str(path)
+
+
+@pytest.fixture(scope="module")
+def models(tmp_path_factory) -> dict[str, str]:
+    d = tmp_path_factory.mktemp("models")
+    return {"fast": matmul_model(d / "fast.onnx", 16), "slow": matmul_model(d / "slow.onnx", 512, depth=4)}
+
+
+def make_bundle(root: Path, models: dict[str, str]) -> Path:
+    """A probe bundle folder: one layer entry and one subnet entry."""
+    (root / "onnx").mkdir(parents=True)
+    entries = []
+    for eid, kind in (("fast", "layer"), ("slow", "subnet")):
+        (root / "onnx" / f"{eid}.onnx").write_bytes(Path(models[eid]).read_bytes())
+        entries.append({"id": eid, "kind": kind, "file": f"onnx/{eid}.onnx", "meta": {"name": eid}})
+    index = {"format": "tightfit-probe-bundle", "version": 1, "space_hash": "abc123", "entries": entries}
+    (root / "index.json").write_text(json.dumps(index))
+    return root
+
+
+def run_cli(args: list[str], env: dict | None = None, cwd: Path | None = None) -> subprocess.CompletedProcess:
+    base = dict(os.environ, PYTHONPATH=os.pathsep.join(filter(None, [SRC, os.environ.get("PYTHONPATH")])))
+    return subprocess.run([sys.executable, "-m", "tightfit.ondevice.runner", *args], capture_output=True,
+                          text=True, env=env or base, cwd=cwd, timeout=120)
+
+
+def test_summary_matches_numpy_percentile_and_is_ordered():
+    times = np.random.default_rng(0).lognormal(-7, 0.3, size=997)
+    s = summarize(times, percentile=75.0)
+    ms = times * 1e3
+    # Reference values: numpy.percentile (linear interpolation) on the same timings in ms.
+    ref = np.percentile(ms, [50, 75, 90, 99])
+    assert np.allclose([s["p50_ms"], s["budget_stat_ms"], s["p90_ms"], s["p99_ms"]], ref)
+    assert s["min_ms"] <= s["p50_ms"] <= s["p90_ms"] <= s["p99_ms"] <= s["max_ms"]
+    q25, q75 = np.percentile(ms, [25, 75])
+    assert s["iqr_over_median"] == pytest.approx((q75 - q25) / ref[0])
+    assert s["cv"] == pytest.approx(ms.std(ddof=1) / ms.mean())
+    assert s["runs"] == 997 and s["mean_ms"] == pytest.approx(ms.mean())
+
+
+def test_protocol_round_trip_records_session_settings():
+    p = Protocol(threads=2, percentile=99.0)
+    d = p.to_dict()
+    assert Protocol.from_dict(d) == p
+    assert d["graph_optimization"] == "ORT_ENABLE_ALL" and d["execution_mode"] == "ORT_SEQUENTIAL"
+    assert d["layer_min_seconds"] == 0.2 and d["min_runs"] == 200 and d["batch"] == 1
+
+
+def test_random_input_uses_batch_for_symbolic_axis(models):
+    feeds = random_input(make_session(models["fast"], TINY), batch=3, seed=1)
+    assert feeds["x"].shape == (3, 16) and feeds["x"].dtype == np.float32
+
+
+def test_measure_one_warms_up_then_meets_minimums(models):
+    s = make_session(models["fast"], TINY)
+    r = measure_one(s, random_input(s, 1, 0), TINY)
+    assert r["runs"] >= TINY.min_runs and r["total_s"] >= TINY.min_seconds
+    assert r["warmup_runs"] >= 10 and isinstance(r["settled"], bool)
+
+
+def test_interleaved_returns_every_path_and_slow_model_is_slower(models):
+    paths = [models["fast"], models["slow"]]
+    res = measure_interleaved(paths, TINY, chunk=5, layers={models["fast"]})
+    assert set(res) == set(paths)
+    assert res[models["fast"]]["runs"] >= TINY.layer_min_runs
+    assert res[models["slow"]]["runs"] >= TINY.min_runs
+    assert res[models["slow"]]["p50_ms"] > 3 * res[models["fast"]]["p50_ms"]
+
+
+def test_repeated_measurement_in_fresh_processes(models):
+    protocol = Protocol.from_dict({**TINY.to_dict(), "repeats": 2})
+    res = measure_repeated([models["fast"], models["slow"]], protocol, chunk=5)
+    for entry in res.values():
+        assert len(entry["repeats"]) == 2
+        assert entry["p50_ms"] == pytest.approx(np.median([r["p50_ms"] for r in entry["repeats"]]))
+        assert isinstance(entry["repeat_spread"], float) and entry["repeat_spread"] >= 0
+        assert isinstance(entry["stable"], bool) and entry["note"]
+    assert res[models["slow"]]["p90_ms"] > res[models["fast"]]["p90_ms"]
+
+
+def test_combine_flags_spread_between_repeats():
+    base = summarize(np.full(50, 1e-3))
+    slow = summarize(np.full(50, 2e-3))
+    out = combine_repeats([base, slow, base], Protocol())
+    assert out["p50_ms"] == pytest.approx(1.0) and out["repeat_spread"] == pytest.approx(1.0)
+    assert out["stable"] is False and "spread" in out["note"]
+    assert combine_repeats([base, base], Protocol())["stable"] is True
+
+
+def check_table(path: Path) -> dict:
+    table = json.loads(path.read_text())
+    assert table["format"] == "tightfit-latency-table" and table["version"] == 1
+    assert table["space_hash"] == "abc123" and table["created"]
+    assert {"cpu_model", "logical_cores", "onnxruntime", "numpy", "ort_providers"} <= set(table["device"])
+    assert table["protocol"]["layer_min_seconds"] == 0.01 and table["protocol"]["threads"] == 1
+    assert set(table["entries"]) == {"fast", "slow"}
+    fast, slow = table["entries"]["fast"], table["entries"]["slow"]
+    assert fast["kind"] == "layer" and slow["kind"] == "subnet" and slow["meta"] == {"name": "slow"}
+    for e in (fast, slow):
+        assert e["p50_ms"] <= e["p90_ms"] <= e["p99_ms"]
+        assert {"mean_ms", "cv", "iqr_over_median", "repeat_spread", "stable", "note"} <= set(e)
+    return table
+
+
+def zip_folder(folder: Path, archive: Path, nested: bool) -> Path:
+    """Zip a bundle folder, either as the folder itself or with its contents at the top level."""
+    with zipfile.ZipFile(archive, "w") as zf:
+        for f in folder.rglob("*"):
+            zf.write(f, f.relative_to(folder.parent if nested else folder))
+    return archive
+
+
+@pytest.mark.parametrize("layout", ["folder", "zip_of_folder", "zip_flat"])
+def test_runner_writes_table_for_folder_and_zip(tmp_path, models, layout):
+    bundle = make_bundle(tmp_path / "bundle", models)
+    if layout != "folder":
+        bundle = zip_folder(bundle, tmp_path / "bundle.zip", nested=layout == "zip_of_folder")
+    out = tmp_path / "table.json"
+    assert runner.main([str(bundle), "--out", str(out), *TINY_FLAGS]) == 0
+    check_table(out)
+
+
+def _write_bad(tmp_path: Path, models: dict, case: str) -> Path:
+    if case == "missing":
+        return tmp_path / "nope"
+    bundle = make_bundle(tmp_path / "b", models)
+    index = json.loads((bundle / "index.json").read_text())
+    if case == "no_index":
+        (bundle / "index.json").unlink()
+    elif case == "malformed":
+        (bundle / "index.json").write_text('{"format": "tightfit-probe-bundle", ')
+    elif case == "wrong_format":
+        (bundle / "index.json").write_text(json.dumps({**index, "format": "something-else"}))
+    elif case == "not_onnx":
+        (bundle / "onnx" / "slow.onnx").write_bytes(b"this is not a model")
+    elif case == "missing_file":
+        (bundle / "onnx" / "fast.onnx").unlink()
+    elif case == "unsafe_zip":
+        archive = zip_folder(bundle, tmp_path / "b.zip", nested=False)
+        with zipfile.ZipFile(archive, "a") as zf:
+            zf.writestr("../escape.txt", "x")
+        return archive
+    return bundle
+
+
+@pytest.mark.parametrize("case", ["missing", "no_index", "malformed", "wrong_format", "not_onnx",
+                                  "missing_file", "unsafe_zip"])
+def test_runner_bad_input_is_one_error_line_exit_2(tmp_path, models, case):
+    out = tmp_path / "table.json"
+    proc = run_cli([str(_write_bad(tmp_path, models, case)), "--out", str(out), *TINY_FLAGS])
+    lines = proc.stderr.strip().splitlines()
+    assert proc.returncode == 2, proc.stderr
+    assert len(lines) == 1 and lines[0].startswith("error: "), proc.stderr
+    assert "Traceback" not in proc.stderr and not out.exists()
+
+
+def test_ondevice_modules_import_only_stdlib_numpy_onnxruntime():
+    allowed = set(sys.stdlib_module_names) | {"numpy", "onnxruntime", "__future__"}
+    for module in Path(SRC, "tightfit", "ondevice").glob("*.py"):
+        for node in ast.walk(ast.parse(module.read_text())):
+            if isinstance(node, ast.Import):
+                names = [a.name for a in node.names]
+            elif isinstance(node, ast.ImportFrom) and node.level == 0:
+                names = [node.module]
+            else:
+                continue
+            bad = [n for n in names if n.split(".")[0] not in allowed]
+            assert not bad, f"{module.name} imports {bad}; on-device code may use only numpy and onnxruntime"
+
+
+def test_runner_help_explains_itself():
+    proc = run_cli(["--help"])
+    assert proc.returncode == 0 and "tightfit-probe-bundle" in proc.stdout and "--layer-min-seconds" in proc.stdout
+
+
+def test_runner_works_with_torch_unimportable(tmp_path, models):
+    fake = tmp_path / "fake"
+    (fake / "torch").mkdir(parents=True)
+    marker = tmp_path / "torch-was-imported"
+    (fake / "torch" / "__init__.py").write_text(
+        "import os, pathlib\n"
+        "pathlib.Path(os.environ['TORCH_MARKER']).write_text('imported')\n"
+        "raise ImportError('torch is not available on this device')\n")
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(fake), SRC]), TORCH_MARKER=str(marker))
+    probe = subprocess.run([sys.executable, "-c", "import torch"], env=env, capture_output=True)
+    assert probe.returncode != 0 and marker.exists()  # the fake really shadows torch
+    marker.unlink()
+    bundle, out = make_bundle(tmp_path / "bundle", models), tmp_path / "table.json"
+    proc = run_cli([str(bundle), "--out", str(out), *TINY_FLAGS, "--repeats", "2"], env=env, cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr
+    assert not marker.exists(), "something in the on-device path tried to import torch"
+    table = check_table(out)
+    assert all(len(e["repeats"]) == 2 for e in table["entries"].values())
