@@ -133,3 +133,13 @@ class Subnet:
 
     def __str__(self) -> str:
         return self.to_key()
+
+
+def space_hash(space: SpaceSpec, in_chs: int, image_size: int) -> str:
+    """Identifies a search space together with its input shape: latency tables and probe
+    bundles carry it, so a table measured for another space is refused."""
+    import hashlib
+    import json
+    from dataclasses import asdict
+    blob = json.dumps({"space": asdict(space), "in_chs": in_chs, "image_size": image_size}, sort_keys=True)
+    return hashlib.sha256(blob.encode()).hexdigest()[:16]
