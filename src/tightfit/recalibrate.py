@@ -31,8 +31,9 @@ def recalibrate_bn(model: nn.Module, batches: Iterable[torch.Tensor]) -> None:
         bn.momentum = None
     was_training = model.training
     model.train()
+    dev = next(model.parameters()).device
     for x in batches:
-        model(x)
+        model(x.to(dev))
     model.train(was_training)
     for bn, m in zip(bns, saved):
         bn.momentum = m
@@ -56,8 +57,9 @@ def accuracy(model: nn.Module, batches: Iterable[tuple[torch.Tensor, torch.Tenso
     """Top-1 accuracy in percent."""
     model.eval()
     correct = total = 0
+    dev = next(model.parameters()).device
     for x, y in batches:
-        correct += (model(x).argmax(1) == y).sum().item()
+        correct += (model(x.to(dev)).argmax(1).cpu() == y).sum().item()
         total += len(y)
     return 100.0 * correct / max(total, 1)
 

@@ -27,7 +27,7 @@ from tightfit.errors import Interrupted, UserError
 from tightfit.recalibrate import subnet_accuracy
 from tightfit.recipe import Recipe, TrainConfig
 from tightfit.checkpoint import load_checkpoint
-from tightfit.rundir import checkpoint_path
+from tightfit.rundir import checkpoint_path, pick_device
 from tightfit.space import SpaceSpec, Subnet
 from tightfit.supernet import Supernet
 
@@ -79,7 +79,9 @@ def train_step(model: Supernet, opt: torch.optim.Optimizer, x: torch.Tensor, y: 
     soft = None
     for i, subnet in enumerate(subnets):
         model.set_subnet(subnet)
-        logits = model(x)
+        # Mixed precision on CUDA only; CPU trains in fp32 so results are exactly reproducible.
+        with torch.autocast("cuda", dtype=torch.bfloat16, enabled=x.is_cuda):
+            logits = model(x).float()
         if i == 0 or not cfg.distill:
             loss = F.cross_entropy(logits, y, label_smoothing=cfg.label_smoothing)
         else:
@@ -147,7 +149,7 @@ def _epoch_eval(model: Supernet, recipe: Recipe, ds: Dataset, epoch: int, step: 
 
 
 def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, recipe_path: str | Path | None = None,
-          progress: bool = True, ds: Dataset | None = None) -> Path:
+          progress: bool = True, ds: Dataset | None = None, device: str | None = None) -> Path:
     """Train (or resume) the supernet of ``recipe`` into ``run_dir``; returns the checkpoint path."""
     run_dir = Path(run_dir)
     ckpt = checkpoint_path(run_dir)
@@ -161,7 +163,10 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, recipe_p
         raise UserError(f"cannot write to run directory {run_dir}: {e.strerror}") from None
     ds = ds or load_dataset(recipe.data, recipe.seed)
     torch.manual_seed(recipe.seed)
-    model = build_supernet(recipe, ds.num_classes)
+    dev = pick_device(device)
+    model = build_supernet(recipe, ds.num_classes).to(dev)
+    if recipe.train.channels_last:
+        model = model.to(memory_format=torch.channels_last)
     opt = make_optimizer(model, recipe.train)
     start = 0
     if resume and ckpt.exists():
@@ -174,10 +179,11 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, recipe_p
         start = int(state["step"])
     if recipe_path is not None and not (run_dir / "recipe.toml").exists():
         shutil.copyfile(recipe_path, run_dir / "recipe.toml")
-    return _loop(model, opt, recipe, ds, run_dir, start, progress)
+    return _loop(model, opt, recipe, ds, run_dir, start, progress, dev)
 
 
-def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, start: int, progress: bool) -> Path:
+def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, start: int, progress: bool,
+          dev: torch.device) -> Path:
     cfg = recipe.train
     spe = steps_per_epoch(ds, cfg.batch_size)
     if spe == 0:
@@ -195,6 +201,9 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
         while step < total:
             epoch = step // spe
             for x, y in train_batches(ds, recipe.data, cfg.batch_size, recipe.seed, epoch, start=step % spe):
+                x, y = x.to(dev, non_blocking=True), y.to(dev, non_blocking=True)
+                if cfg.channels_last:
+                    x = x.contiguous(memory_format=torch.channels_last)
                 lr = lr_at(step, total, warmup, cfg.lr)
                 for g in opt.param_groups:
                     g["lr"] = lr

@@ -293,7 +293,7 @@ def generate_parts(n: int, size: int = 32, seed: int = 0) -> tuple[np.ndarray, n
     rng = np.random.default_rng(seed)
     labels = rng.permutation(np.arange(n, dtype=np.int64) % len(CLASS_NAMES))
     images = np.empty((n, size, size, 3), np.uint8)
-    chunk = max(16, 2 ** 14 // (size * size))
+    chunk = max(16, 2 ** 16 // (size * size))
     for start in range(0, n, chunk):
         images[start:start + chunk] = _render(labels[start:start + chunk], size, rng)
     return images, labels

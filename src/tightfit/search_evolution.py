@@ -1,0 +1,298 @@
+"""Latency-constrained search over a space: regularized evolution, random search, Pareto front.
+
+Pure Python over two callables, ``fitness(subnet) -> float`` (higher is better) and
+``latency(subnet) -> float`` (ms), so tests drive it with synthetic functions and the
+real search plugs in BN-recalibrated accuracy and a latency predictor.
+
+Regularized (aging) evolution follows Real et al. 2019 (Sec. 2, Algorithm 1): keep a
+queue of P models; each cycle samples S of them, mutates the best, appends the child
+and removes the OLDEST (not the worst). Here every member and every child satisfies the
+latency budget: the initial population is drawn within it and a mutation that would
+exceed it is drawn again.
+
+Below the algorithms: the accuracy cache (one JSON line per evaluated subnet, so an
+interrupted or repeated search pays only for subnets it has not seen) and memoised latency.
+"""
+from __future__ import annotations
+
+import json
+import os
+import random
+import time
+from collections import deque
+from pathlib import Path
+from dataclasses import dataclass
+from typing import Any, Callable, Optional
+
+from tightfit.errors import UserError
+from tightfit.space import SpaceSpec, Subnet
+
+Fitness = Callable[[Subnet], float]
+Latency = Callable[[Subnet], float]
+
+
+@dataclass(frozen=True)
+class EvolutionSettings:
+    population: int = 32          # P: size of the aging queue
+    sample_size: int = 8          # S: tournament size (Real et al. 2019 use S < P)
+    evaluations: int = 320        # distinct candidates evaluated, initial population included
+    mutate_prob: float = 0.15     # per decision: a stage's depth, a block's expansion, a block's kernel
+    seed: int = 0
+    sample_tries: int = 2000      # rejection-sampling attempts before shrinking random draws instead
+    redraws: int = 100            # mutation attempts before giving up on a parent this cycle
+
+
+@dataclass(frozen=True)
+class Candidate:
+    key: str
+    subnet: Subnet
+    fitness: float
+    latency_ms: float
+    generation: int               # 0 = initial population, then one per P children
+
+
+def fastest_check(space: SpaceSpec, latency: Latency, budget_ms: float, device: str) -> None:
+    """Refuse a budget below the smallest subnet's latency, naming what the fastest takes."""
+    fastest = latency(space.smallest())
+    if fastest > budget_ms:
+        raise UserError(f"budget {budget_ms:g} ms is below the fastest subnet: smallest predicts "
+                        f"{fastest:.3f} ms on {device}; raise the budget to at least {fastest:.3f} ms")
+
+
+def shrink(space: SpaceSpec, subnet: Subnet, rng: random.Random) -> Subnet:
+    """One random step towards the smallest subnet: drop a block or lower one choice."""
+    stages = [list(b) for b in subnet.stages]
+    moves = []
+    for i, (st, blocks) in enumerate(zip(space.stages, stages)):
+        if len(blocks) > min(st.depths):
+            moves.append(("depth", i, -1))
+        for j, (e, k) in enumerate(blocks):
+            if e > min(st.exp_ratios):
+                moves.append(("exp", i, j))
+            if k > min(st.kernels):
+                moves.append(("kernel", i, j))
+    if not moves:
+        return subnet
+    what, i, j = rng.choice(moves)
+    st = space.stages[i]
+    if what == "depth":
+        stages[i] = stages[i][:max(d for d in st.depths if d < len(stages[i]))]
+    elif what == "exp":
+        e, k = stages[i][j]
+        stages[i][j] = (max(x for x in st.exp_ratios if x < e), k)
+    else:
+        e, k = stages[i][j]
+        stages[i][j] = (e, max(x for x in st.kernels if x < k))
+    return Subnet(tuple(tuple(b) for b in stages))
+
+
+def sample_within(space: SpaceSpec, rng: random.Random, latency: Latency, budget_ms: float,
+                  tries: int = 2000) -> Subnet:
+    """A subnet with latency <= budget: uniform rejection sampling, then (if the budget admits
+    only a sliver of the space) a uniform draw shrunk step by step until it fits.
+    Call fastest_check first: shrinking ends at the smallest subnet, which must fit."""
+    for _ in range(tries):
+        s = space.sample(rng)
+        if latency(s) <= budget_ms:
+            return s
+    s = space.sample(rng)
+    while latency(s) > budget_ms:
+        smaller = shrink(space, s, rng)
+        if smaller == s:
+            break
+        s = smaller
+    return s
+
+
+def mutate(space: SpaceSpec, subnet: Subnet, rng: random.Random, prob: float) -> Subnet:
+    """Change each stage's depth, each block's expansion and each block's kernel with
+    probability ``prob``; at least one decision always changes."""
+    while True:
+        stages = []
+        for st, blocks in zip(space.stages, subnet.stages):
+            blocks = list(blocks)
+            if len(st.depths) > 1 and rng.random() < prob:
+                depth = rng.choice([d for d in st.depths if d != len(blocks)])
+                while len(blocks) < depth:  # a new block starts as a copy of the last one
+                    blocks.append(blocks[-1])
+                blocks = blocks[:depth]
+            for j, (e, k) in enumerate(blocks):
+                if len(st.exp_ratios) > 1 and rng.random() < prob:
+                    e = rng.choice([x for x in st.exp_ratios if x != e])
+                if len(st.kernels) > 1 and rng.random() < prob:
+                    k = rng.choice([x for x in st.kernels if x != k])
+                blocks[j] = (e, k)
+            stages.append(tuple(blocks))
+        child = Subnet(tuple(stages))
+        if child != subnet or space.size() == 1:
+            return child
+
+
+class _Ledger:
+    """Evaluates each distinct subnet once and remembers everything evaluated, in order."""
+
+    def __init__(self, fitness: Fitness, latency: Latency, on_eval: Optional[Callable[[Candidate], None]]):
+        self.fitness, self.latency, self.on_eval = fitness, latency, on_eval
+        self.seen: dict[str, Candidate] = {}
+
+    def evaluate(self, subnet: Subnet, generation: int) -> Candidate:
+        key = subnet.to_key()
+        if key not in self.seen:
+            c = Candidate(key, subnet, float(self.fitness(subnet)), float(self.latency(subnet)), generation)
+            self.seen[key] = c
+            if self.on_eval:
+                self.on_eval(c)
+        return self.seen[key]
+
+
+def _fresh_within(space: SpaceSpec, rng: random.Random, ledger: _Ledger, budget_ms: float, tries: int) -> Subnet:
+    """A within-budget subnet not evaluated yet when one turns up in a few dozen draws."""
+    s = sample_within(space, rng, ledger.latency, budget_ms, tries)
+    for _ in range(50):
+        if s.to_key() not in ledger.seen:
+            break
+        s = sample_within(space, rng, ledger.latency, budget_ms, tries)
+    return s
+
+
+def _child(space: SpaceSpec, parent: Subnet, rng: random.Random, ledger: _Ledger, budget_ms: float,
+           cfg: EvolutionSettings) -> Subnet:
+    """Mutate until the child is new and within budget; else a fresh random subnet within budget."""
+    for _ in range(cfg.redraws):
+        c = mutate(space, parent, rng, cfg.mutate_prob)
+        if c.to_key() not in ledger.seen and ledger.latency(c) <= budget_ms:
+            return c
+    return _fresh_within(space, rng, ledger, budget_ms, cfg.sample_tries)
+
+
+def regularized_evolution(space: SpaceSpec, fitness: Fitness, latency: Latency, budget_ms: float,
+                          cfg: EvolutionSettings, on_eval: Optional[Callable[[Candidate], None]] = None,
+                          device: str = "device") -> list[Candidate]:
+    """Aging evolution under ``latency <= budget_ms``; returns every evaluated candidate in order."""
+    fastest_check(space, latency, budget_ms, device)
+    rng = random.Random(cfg.seed)
+    ledger = _Ledger(fitness, latency, on_eval)
+    population: deque[Candidate] = deque()
+    for _ in range(min(cfg.population, cfg.evaluations)):
+        population.append(ledger.evaluate(_fresh_within(space, rng, ledger, budget_ms, cfg.sample_tries), 0))
+    cycle, stalls = 0, 0
+    while len(ledger.seen) < cfg.evaluations and stalls < 10 * cfg.evaluations:
+        tournament = rng.sample(list(population), min(cfg.sample_size, len(population)))
+        parent = max(tournament, key=lambda c: c.fitness)
+        before = len(ledger.seen)
+        child = ledger.evaluate(_child(space, parent.subnet, rng, ledger, budget_ms, cfg),
+                                1 + cycle // max(cfg.population, 1))
+        stalls += len(ledger.seen) == before  # the budget admits too few subnets to find new ones
+        population.append(child)
+        population.popleft()
+        cycle += 1
+    return list(ledger.seen.values())
+
+
+def random_search(space: SpaceSpec, fitness: Fitness, latency: Latency, budget_ms: float, evaluations: int,
+                  seed: int = 0, on_eval: Optional[Callable[[Candidate], None]] = None,
+                  device: str = "device", sample_tries: int = 2000) -> list[Candidate]:
+    """Baseline: ``evaluations`` distinct subnets drawn uniformly within the budget."""
+    fastest_check(space, latency, budget_ms, device)
+    rng = random.Random(seed)
+    ledger = _Ledger(fitness, latency, on_eval)
+    for _ in range(10 * evaluations):
+        if len(ledger.seen) >= evaluations:
+            break
+        ledger.evaluate(_fresh_within(space, rng, ledger, budget_ms, sample_tries), 0)
+    return list(ledger.seen.values())
+
+
+def best(candidates: list[Candidate], budget_ms: float) -> Optional[Candidate]:
+    fitting = [c for c in candidates if c.latency_ms <= budget_ms]
+    return max(fitting, key=lambda c: c.fitness) if fitting else None
+
+
+def pareto_front(points: list[tuple[str, float, float]]) -> list[tuple[str, float, float]]:
+    """Non-dominated (key, accuracy, latency) points, fastest first: no other point is at least
+    as accurate and at least as fast while strictly better in one."""
+    ordered = sorted(points, key=lambda p: (p[2], -p[1]))
+    front: list[tuple[str, float, float]] = []
+    for p in ordered:
+        tie = bool(front) and (p[1], p[2]) == (front[-1][1], front[-1][2])  # equal points do not dominate
+        if not front or p[1] > front[-1][1] or tie:
+            front.append(p)
+    return front
+
+
+# ----------------------------------------------------------------------------- logs and caches
+
+def append_jsonl(path: Path, record: dict[str, Any]) -> None:
+    """One line per call with a single write in append mode; a torn last line is skipped on read."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+    try:
+        os.write(fd, (json.dumps(record) + "\n").encode())
+    finally:
+        os.close(fd)
+
+
+def read_jsonl(path: Path) -> list[dict[str, Any]]:
+    if not path.is_file():
+        return []
+    out = []
+    for line in path.read_text(encoding="utf-8").splitlines():
+        try:
+            out.append(json.loads(line))
+        except json.JSONDecodeError:
+            continue  # a line torn by a kill
+    return out
+
+
+class AccuracyCache:
+    """Accuracy per subnet key, valid only for the same recipe, weights and evaluation setup (``tag``)."""
+
+    def __init__(self, path: Path, tag: dict[str, Any]):
+        self.path, self.tag = Path(path), dict(tag)
+        self.entries = {r["key"]: r for r in read_jsonl(self.path)
+                        if "key" in r and all(r.get(k) == v for k, v in self.tag.items())}
+
+    def get(self, key: str) -> Optional[dict[str, Any]]:
+        return self.entries.get(key)
+
+    def put(self, key: str, record: dict[str, Any]) -> None:
+        rec = {"key": key, **record, **self.tag}
+        append_jsonl(self.path, rec)
+        self.entries[key] = rec
+
+
+class CachedAccuracy:
+    """fitness(subnet) through the cache; ``compute`` returns {"val_acc", "params", "macs"}."""
+
+    def __init__(self, cache: AccuracyCache, compute: Callable[[Subnet], dict[str, Any]]):
+        self.cache, self.compute = cache, compute
+        self.fresh = self.hits = 0
+
+    def record(self, subnet: Subnet) -> dict[str, Any]:
+        key = subnet.to_key()
+        rec = self.cache.get(key)
+        if rec is None:
+            self.cache.put(key, self.compute(subnet))
+            rec = self.cache.get(key)
+            self.fresh += 1
+        else:
+            self.hits += 1
+        return rec
+
+    def __call__(self, subnet: Subnet) -> float:
+        return float(self.record(subnet)["val_acc"])
+
+
+class CachedLatency:
+    """Predicted ms per key (the predictor is called once per subnet) and the time it took."""
+
+    def __init__(self, predictor: Any):
+        self.predictor, self.memo, self.seconds = predictor, {}, 0.0
+
+    def __call__(self, subnet: Subnet) -> float:
+        key = subnet.to_key()
+        if key not in self.memo:
+            t0 = time.perf_counter()
+            self.memo[key] = float(self.predictor.predict_ms(subnet))
+            self.seconds += time.perf_counter() - t0
+        return self.memo[key]

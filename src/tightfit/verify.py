@@ -1,0 +1,363 @@
+"""QA re-measurement of exported models (needs only numpy and onnxruntime; PIL only for --data).
+
+For each export folder: the manifest is read and checked, model.onnx must still
+have the SHA-256 the manifest records, and ONNX Runtime must load it. All models
+are then timed again, interleaved, under the protocol the manifest records, and
+each is judged against its budget. A JSON verdict is written atomically.
+
+Exit codes: 0 every model meets its budget, 1 any misses (or measuring fails),
+2 bad input (one `error:` line, nothing written).
+"""
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import hashlib
+import json
+import os
+import sys
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, NoReturn
+
+import numpy as np
+import onnxruntime as ort
+
+from tightfit.ondevice.device import describe_device
+from tightfit.ondevice.measure_worker import stderr_progress
+from tightfit.ondevice.protocol import (Protocol, fits_budget, make_session, measure_repeated,
+                                        random_input, write_json_atomic)
+from tightfit.ondevice.runner import QUICK
+
+MANIFEST_FORMAT = "tightfit-export-manifest"
+VERDICT_FORMAT = "tightfit-verify-verdict"
+REQUIRED = {  # section -> fields verify relies on; the rest of the manifest is informational
+    "input": ("name", "channels", "image_size", "color", "mean", "std"),
+    "output": ("classes",),
+    "latency": ("device", "protocol"),
+    "budget": ("ms", "percentile"),
+}
+
+
+class VerifyError(Exception):
+    """Bad input the user can fix: one `error:` line, exit code 2, nothing written."""
+
+
+@dataclass(frozen=True)
+class Export:
+    name: str
+    folder: Path
+    model: Path
+    manifest: dict
+
+
+def sha256_file(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def read_manifest(folder: Path) -> dict:
+    """Parsed manifest.json with every field verify relies on present and sane."""
+    path = folder / "manifest.json"
+    if not path.is_file():
+        raise VerifyError(f"{path} not found; pass an export folder written by 'tightfit search' or 'tightfit export'")
+    try:
+        m = json.loads(path.read_text("utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise VerifyError(f"{path} is not valid JSON ({exc}); restore it from the export") from None
+    if not isinstance(m, dict) or m.get("format") != MANIFEST_FORMAT or m.get("version") != 1:
+        raise VerifyError(f"{path} is not a {MANIFEST_FORMAT} version 1 file; restore it from the export")
+    for key in ("model_file", "sha256"):
+        if not isinstance(m.get(key), str) or not m[key]:
+            raise VerifyError(f"{path} lacks '{key}'; restore the manifest from the export")
+    for section, keys in REQUIRED.items():
+        missing = [k for k in keys if k not in (m.get(section) or {})]
+        if not isinstance(m.get(section), dict) or missing:
+            raise VerifyError(f"{path} lacks {section}.{(missing or ['*'])[0]}; restore the manifest from the export")
+    ms, pct = m["budget"]["ms"], m["budget"]["percentile"]
+    if not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in (ms, pct)) \
+            or ms <= 0 or not 0 < pct <= 100:
+        raise VerifyError(f"{path}: budget.ms {ms!r} / budget.percentile {pct!r} must be positive numbers "
+                          "(percentile <= 100)")
+    return m
+
+
+def _check_session(model: Path, m: dict) -> None:
+    """ONNX Runtime loads the file and its input is the one the manifest describes."""
+    try:
+        session = make_session(model, Protocol())
+        random_input(session, 1, seed=0)
+    except Exception as exc:  # ORT raises several pybind types; all mean "cannot load"
+        reason = " ".join(str(exc).split())[:200]
+        raise VerifyError(f"onnxruntime {ort.__version__} cannot load {model} ({reason}); "
+                          "re-export it or restore the original file") from None
+    inputs = {i.name: i.shape for i in session.get_inputs()}
+    spec = m["input"]
+    want = [spec["channels"], spec["image_size"], spec["image_size"]]
+    if spec["name"] not in inputs or list(inputs[spec["name"]][1:]) != want:
+        raise VerifyError(f"{model} has inputs {inputs} but the manifest describes "
+                          f"{spec['name']!r} (N, {', '.join(map(str, want))}); the manifest belongs to another model")
+
+
+def load_export(folder: str | os.PathLike) -> Export:
+    """Manifest read, file present, hash unchanged, loadable by ONNX Runtime."""
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise VerifyError(f"export folder {folder} {'is not a folder' if folder.exists() else 'not found'}; pass folders such as RUN_DIR/exports/<device>-<budget>ms")
+    m = read_manifest(folder)
+    rel = Path(m["model_file"])
+    if rel.is_absolute() or ".." in rel.parts:
+        raise VerifyError(f"{folder}/manifest.json: model_file {m['model_file']!r} must be a file inside the folder")
+    model = folder / rel
+    if not model.is_file():
+        raise VerifyError(f"{model} is missing; copy the whole export folder")
+    digest = sha256_file(model)
+    if digest != m["sha256"].lower():
+        raise VerifyError(f"{rel} in {folder} changed after export (sha256 {digest[:12]}..., manifest says "
+                          f"{m['sha256'][:12]}...); restore the exported file")
+    _check_session(model, m)
+    return Export(folder.name, folder.resolve(), model.resolve(), m)
+
+
+def protocol_for(e: Export, threads: int | None, repeats: int | None, quick: bool) -> Protocol:
+    """The manifest's protocol, judged at the budget's percentile, with the user's overrides."""
+    base = Protocol.from_dict(e.manifest["latency"]["protocol"])
+    changes: dict[str, Any] = {"percentile": float(e.manifest["budget"]["percentile"])}
+    if quick:
+        changes.update(QUICK)
+    if threads is not None:
+        changes["threads"] = threads
+    if repeats is not None:
+        changes["repeats"] = repeats
+    return dataclasses.replace(base, **changes)
+
+
+def environment_warnings(e: Export, device: dict, protocol: Protocol) -> list[str]:
+    """What differs between the export's measurement and this one, one line each."""
+    was, out = e.manifest["latency"]["device"], []
+    for key, label in (("cpu_model", "CPU"), ("logical_cores", "core count"), ("onnxruntime", "onnxruntime version")):
+        if key in was and was[key] != device.get(key):
+            out.append(f"{label} differs: export measured on {was[key]!r}, this is {device.get(key)!r}")
+    threads = Protocol.from_dict(e.manifest["latency"]["protocol"]).threads
+    if protocol.threads != threads:
+        out.append(f"threads differ: export used {threads}, this run uses {protocol.threads}")
+    return out
+
+
+def measure(exports: list[Export], protocols: list[Protocol]) -> dict[Path, dict]:
+    """Interleave all models that share a protocol (usually all of them) and return summaries."""
+    groups: dict[Protocol, list[str]] = {}
+    for e, p in zip(exports, protocols):
+        groups.setdefault(p, []).append(str(e.model))
+    out: dict[Path, dict] = {}
+    for p, paths in groups.items():
+        print(f"measuring {len(paths)} model(s): {max(p.repeats, 1)} repeat(s), at least {p.min_seconds:g} s "
+              f"and {p.min_runs} runs each, {p.threads} thread(s)", file=sys.stderr)
+        res = measure_repeated(paths, p, progress=stderr_progress("verify"))
+        out.update({Path(k).resolve(): v for k, v in res.items()})
+    return out
+
+
+def judge(e: Export, s: dict, protocol: Protocol, warnings: list[str], threads: int | None) -> dict:
+    """One model's verdict record."""
+    budget = float(e.manifest["budget"]["ms"])
+    keep = ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "budget_stat_ms", "cv", "iqr_over_median",
+            "repeat_spread", "stable", "note", "runs", "repeats")
+    lat = e.manifest["latency"]
+    return {
+        "name": e.name, "export_dir": str(e.folder), "model_file": e.manifest["model_file"],
+        "sha256": e.manifest["sha256"], "sha256_ok": True,
+        "budget_ms": budget, "percentile": protocol.percentile,
+        "budget_device": e.manifest["budget"].get("device"),
+        "measured": {k: s[k] for k in keep if k in s},
+        "at_export": {k: lat[k] for k in ("p50_ms", "p90_ms", "p99_ms") if k in lat},
+        "margin": (budget - s["budget_stat_ms"]) / budget,
+        "pass": fits_budget(s, budget), "noisy": not s["stable"],
+        "warnings": warnings, "threads_override": threads, "protocol": protocol.to_dict(),
+    }
+
+
+def format_table(rows: list[dict]) -> str:
+    head = (f"{'model':<20} {'budget ms':>13} {'p50':>8} {'p90':>8} {'p99':>8} {'IQR/med':>8} "
+            f"{'rep spr':>8} {'margin':>8}  verdict")
+    lines = [head, "-" * len(head)]
+    for r in rows:
+        m, spread = r["measured"], r["measured"].get("repeat_spread")
+        budget = f"{r['budget_ms']:.3f} (p{r['percentile']:g})"
+        verdict = ("PASS" if r["pass"] else "MISS") + (" noisy" if r["noisy"] else "")
+        lines.append(f"{r['name'][:20]:<20} {budget:>13} {m['p50_ms']:>8.3f} {m['p90_ms']:>8.3f} "
+                     f"{m['p99_ms']:>8.3f} {m['iqr_over_median']:>8.1%} "
+                     f"{'-' if spread is None else format(spread, '.1%'):>8} {r['margin']:>+8.1%}  {verdict}")
+    lines += [f"  {r['name']}: noisy: {r['measured']['note']}" for r in rows if r["noisy"]]
+    return "\n".join(lines)
+
+
+# ---- accuracy on a labelled folder ---------------------------------------------------------
+
+def list_labelled(folder: Path, classes: list[str]) -> list[tuple[Path, int]]:
+    """(image, label index in the manifest's classes) for folder/<class>/<image>."""
+    from PIL import Image
+    if not folder.is_dir():
+        raise VerifyError(f"--data {folder} is not a folder; pass a folder with one sub-folder per class")
+    exts = {ext.lower() for ext, fmt in Image.registered_extensions().items() if fmt in Image.OPEN}
+    dirs = sorted(p for p in folder.iterdir() if p.is_dir() and not p.name.startswith("."))
+    unknown = [d.name for d in dirs if d.name not in classes]
+    if unknown:
+        raise VerifyError(f"--data class folder {unknown[0]!r} is not a class of the model ({', '.join(classes)}); "
+                          "rename or remove it")
+    files = [(f, classes.index(d.name)) for d in dirs for f in sorted(d.iterdir())
+             if f.is_file() and f.suffix.lower() in exts and not f.name.startswith(".")]
+    if not files:
+        raise VerifyError(f"--data {folder} holds no images in class sub-folders named like {classes[:3]}")
+    return files
+
+
+def preprocess(path: Path, spec: dict) -> np.ndarray | None:
+    """Image as the manifest describes: shorter side to S (bilinear), centre crop, /255, (x-mean)/std, CHW."""
+    from PIL import Image, ImageOps
+    size = int(spec["image_size"])
+    try:
+        with Image.open(path) as img:
+            img = ImageOps.exif_transpose(img).convert("L" if spec["color"] == "grey" else "RGB")
+    except (OSError, ValueError, SyntaxError):
+        return None
+    w, h = img.size
+    nw, nh = max(size, round(w * size / min(w, h))), max(size, round(h * size / min(w, h)))
+    img = img.resize((nw, nh), Image.Resampling.BILINEAR) if (nw, nh) != (w, h) else img
+    left, top = (nw - size) // 2, (nh - size) // 2
+    x = np.asarray(img.crop((left, top, left + size, top + size)), dtype=np.float32).reshape(size, size, -1) / 255.0
+    x = (x - np.asarray(spec["mean"], np.float32)) / np.asarray(spec["std"], np.float32)
+    return x.transpose(2, 0, 1)
+
+
+def folder_accuracy(e: Export, folder: Path, batch: int = 64) -> dict:
+    """Top-1 accuracy (percent) of the ONNX model on a labelled folder, beside the manifest's claims."""
+    files = list_labelled(folder, list(e.manifest["output"]["classes"]))
+    xs, ys, skipped = [], [], 0
+    for f, label in files:
+        x = preprocess(f, e.manifest["input"])
+        skipped += x is None
+        if x is not None:
+            xs.append(x)
+            ys.append(label)
+    if not xs:
+        raise VerifyError(f"--data {folder}: none of {len(files)} image files could be read")
+    session = make_session(e.model, Protocol())
+    fixed = session.get_inputs()[0].shape[0]
+    step = fixed if isinstance(fixed, int) and fixed > 0 else batch
+    x, preds = np.stack(xs), []
+    for i in range(0, len(x), step):
+        preds.append(session.run(None, {e.manifest["input"]["name"]: x[i:i + step]})[0].argmax(1))
+    correct = int((np.concatenate(preds) == np.asarray(ys)).sum())
+    claims = e.manifest.get("accuracy") or {}
+    return {"folder": str(folder), "images": len(xs), "skipped": skipped, "top1": 100.0 * correct / len(xs),
+            "manifest_validation_top1": (claims.get("validation") or {}).get("top1"),
+            "manifest_test_top1": (claims.get("test") or {}).get("top1")}
+
+
+def format_accuracy(rows: list[dict]) -> str:
+    def pct(v: Any) -> str:
+        return "-" if v is None else f"{v:.2f}"
+    lines = [f"{'model':<20} {'images':>7} {'skipped':>7} {'top-1 %':>8} {'val % (manifest)':>17} "
+             f"{'test % (manifest)':>18}"]
+    for r in rows:
+        a = r["accuracy"]
+        lines.append(f"{r['name'][:20]:<20} {a['images']:>7} {a['skipped']:>7} {a['top1']:>8.2f} "
+                     f"{pct(a['manifest_validation_top1']):>17} {pct(a['manifest_test_top1']):>18}")
+    return "\n".join(lines)
+
+
+# ---- command line --------------------------------------------------------------------------
+
+def default_out(folders: list[str]) -> Path:
+    parents = [str(Path(f).resolve().parent) for f in folders]
+    return Path(os.path.commonpath(parents)) / "verdict.json"
+
+
+def _check_args(args: argparse.Namespace) -> Path:
+    for flag, low in (("threads", 1), ("repeats", 0)):
+        value = getattr(args, flag)
+        if value is not None and value < low:
+            raise VerifyError(f"--{flag} {value} is out of range (must be >= {low})")
+    out = Path(args.out) if args.out else default_out(args.export_dirs)
+    if out.is_dir():
+        raise VerifyError(f"--out {out} is a folder; give a file path such as verdict.json")
+    if not os.access(out.parent if out.parent.exists() else Path.cwd(), os.W_OK):
+        raise VerifyError(f"cannot write {out}; choose a writable --out path")
+    return out
+
+
+def run(args: argparse.Namespace) -> int:
+    """Check, measure, print, write; returns the exit code (handles its own bad input)."""
+    try:
+        out = _check_args(args)
+        exports = list({e.folder: e for e in map(load_export, args.export_dirs)}.values())
+        accuracy = [folder_accuracy(e, Path(args.data)) for e in exports] if args.data else None
+    except VerifyError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    device = describe_device()
+    protocols = [protocol_for(e, args.threads, args.repeats, args.quick) for e in exports]
+    warned = [environment_warnings(e, device, p) for e, p in zip(exports, protocols)]
+    for text in dict.fromkeys(w for ws in warned for w in ws):
+        names = [e.name for e, ws in zip(exports, warned) if text in ws]
+        print(f"warning: {text} ({', '.join(names)})", file=sys.stderr)
+    if args.quick:
+        print("warning: --quick: short measurement, figures are not stable", file=sys.stderr)
+    try:
+        summaries = measure(exports, protocols)
+    except RuntimeError as exc:
+        print(f"error: {' '.join(str(exc).split())}", file=sys.stderr)
+        return 1
+    rows = [judge(e, summaries[e.model], p, w, args.threads) for e, p, w in zip(exports, protocols, warned)]
+    for row, acc in zip(rows, accuracy or []):
+        row["accuracy"] = acc
+    print(format_table(rows))
+    if accuracy:
+        print("\n" + format_accuracy(rows))
+    verdict = {"format": VERDICT_FORMAT, "version": 1, "pass": all(r["pass"] for r in rows),
+               "quick": bool(args.quick), "device": device,
+               "created": datetime.now(timezone.utc).isoformat(timespec="seconds"), "models": rows}
+    write_json_atomic(out, verdict)
+    print(f"verdict: {'PASS' if verdict['pass'] else 'MISS'} -> {out}", file=sys.stderr)
+    return 0 if verdict["pass"] else 1
+
+
+def _add_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("export_dirs", nargs="+", metavar="EXPORT_DIR", help="export folder(s) holding manifest.json")
+    p.add_argument("--threads", type=int, default=None, help="override the manifest's intra-op thread count")
+    p.add_argument("--repeats", type=int, default=None, help="override the number of fresh-process repeats")
+    p.add_argument("--quick", action="store_true", help="short smoke-test measurement (figures not stable)")
+    p.add_argument("--data", default=None, metavar="FOLDER",
+                   help="labelled images (one sub-folder per class) to re-check top-1 accuracy")
+    p.add_argument("--out", default=None, help="verdict JSON to write (default: verdict.json beside the exports)")
+
+
+def add_verify_parser(sub: argparse._SubParsersAction) -> argparse.ArgumentParser:
+    """The `tightfit verify` subcommand; its handler never imports torch."""
+    p = sub.add_parser("verify", help="re-measure exported models against their manifests and budgets",
+                       description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    _add_arguments(p)
+    p.set_defaults(func=run)
+    return p
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message: str) -> NoReturn:
+        print(f"error: {message} (see --help)", file=sys.stderr)
+        sys.exit(2)
+
+
+def main(argv: list[str] | None = None) -> int:
+    p = _Parser(prog="python -m tightfit.verify", description=__doc__,
+                formatter_class=argparse.RawDescriptionHelpFormatter)
+    _add_arguments(p)
+    return run(p.parse_args(argv))
+
+
+if __name__ == "__main__":
+    sys.exit(main())

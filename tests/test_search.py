@@ -1,0 +1,303 @@
+"""Search: budget parsing, constrained regularized evolution vs random search, Pareto front,
+the accuracy cache (re-runs and interrupted runs), impossible budgets, the export manifest,
+and (slow) search + verification + export end to end on a briefly trained run."""
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import random
+import statistics
+from pathlib import Path
+
+import numpy as np
+import onnxruntime as ort
+import pytest
+import torch
+
+from tightfit.errors import UserError
+from tightfit.manifest import Accuracy, build_manifest, latency_section, write_export
+from tightfit.search import SearchSettings, parse_budget, ranked_within, search_budget, write_front
+from tightfit.search_evolution import (AccuracyCache, CachedAccuracy, CachedLatency, EvolutionSettings, pareto_front,
+                                       random_search, regularized_evolution)
+from tightfit.space import SpaceSpec, StageSpec, Subnet
+
+# ----------------------------------------------------------------------------- budgets
+
+
+@pytest.mark.parametrize("text, ms", [
+    ("0.3ms", 0.3), ("300us", 0.3), ("1.2 ms", 1.2), ("0.0012s", 1.2), ("2ms", 2.0), (" 450 us ", 0.45),
+    ("1e-3s", 1.0), (".5ms", 0.5), ("250µs", 0.25),
+])
+def test_parse_budget_good(text, ms):
+    # SI prefixes: 1 s = 1000 ms, 1 ms = 1000 µs (BIPM, The International System of Units, Table 7).
+    assert parse_budget(text) == pytest.approx(ms, rel=1e-12)
+
+
+@pytest.mark.parametrize("text", ["0.3", "ms", "fast", "0ms", "0.000us", "-1ms", "1.2 msec", "3 m", "", "1,5ms",
+                                  "nanms", "infms"])
+def test_parse_budget_bad_names_the_value(text):
+    with pytest.raises(UserError) as err:
+        parse_budget(text)
+    assert repr(text) in str(err.value)
+
+
+# ----------------------------------------------------------------------------- a synthetic problem
+
+def wide_space() -> SpaceSpec:
+    """Five stages, depths 1-4, three expansions, three kernels: about 10^15 subnets."""
+    stages = tuple(StageSpec(out_chs=16 * (i + 1), stride=2 if i % 2 == 0 else 1, depths=(1, 2, 3, 4),
+                             exp_ratios=(3, 4, 6), kernels=(3, 5, 7)) for i in range(5))
+    return SpaceSpec(stem_chs=16, stem_stride=1, stages=stages)
+
+
+class FakePredictor:
+    """Latency of a subnet: a sum of per-block costs growing with expansion and kernel area (the
+    shape of a depthwise-separable block's multiply-adds, Howard et al. 2017, Sec. 3.1)."""
+
+    def __init__(self, space: SpaceSpec):
+        self.space, self.calls = space, 0
+
+    def predict_ms(self, subnet: Subnet) -> float:
+        self.calls += 1
+        total = 0.02
+        for i, blocks in enumerate(subnet.stages):
+            for e, k in blocks:
+                total += 0.004 * (1 + 0.5 * i) * e * (1 + k * k / 25)
+        return total
+
+
+def synthetic_fitness(seed: int):
+    """A known but rugged function of the architecture: each (stage, block, choice) has its own
+    random value, and deeper stages pay off only with matching kernels. Not monotone in latency,
+    so a search must find the right combination, not just the biggest subnet that fits."""
+    rng = random.Random(seed)
+    table = {(i, j, e, k): rng.gauss(0, 1) for i in range(5) for j in range(4) for e in (3, 4, 6) for k in (3, 5, 7)}
+
+    def fitness(subnet: Subnet) -> float:
+        score = 0.0
+        for i, blocks in enumerate(subnet.stages):
+            for j, (e, k) in enumerate(blocks):
+                score += table[(i, j, e, k)] + (0.5 if k == blocks[0][1] else -0.3)
+        return score
+    return fitness
+
+
+BUDGET = 0.6
+
+
+def test_evolution_beats_random_at_equal_evaluations():
+    # Real et al. 2019 (Fig. 3): regularized evolution reaches better models than random
+    # search for the same number of evaluated models. Checked here on a known function.
+    space = wide_space()
+    predictor = FakePredictor(space)
+    wins, gaps = 0, []
+    for seed in range(6):
+        fitness = synthetic_fitness(100 + seed)
+        cfg = EvolutionSettings(population=20, sample_size=5, evaluations=300, seed=seed)
+        evo = regularized_evolution(space, fitness, predictor.predict_ms, BUDGET, cfg)
+        rnd = random_search(space, fitness, predictor.predict_ms, BUDGET, 300, seed=seed)
+        assert len(evo) == len(rnd) == 300
+        for c in evo + rnd:  # the constraint holds for every candidate ever evaluated
+            assert predictor.predict_ms(c.subnet) <= BUDGET
+            assert space.contains(c.subnet)
+        best_evo, best_rnd = max(c.fitness for c in evo), max(c.fitness for c in rnd)
+        wins += best_evo > best_rnd
+        gaps.append(best_evo - best_rnd)
+    assert wins >= 5, gaps
+    assert statistics.mean(gaps) > 0.5, gaps
+
+
+def test_initial_population_respects_a_tight_budget():
+    # A budget only a sliver of the space meets: rejection sampling fails, shrinking still
+    # finds subnets within it, and every evaluated candidate fits.
+    space = wide_space()
+    predictor = FakePredictor(space)
+    smallest = predictor.predict_ms(space.smallest())
+    budget = smallest * 1.15
+    cfg = EvolutionSettings(population=8, sample_size=3, evaluations=40, seed=1, sample_tries=50)
+    cands = regularized_evolution(space, lambda s: -predictor.predict_ms(s), predictor.predict_ms, budget, cfg)
+    assert cands and all(c.latency_ms <= budget for c in cands)
+
+
+def test_impossible_budget_names_the_fastest_figure():
+    space = wide_space()
+    predictor = FakePredictor(space)
+    fastest = predictor.predict_ms(space.smallest())
+    with pytest.raises(UserError) as err:
+        regularized_evolution(space, lambda s: 0.0, predictor.predict_ms, fastest * 0.9, EvolutionSettings(),
+                              device="pi4")
+    msg = str(err.value)
+    assert f"{fastest:.3f} ms" in msg and "pi4" in msg and "budget" in msg
+
+
+# ----------------------------------------------------------------------------- Pareto front
+
+def dominated(p, others) -> bool:
+    """Pareto dominance (Deb et al. 2002, Sec. II): no worse in both objectives, better in one."""
+    return any(q[1] >= p[1] and q[2] <= p[2] and (q[1] > p[1] or q[2] < p[2]) for q in others)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_pareto_front_matches_brute_force(seed):
+    rng = random.Random(seed)
+    # Integer grid values so ties (equal accuracy or latency) occur.
+    points = [(f"s{i}", float(rng.randint(0, 30)), float(rng.randint(1, 30))) for i in range(200)]
+    points += [("dupA", 31.0, 5.0), ("dupB", 31.0, 5.0)]
+    front = pareto_front(points)
+    brute = {p[0] for p in points if not dominated(p, points)}
+    assert {p[0] for p in front} == brute
+    lat = [p[2] for p in front]
+    assert lat == sorted(lat)
+
+
+def test_front_file_over_evaluated_candidates(tmp_path):
+    space = wide_space()
+    predictor = FakePredictor(space)
+    fitness = CachedAccuracy(AccuracyCache(tmp_path / "cache.jsonl", {"recipe_hash": "r"}),
+                             lambda s: {"val_acc": synthetic_fitness(3)(s), "params": 1, "macs": 1})
+    log = tmp_path / "candidates.jsonl"
+    for budget in (0.4, 0.7):
+        search_budget(space, fitness, CachedLatency(predictor), budget, "fake", SearchSettings(
+            population=10, evaluations=40, seed=2), log)
+    rows = [json.loads(line) for line in log.read_text().splitlines()]
+    assert {r["budget_ms"] for r in rows} == {0.4, 0.7} and len(rows) == 80
+    assert all(r["predicted_ms"] <= r["budget_ms"] for r in rows)
+    front = write_front(tmp_path / "front.json", "fake", log)
+    pts = [(r["key"], r["val_acc"], r["predicted_ms"]) for r in rows]
+    assert {f["key"] for f in front} == {p[0] for p in pts if not dominated(p, pts)}
+    assert json.loads((tmp_path / "front.json").read_text()) == front
+
+
+# ----------------------------------------------------------------------------- accuracy cache
+
+class CountingAccuracy:
+    """Stands in for BN recalibration + validation: counts calls, can fail after N (an interrupt)."""
+
+    def __init__(self, fail_after: int | None = None):
+        self.calls, self.fail_after, self.fn = 0, fail_after, synthetic_fitness(7)
+
+    def __call__(self, subnet: Subnet) -> dict:
+        if self.fail_after is not None and self.calls >= self.fail_after:
+            raise KeyboardInterrupt
+        self.calls += 1
+        return {"val_acc": self.fn(subnet), "params": 0, "macs": 0}
+
+
+def _evolve(path: Path, compute, tag=None, seed=0, evaluations=60):
+    space = wide_space()
+    fitness = CachedAccuracy(AccuracyCache(path, tag or {"recipe_hash": "abc", "images": 100}), compute)
+    cfg = EvolutionSettings(population=12, sample_size=4, evaluations=evaluations, seed=seed)
+    return regularized_evolution(space, fitness, FakePredictor(space).predict_ms, BUDGET, cfg), fitness
+
+
+def test_cache_reused_on_second_run(tmp_path):
+    path = tmp_path / "accuracy_cache.jsonl"
+    first, f1 = _evolve(path, CountingAccuracy())
+    assert f1.fresh == 60
+    again = CountingAccuracy()
+    second, f2 = _evolve(path, again)
+    assert again.calls == 0 and f2.fresh == 0 and f2.hits == 60
+    assert [c.key for c in first] == [c.key for c in second]
+    # Another budget or seed pays only for subnets it has not seen.
+    third = CountingAccuracy()
+    cands, f3 = _evolve(path, third, seed=5)
+    assert third.calls == f3.fresh == len({c.key for c in cands} - {c.key for c in first})
+
+
+def test_cache_invalidated_by_recipe_hash(tmp_path):
+    path = tmp_path / "accuracy_cache.jsonl"
+    _evolve(path, CountingAccuracy())
+    other = CountingAccuracy()
+    _evolve(path, other, tag={"recipe_hash": "changed", "images": 100})
+    assert other.calls == 60
+
+
+def test_interrupted_search_resumes_from_cache(tmp_path):
+    path = tmp_path / "accuracy_cache.jsonl"
+    with pytest.raises(KeyboardInterrupt):
+        _evolve(path, CountingAccuracy(fail_after=25))
+    with open(path, "a") as f:
+        f.write('{"key": "e3k3_e3k')  # a line torn by the kill
+    rerun = CountingAccuracy()
+    cands, fit = _evolve(path, rerun)
+    assert len(cands) == 60 and rerun.calls == 60 - 25 and fit.hits == 25
+    fresh = CountingAccuracy()
+    reference, _ = _evolve(tmp_path / "fresh.jsonl", fresh)
+    assert [c.key for c in cands] == [c.key for c in reference]
+
+
+def test_ranked_within_orders_by_accuracy():
+    space = wide_space()
+    predictor = FakePredictor(space)
+    cands = random_search(space, synthetic_fitness(1), predictor.predict_ms, 0.8, 50, seed=3)
+    ranked = ranked_within(cands, 0.5)
+    assert all(c.latency_ms <= 0.5 for c in ranked)
+    assert [c.fitness for c in ranked] == sorted((c.fitness for c in ranked), reverse=True)
+    assert len(ranked) == len({c.key for c in cands if c.latency_ms <= 0.5})
+
+
+# ----------------------------------------------------------------------------- manifest
+
+REQUIRED = {
+    "": ("format", "version", "model_file", "sha256", "architecture", "input", "output", "accuracy", "latency",
+         "budget", "software", "recipe", "created"),
+    "architecture": ("key", "depths", "params", "macs", "description"),
+    "input": ("name", "layout", "dtype", "shape", "channels", "image_size", "color", "scale", "mean", "std", "resize"),
+    "output": ("name", "classes"),
+    "latency": ("device", "protocol", "p50_ms", "p90_ms", "p99_ms", "mean_ms", "cv", "iqr_over_median",
+                "repeat_spread", "stable", "note"),
+    "budget": ("ms", "percentile", "device"),
+    "software": ("tightfit", "torch", "onnx", "onnxruntime", "numpy", "python"),
+    "recipe": ("name", "hash"),
+}
+
+
+def test_manifest_fields_and_sha256(tmp_path):
+    from tightfit.export import onnx_bytes
+    from tightfit.extract import count_macs, count_params, extract_subnet
+    from tightfit.ondevice.device import describe_device
+    from tightfit.ondevice.protocol import Protocol
+    from tightfit.supernet import Supernet
+    from helpers import tiny_recipe
+    recipe = tiny_recipe()
+    space = recipe.space
+    subnet = space.middle()
+    sn = Supernet(space, 3, 4)
+    sn.set_subnet(subnet)
+    net = extract_subnet(sn, subnet)
+    data = onnx_bytes(net, 3, 16)
+    measured = {"p50_ms": 0.1, "p90_ms": 0.12, "p99_ms": 0.2, "mean_ms": 0.11, "cv": 0.05, "iqr_over_median": 0.02,
+                "repeat_spread": 0.01, "stable": True, "note": "ok", "budget_stat_ms": 0.12}
+    lat = latency_section(measured, describe_device(), Protocol().to_dict(), 0.115)
+    m = build_manifest(space=space, subnet=subnet, params=count_params(net), macs=count_macs(net, 3, 16),
+                       onnx_data=data, channels=3, image_size=16, class_names=("a", "b", "c", "d"),
+                       mean=(0.5, 0.5, 0.5), std=(0.2, 0.2, 0.2), validation=Accuracy(81.234, 600, "validation"),
+                       test=Accuracy(80.5, 900, "test"), latency=lat, budget_ms=0.15, percentile=90.0,
+                       device_name="this-host", recipe_name=recipe.name, recipe_hash=recipe.hash())
+    folder = write_export(tmp_path / "exp", data, net, m)
+    for section, keys in REQUIRED.items():
+        where = m if not section else m[section]
+        assert not [k for k in keys if k not in where], section
+    written = json.loads((folder / "manifest.json").read_text())
+    # The file's digest computed independently with hashlib (Python standard library).
+    assert written["sha256"] == hashlib.sha256((folder / "model.onnx").read_bytes()).hexdigest()
+    assert written["architecture"]["key"] == subnet.to_key() and written["input"]["shape"] == [None, 3, 16, 16]
+    assert written["accuracy"]["validation"]["split"] == "validation" and written["accuracy"]["test"]["split"] == "test"
+    assert [d for d in written["architecture"]["description"] if d["type"] == "inverted_residual"].__len__() == \
+        sum(subnet.depths)
+    state = torch.load(folder / "state_dict.pt", weights_only=True)
+    assert set(state) == set(net.state_dict())
+    # ONNX Runtime reads the file and agrees with the static network.
+    x = torch.randn(2, 3, 16, 16)
+    out = ort.InferenceSession(str(folder / "model.onnx"), providers=["CPUExecutionProvider"]).run(
+        None, {"image": x.numpy()})[0]
+    assert np.abs(out - net(x).detach().numpy()).max() < 1e-4
+    with pytest.raises(ValueError):
+        write_export(tmp_path / "bad", data + b"x", net, m)
+
+
+def test_manifest_unverified_latency_says_so():
+    lat = latency_section(None, {"cpu_model": "elsewhere"}, {"threads": 1}, 0.42, "unverified: measure on the device")
+    assert lat["measured"] is False and lat["p90_ms"] is None and lat["stable"] is False
+    assert "unverified" in lat["note"] and math.isclose(lat["predicted_ms"], 0.42)

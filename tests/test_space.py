@@ -1,0 +1,65 @@
+"""Search space: size, sampling, keys."""
+import itertools
+import random
+from collections import Counter
+
+import pytest
+from hypothesis import given, settings, strategies as st
+
+from tightfit.errors import UserError
+from tightfit.space import Subnet
+from helpers import tiny_recipe
+
+SPACE = tiny_recipe().space
+
+
+def enumerate_all(space):
+    """Brute-force enumeration with itertools.product (reference for size())."""
+    per_stage = []
+    for s in space.stages:
+        block_choices = list(itertools.product(s.exp_ratios, s.kernels))
+        options = []
+        for d in s.depths:
+            options += list(itertools.product(block_choices, repeat=d))
+        per_stage.append(options)
+    return [Subnet(tuple(c)) for c in itertools.product(*per_stage)]
+
+
+def test_size_matches_brute_force_enumeration():
+    every = enumerate_all(SPACE)
+    assert SPACE.size() == len(every) == len({s.to_key() for s in every})
+    assert all(SPACE.contains(s) for s in every)
+
+
+def test_sampling_is_uniform_over_depths():
+    # Uniform over all subnets means depth d of the last stage is drawn with probability
+    # (#choices per block)^d / sum — checked with a loose chi-square-style bound (common practice).
+    rng = random.Random(0)
+    n = 6000
+    counts = Counter(len(SPACE.sample(rng).stages[2]) for _ in range(n))
+    per_block = 3 * 3
+    weights = {d: per_block ** d for d in (1, 2, 3)}
+    total = sum(weights.values())
+    for d, w in weights.items():
+        expected = n * w / total
+        assert abs(counts[d] - expected) < 5 * expected ** 0.5 + 1
+
+
+def test_largest_and_smallest():
+    assert SPACE.largest().to_key() == "e1k3_e4k5-e4k5_e6k7-e6k7-e6k7"
+    assert SPACE.smallest().to_key() == "e1k3_e2k3_e2k3"
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.integers(0, 2**32 - 1))
+def test_key_round_trip(seed):
+    sub = SPACE.sample(random.Random(seed))
+    assert SPACE.parse_key(sub.to_key()) == sub
+    assert Subnet.from_key(sub.to_key()).to_key() == sub.to_key()
+
+
+@pytest.mark.parametrize("key", ["", "e1k3", "x1k3_e2k3_e2k3", "e1k3_e2k3_e2k9", "e1k3_e2k3-e2k3-e2k3_e2k3",
+                                 "e1k3_e2.5k3_e2k3", "e1k3__e2k3"])
+def test_keys_outside_the_space_are_refused(key):
+    with pytest.raises(UserError):
+        SPACE.parse_key(key)
