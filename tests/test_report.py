@@ -1,6 +1,7 @@
 """`tightfit report`: plots and page from a fabricated run folder, the plotted front, missing pieces."""
 from __future__ import annotations
 
+import argparse
 import json
 import math
 import random
@@ -83,6 +84,11 @@ def fake_run(root: Path, search: bool = True) -> Path:
     (root / "search" / "picks.json").write_text(json.dumps(_picks(cands, rng)))
     (root / "baselines.json").write_text(json.dumps([{"name": "width x0.5", "test_acc": 58.0, "p90_ms": 0.2},
                                                      {"name": "width x1.0", "val_acc": 66.0, "p90_ms": 0.5}]))
+    qa_reps = [{"p50_ms": 1.3 + 0.05 * i, "p90_ms": 1.4 + 0.05 * i, "p99_ms": 1.9} for i in range(3)]
+    verdict = {"models": [{"export_dir": str(root / "exports" / "pi4-2.4ms"), "pass": True,
+                           "measured": {"p90_ms": 1.45, "budget_stat_ms": 1.45, "repeats": qa_reps}}]}
+    (root / "exports").mkdir()
+    (root / "exports" / "verdict.json").write_text(json.dumps(verdict))
     (root / "latency").mkdir()
     (root / "latency" / "host.json").write_text(json.dumps({"device": {"cpu_model": "Test CPU", "logical_cores": 2}}))
     return root
@@ -134,3 +140,12 @@ def test_not_a_run_folder_is_bad_input(tmp_path, case):
         (tmp_path / "run").mkdir()
     with pytest.raises(UserError, match="tightfit train"):
         report.write_report(tmp_path / "run")
+
+
+def test_report_subcommand_plugs_into_a_parser(tmp_path, capsys):
+    run = fake_run(tmp_path / "run", search=False)
+    parser = argparse.ArgumentParser()
+    report.add_report_parser(parser.add_subparsers())  # the way cli.py plugs it in
+    args = parser.parse_args(["report", str(run)])
+    assert args.func(args) == 0
+    assert str(run / "report" / "report.html") in capsys.readouterr().out

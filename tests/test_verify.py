@@ -256,3 +256,10 @@ def test_verify_imports_only_stdlib_numpy_onnxruntime_at_module_level():
             continue
         bad = [n for n in names if n.split(".")[0] not in allowed and not n.startswith("tightfit.ondevice")]
         assert not bad, f"verify.py imports {bad}"
+
+
+def test_unwritable_out_fails_before_measuring(tmp_path, model_bytes, capsys):
+    folder = make_export(tmp_path / "e", model_bytes)
+    (tmp_path / "plain-file").write_text("x")
+    code, out, err = run_verify(capsys, folder, "--out", tmp_path / "plain-file" / "v.json")
+    assert code == 2 and err.startswith("error: cannot write") and out == ""

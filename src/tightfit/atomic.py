@@ -16,6 +16,7 @@ def atomic_write(path: str | os.PathLike, write: Callable[[str], None]) -> Path:
     os.close(fd)
     try:
         write(tmp)
+        os.chmod(tmp, 0o644)  # mkstemp creates 0600; outputs are meant to be shared
         with open(tmp, "rb") as f:
             os.fsync(f.fileno())
         os.replace(tmp, path)

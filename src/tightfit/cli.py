@@ -91,6 +91,11 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--recipe", default=None, help="recipe to use instead of recipes/demo.toml")
     d.add_argument("--threads", type=int, default=None, help="torch CPU threads (default: all cores)")
     d.set_defaults(func=_cmd_demo)
+
+    from tightfit.report import add_report_parser
+    from tightfit.verify import add_verify_parser
+    add_verify_parser(sub)
+    add_report_parser(sub)
     return p
 
 

@@ -31,6 +31,7 @@ class DataConfig:
     test_fraction: float = 0.15    # builtin/folder only (Fashion-MNIST has its own test set)
     flip: bool = True              # random horizontal flips while training
     shift: int = 2                 # random translation in pixels while training
+    max_train_images: int = 0      # 0 = all; a cap for quick runs and smoke tests
 
 
 @dataclass(frozen=True)
@@ -188,6 +189,8 @@ def parse_recipe(doc: dict, default_name: str = "recipe") -> Recipe:
     for key in ("val_fraction", "test_fraction"):
         if not 0 <= getattr(data, key) < 0.9:
             raise _fail("data." + key, getattr(data, key), "must be in [0, 0.9)")
+    if data.max_train_images < 0:
+        raise _fail("data.max_train_images", data.max_train_images, "must be >= 0 (0 means all)")
     if data.shift < 0:
         raise _fail("data.shift", data.shift, "must be >= 0")
     train = _dataclass_from(doc.get("train", {}), TrainConfig, "train.",

@@ -10,15 +10,17 @@ import base64
 import html
 import io
 import json
+import statistics
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Optional
-
-from matplotlib.figure import Figure
+from typing import TYPE_CHECKING, Any, Optional
 
 from tightfit.atomic import write_bytes, write_text
 from tightfit.errors import UserError
+
+if TYPE_CHECKING:  # matplotlib is imported when plotting, so `tightfit --help` stays quick
+    from matplotlib.figure import Figure
 
 CAUTION = ("Latency measured on one machine under stated conditions is not a guarantee on another device; "
            "validation accuracy is not field performance.")
@@ -86,13 +88,21 @@ def _read_recipe(run_dir: Path, notes: list[str]) -> dict[str, Any]:
         return {}
 
 
+def export_folder(pick: dict, run_dir: Path) -> str:
+    """The pick's export folder as an absolute path; a relative one is tried from here, then in RUN_DIR/exports."""
+    given = Path(pick.get("export_dir") or "")
+    if given.is_absolute() or given.is_dir() or not given.name:
+        return str(given.resolve())
+    return str((run_dir / "exports" / given.name).resolve())
+
+
 def _read_exports(data: RunData) -> None:
     """Manifests of the picks' exports and the latest QA verdict rows that mention them."""
     for pick in data.picks:
-        folder = pick.get("export_dir")
-        man = _read_json(Path(folder) / "manifest.json", data.notes) if folder else None
+        folder = export_folder(pick, data.run_dir)
+        man = _read_json(Path(folder) / "manifest.json", data.notes)
         if isinstance(man, dict):
-            data.manifests[str(Path(folder).resolve())] = man
+            data.manifests[folder] = man
     for path in sorted(data.run_dir.glob("exports/**/verdict.json"), key=lambda p: p.stat().st_mtime):
         verdict = _read_json(path, data.notes)
         for row in (verdict or {}).get("models", []) if isinstance(verdict, dict) else []:
@@ -105,20 +115,23 @@ def load_run(run_dir: str | Path) -> RunData:
     if not root.is_dir():
         raise UserError(f"run folder {root} not found; pass a folder written by 'tightfit train'")
     if not any((root / p).exists() for p in ("recipe.toml", "metrics.jsonl", "search")):
-        raise UserError(f"{root} holds no recipe.toml, metrics.jsonl or search/; pass a run folder from 'tightfit train'")
+        raise UserError(f"{root} holds no recipe.toml, metrics.jsonl or search/; "
+                        "pass a run folder from 'tightfit train'")
     data = RunData(root)
     data.recipe = _read_recipe(root, data.notes)
     data.metrics = _read_jsonl(root / "metrics.jsonl", data.notes)
     data.candidates = [c for c in _read_jsonl(root / "search" / "candidates.jsonl", data.notes)
-                       if _number(c.get("val_acc")) and _number(c.get("predicted_ms"))]
+                       if _has_numbers(c, "val_acc", "predicted_ms", "budget_ms")]
     for path in sorted((root / "search").glob("front-*.json")):
         raw = _read_json(path, data.notes)
         rows = raw.get("front") if isinstance(raw, dict) else raw
         name = raw.get("device") if isinstance(raw, dict) else None
         if isinstance(rows, list):
-            data.fronts[name or path.stem[len("front-"):]] = [r for r in rows if isinstance(r, dict)]
+            data.fronts[name or path.stem[len("front-"):]] = [r for r in rows
+                                                              if _has_numbers(r, "val_acc", "predicted_ms")]
     picks = _read_json(root / "search" / "picks.json", data.notes)
-    data.picks = [p for p in picks if isinstance(p, dict)] if isinstance(picks, list) else []
+    data.picks = [p for p in picks if _has_numbers(p, "val_acc", "predicted_ms", "budget_ms")] \
+        if isinstance(picks, list) else []
     baselines = _read_json(root / "baselines.json", data.notes)
     data.baselines = [b for b in baselines if isinstance(b, dict)] if isinstance(baselines, list) else []
     for path in sorted((root / "latency").glob("*.json")):
@@ -133,6 +146,11 @@ def _number(v: Any) -> bool:
     return isinstance(v, (int, float)) and not isinstance(v, bool)
 
 
+def _has_numbers(row: Any, *keys: str) -> bool:
+    """A record the plots can use: a dict with numbers under these keys (others are skipped)."""
+    return isinstance(row, dict) and all(_number(row.get(k)) for k in keys)
+
+
 def pareto_front(points: list[tuple[float, float]]) -> list[tuple[float, float]]:
     """Non-dominated (latency ms, accuracy) points, fastest first: lower latency and higher accuracy win."""
     front: list[tuple[float, float]] = []
@@ -143,7 +161,7 @@ def pareto_front(points: list[tuple[float, float]]) -> list[tuple[float, float]]
 
 
 def _devices(data: RunData) -> list[str]:
-    names = [c["device"] for c in data.candidates] + list(data.fronts) + [p.get("device") for p in data.picks]
+    names = [c.get("device") for c in data.candidates] + list(data.fronts) + [p.get("device") for p in data.picks]
     return [n for n in dict.fromkeys(names) if n]
 
 
@@ -151,13 +169,15 @@ def _devices(data: RunData) -> list[str]:
 
 def plot_accuracy_latency(data: RunData) -> Optional[Figure]:
     """Candidates and Pareto front per device, budgets, picks (predicted -> measured) and baselines."""
+    from matplotlib.figure import Figure
     if not (data.candidates or data.fronts or data.baselines):
         return None
-    fig = Figure(figsize=(9, 6), dpi=110, layout="constrained")
+    fig = Figure(figsize=(9, 6.6), dpi=110, layout="constrained")
     ax = fig.add_subplot()
-    for i, dev in enumerate(_devices(data)):
-        colour = COLOURS[i % len(COLOURS)]
-        seen = {c["key"]: c for c in data.candidates if c.get("device") == dev}
+    xmax = 0.0
+    for d, dev in enumerate(_devices(data)):
+        colour = COLOURS[d % len(COLOURS)]
+        seen = {c.get("key", i): c for i, c in enumerate(data.candidates) if c.get("device") == dev}
         pts = [(c["predicted_ms"], c["val_acc"]) for c in seen.values()]
         if pts:
             ax.scatter(*zip(*pts), s=12, alpha=0.35, color=colour, label=f"{dev}: {len(pts)} evaluated subnets")
@@ -167,57 +187,69 @@ def plot_accuracy_latency(data: RunData) -> Optional[Figure]:
         if front:
             ax.plot(*zip(*front), drawstyle="steps-post", marker="o", ms=4, lw=1.5, color=colour,
                     label=f"{dev}: Pareto front")
-        for b in sorted({c["budget_ms"] for c in data.candidates if c.get("device") == dev}
-                        | {p["budget_ms"] for p in data.picks if p.get("device") == dev}):
+        budgets = sorted({c["budget_ms"] for c in data.candidates if c.get("device") == dev}
+                         | {p["budget_ms"] for p in data.picks if p.get("device") == dev})
+        for b in budgets:
             ax.axvline(b, color=colour, ls="--", lw=1, alpha=0.8)
-            ax.annotate(f"{b:g} ms", (b, 1), xycoords=("data", "axes fraction"), xytext=(2, -12),
+            ax.annotate(f"{b:g} ms", (b, 0), xycoords=("data", "axes fraction"), xytext=(3, 4),
                         textcoords="offset points", fontsize=8, color=colour)
-        _draw_picks(ax, [p for p in data.picks if p.get("device") == dev], colour)
+        xmax = max([xmax, *budgets, *(x for x, _ in pts)])
+        picks = [p for p in data.picks if p.get("device") == dev]
+        qa = [data.qa.get(export_folder(p, data.run_dir)) for p in picks]
+        _draw_picks(ax, picks, qa, colour)
     if data.baselines:
         _draw_baselines(ax, data.baselines)
+    ax.set_xlim(left=0, right=max(ax.get_xlim()[1], xmax * 1.06))
     ax.set_xlabel("latency (ms): candidates as predicted from the table; picks and baselines measured")
     ax.set_ylabel("top-1 accuracy (%) on the validation split")
     ax.set_title("Accuracy vs latency")
     ax.grid(alpha=0.3)
-    ax.legend(fontsize=8, loc="lower right")
+    fig.legend(loc="outside lower center", ncols=3, fontsize=8)
     return fig
 
 
-def _draw_picks(ax: Any, picks: list[dict], colour: str) -> None:
-    """A star at the predicted latency, an arrow to the measured percentile, labelled with it."""
-    for n, p in enumerate(picks):
+def _once(ax: Any, label: str) -> Optional[str]:
+    """The legend label the first time it is used on these axes, None after."""
+    return None if label in {c.get_label() for c in ax.collections} else label
+
+
+def _draw_picks(ax: Any, picks: list[dict], qa: list[Optional[dict]], colour: str) -> None:
+    """A star at the predicted latency, an arrow to the measured percentile (QA's when only QA measured)."""
+    for n, (p, check) in enumerate(zip(picks, qa)):
         x0, acc = p["predicted_ms"], p["val_acc"]
         measured = (p.get("measured") or {}).get("budget_stat_ms")
+        source, fits = "", p.get("fits")
+        if measured is None and check:
+            measured, source, fits = (check.get("measured") or {}).get("budget_stat_ms"), "QA ", check.get("pass")
         ax.scatter([x0], [acc], marker="*", s=160, color=colour, edgecolor="black", zorder=5,
-                   label="pick (predicted latency)" if n == 0 else None)
+                   label=_once(ax, "pick at predicted latency"))
         if measured is None:
-            ax.annotate("not measured", (x0, acc), xytext=(6, 6), textcoords="offset points", fontsize=8)
+            ax.annotate("not measured", (x0, acc), xytext=(8, -14), textcoords="offset points", fontsize=8)
             continue
         ax.scatter([measured], [acc], marker="*", s=160, facecolor="white", edgecolor=colour, zorder=5,
-                   label="pick (measured)" if n == 0 else None)
+                   label=_once(ax, "pick at measured latency"))
         ax.annotate("", (measured, acc), (x0, acc), arrowprops=dict(arrowstyle="->", color="black", lw=0.8))
-        fits = "fits" if p.get("fits") else "OVER"
-        ax.annotate(f"p{p.get('percentile', 90):g} {measured:.3g} ms\n(budget {p['budget_ms']:g}, {fits})",
-                    (measured, acc), xytext=(8, 8 + 22 * (n % 2)), textcoords="offset points", fontsize=8,
-                    bbox=dict(boxstyle="round,pad=0.2", fc="white", ec=colour, alpha=0.85))
+        text = f"{source}p{p.get('percentile', 90):g} {measured:.3g} ms\nbudget {p['budget_ms']:g} ms: "
+        ax.annotate(text + ("fits" if fits else "OVER"),
+                    (measured, acc), xytext=(10, -30 - 28 * n), textcoords="offset points", fontsize=8,
+                    bbox=dict(boxstyle="round,pad=0.2", fc="white", ec=colour, alpha=0.85), zorder=6)
 
 
 def _draw_baselines(ax: Any, baselines: list[dict]) -> None:
-    first = True
     for b in baselines:
         acc = b.get("test_acc", b.get("val_acc"))
         if not (_number(acc) and _number(b.get("p90_ms"))):
             continue
         split = "test" if "test_acc" in b else "val"
         ax.scatter([b["p90_ms"]], [acc], marker="s", s=50, color="black", zorder=4,
-                   label="hand-scaled baseline (measured p90)" if first else None)
+                   label=_once(ax, "hand-scaled baseline (measured p90)"))
         ax.annotate(f"{b.get('name', '?')} ({split})", (b["p90_ms"], acc), xytext=(6, -12),
                     textcoords="offset points", fontsize=8)
-        first = False
 
 
 def plot_training(metrics: list[dict]) -> Optional[Figure]:
     """Loss of the largest and smallest subnet per step; their validation accuracy per epoch."""
+    from matplotlib.figure import Figure
     steps = {r["step"]: r for r in metrics if "loss_largest" in r and "step" in r}
     evals = {r["epoch"]: r for r in metrics if "val_acc_largest" in r and "epoch" in r}
     if not (steps or evals):
@@ -227,57 +259,77 @@ def plot_training(metrics: list[dict]) -> Optional[Figure]:
     for name, style in (("largest", "-"), ("smallest", "--")):
         xs = sorted(steps)
         ys = [steps[s].get(f"loss_{name}") for s in xs]
-        loss_ax.plot(xs, ys, style, label=f"{name} subnet")
+        loss_ax.plot(xs, ys, style, marker="o" if len(xs) <= 30 else None, ms=3, label=f"{name} subnet")
         es = sorted(evals)
         acc_ax.plot(es, [evals[e].get(f"val_acc_{name}") for e in es], style, marker="o", label=f"{name} subnet")
-    loss_ax.set(xlabel="training step", ylabel="training loss", title="Loss (largest: labels; smallest: distilled)")
-    acc_ax.set(xlabel="epoch", ylabel="top-1 accuracy (%), validation", title="Validation accuracy after BN recalibration")
+    loss_ax.set(xlabel="training step", ylabel="training loss", title="Training loss (sandwich rule)")
+    acc_ax.set(xlabel="epoch", ylabel="top-1 accuracy (%), validation",
+               title="Validation accuracy after BN recalibration")
     for ax in (loss_ax, acc_ax):
         ax.grid(alpha=0.3)
         ax.legend(fontsize=8)
     return fig
 
 
-def _repeat_figures(pick: dict, data: RunData) -> tuple[list[dict], Optional[dict]]:
-    """(per-repeat summaries, QA re-measurement) for a pick; the combined figure stands in for repeats."""
-    measured = pick.get("measured") or {}
-    reps = measured.get("repeats") or ([measured] if "p90_ms" in measured else [])
-    if not reps:
-        man = data.manifests.get(str(Path(pick.get("export_dir", "")).resolve()), {})
-        lat = man.get("latency") or {}
-        reps = [lat] if _number(lat.get("p90_ms")) else []
-    qa = data.qa.get(str(Path(pick.get("export_dir", "")).resolve()))
-    return reps, (qa or {}).get("measured")
+def _repeats(measured: Optional[dict]) -> list[dict]:
+    """Per-repeat summaries of a measurement; the combined figure stands in when repeats are absent."""
+    measured = measured or {}
+    return measured.get("repeats") or ([measured] if _number(measured.get("p90_ms")) else [])
+
+
+def _repeat_figures(pick: dict, data: RunData) -> tuple[list[dict], list[dict]]:
+    """(search's repeats, QA re-measurement's repeats) for a pick."""
+    folder = export_folder(pick, data.run_dir)
+    reps = _repeats(pick.get("measured"))
+    if not reps:  # an older picks.json without figures: the manifest has them
+        lat = data.manifests.get(folder, {}).get("latency") or {}
+        reps = _repeats(lat)
+    return reps, _repeats((data.qa.get(folder) or {}).get("measured"))
+
+
+def _strip(ax: Any, reps: list[dict], shift: float, style: dict, label: str) -> None:
+    """Each repeat's p50/p90/p99 as points (jittered), the median over repeats as a bar."""
+    for j, stat in enumerate(("p50_ms", "p90_ms", "p99_ms")):
+        ys = [r[stat] for r in reps if _number(r.get(stat))]
+        if not ys:
+            continue
+        xs = [j + shift + (k - (len(ys) - 1) / 2) * 0.06 for k in range(len(ys))]
+        ax.scatter(xs, ys, s=25, zorder=3, label=label if j == 0 else None, **style)
+        ax.hlines(statistics.median(ys), j + shift - 0.14, j + shift + 0.14, color="black", lw=1.5, zorder=4)
+
+
+def _latency_scale(ax: Any, values: list) -> None:
+    """Linear from zero, or logarithmic when hiccups put p99 far above p50 (contended machines)."""
+    vals = [v for v in values if _number(v) and v > 0]
+    if vals and max(vals) > 8 * min(vals):
+        ax.set_yscale("log")
+        ax.set_ylabel("latency (ms), batch 1, log scale")
+    else:
+        ax.set_ylim(0, ax.get_ylim()[1] * 1.08)
 
 
 def plot_pick_latency(data: RunData) -> Optional[Figure]:
-    """One panel per pick: p50/p90/p99 of each repeat as points, the budget as a line."""
+    """One panel per pick: p50/p90/p99 of each repeat (search and QA) as points, the budget as a line."""
+    from matplotlib.figure import Figure
     panels = [(p, *_repeat_figures(p, data)) for p in data.picks]
-    panels = [t for t in panels if t[1]]
+    panels = [t for t in panels if t[1] or t[2]]
     if not panels:
         return None
     cols = min(len(panels), 3)
     rows = (len(panels) + cols - 1) // cols
     fig = Figure(figsize=(4 * cols, 3.6 * rows), dpi=110, layout="constrained")
     axes = fig.subplots(rows, cols, squeeze=False).ravel()
-    stats = ("p50_ms", "p90_ms", "p99_ms")
     for ax, (pick, reps, qa) in zip(axes, panels):
-        for j, stat in enumerate(stats):
-            ys = [r[stat] for r in reps if _number(r.get(stat))]
-            offsets = [(k - (len(ys) - 1) / 2) * 0.08 for k in range(len(ys))]
-            ax.scatter([j + o for o in offsets], ys, color="tab:blue", s=25, zorder=3,
-                       label="search: one repeat" if j == 0 else None)
-            if qa and _number(qa.get(stat)):
-                ax.scatter([j + 0.3], [qa[stat]], marker="D", color="tab:green", s=30, zorder=3,
-                           label="QA re-measure (verify)" if j == 0 else None)
-        ax.axhline(pick["budget_ms"], color="tab:red", ls="--", label=f"budget {pick['budget_ms']:g} ms "
-                                                                    f"(at p{pick.get('percentile', 90):g})")
+        _strip(ax, reps, -0.15 if qa else 0.0, {"color": "tab:blue"}, "search: one repeat")
+        _strip(ax, qa, 0.15, {"color": "tab:green", "marker": "D"}, "QA verify: one repeat")
+        pct = pick.get("percentile", 90)
+        ax.axhline(pick["budget_ms"], color="tab:red", ls="--", label=f"budget {pick['budget_ms']:g} ms at p{pct:g}")
         ax.set_xticks(range(3), ["p50", "p90", "p99"])
-        ax.set_xlim(-0.5, 2.6)
-        ax.set_ylim(bottom=0)
-        ax.set(ylabel="latency (ms), batch 1", title=f"{pick.get('device')} / {pick['budget_ms']:g} ms")
+        ax.set_xlim(-0.5, 2.5)
+        ax.set(ylabel="latency (ms), batch 1", title=f"{pick.get('device')} / budget {pick['budget_ms']:g} ms")
+        _latency_scale(ax, [r.get(k) for r in reps + qa for k in ("p50_ms", "p99_ms")] + [pick["budget_ms"]])
         ax.grid(alpha=0.3, axis="y")
-        ax.legend(fontsize=7, loc="lower right")
+        ax.legend(fontsize=7, loc="best", title="bar = median of repeats", title_fontsize=7)
     for ax in axes[len(panels):]:
         ax.set_visible(False)
     return fig
@@ -300,7 +352,7 @@ def _missing(data: RunData) -> list[str]:
         out.append("no search results (search/candidates.jsonl, search/front-*.json): run 'tightfit search'")
     if not data.picks:
         out.append("no picks (search/picks.json): run 'tightfit search' with --budget")
-    elif not any(_repeat_figures(p, data)[0] for p in data.picks):
+    elif not any(any(_repeat_figures(p, data)) for p in data.picks):
         out.append("no pick was measured here (tables for other devices): run 'tightfit verify' on the device")
     if not data.baselines:
         out.append("no hand-scaled baselines (baselines.json: [{name, test_acc or val_acc, p90_ms}])")
@@ -316,12 +368,13 @@ def _picks_table(data: RunData) -> str:
     rows = []
     for p in data.picks:
         measured = (p.get("measured") or {}).get("budget_stat_ms")
-        qa = data.qa.get(str(Path(p.get("export_dir", "")).resolve()))
+        qa = data.qa.get(export_folder(p, data.run_dir))
         qa_text = "-" if not qa else f"{'PASS' if qa.get('pass') else 'MISS'} " \
                                      f"{_fmt((qa.get('measured') or {}).get('budget_stat_ms'), '.3g')} ms"
         cells = [p.get("device"), _fmt(p.get("budget_ms"), "g"), p.get("key"), _fmt(p.get("val_acc")),
                  _fmt(p.get("test_acc")), _fmt(p.get("predicted_ms"), ".3g"),
-                 f"{_fmt(measured, '.3g')} (p{p.get('percentile', 90):g})", "yes" if p.get("fits") else "NO",
+                 f"{_fmt(measured, '.3g')} (p{p.get('percentile', 90):g})",
+                 "unverified" if p.get("verified") is False else "yes" if p.get("fits") else "NO",
                  qa_text, p.get("note") or ""]
         rows.append("<tr>" + "".join(f"<td>{html.escape(str(c))}</td>" for c in cells) + "</tr>")
     return ("<table><tr>" + "".join(f"<th>{h}</th>" for h in head) + "</tr>" + "".join(rows) + "</table>"
@@ -341,13 +394,15 @@ def _header(data: RunData, created: str) -> str:
     return "<dl>" + "".join(f"<dt>{k}</dt><dd>{html.escape(v)}</dd>" for k, v in items) + "</dl>"
 
 
-CAPTIONS = {
-    "accuracy_latency.png": "Every evaluated subnet (validation accuracy after BN recalibration vs latency "
-                            "predicted from the table), the Pareto front per device, budgets (dashed), and "
-                            "the picks: filled star at the predicted latency, open star at the measured percentile.",
-    "training.png": "Supernet training: loss of the largest and smallest subnet, and their validation accuracy.",
-    "pick_latency.png": "Latency of each pick: p50/p90/p99 of every fresh-process repeat, QA re-measurement "
-                        "where a verdict exists, and the budget.",
+CAPTIONS = {  # file -> (heading, caption)
+    "accuracy_latency.png": ("Accuracy vs latency",
+                             "Every evaluated subnet (validation accuracy after BN recalibration vs latency "
+                             "predicted from the table), the Pareto front per device, budgets (dashed), and the "
+                             "picks: filled star at the predicted latency, open star at the measured percentile."),
+    "training.png": ("Training curves", "Supernet training: loss of the largest and smallest subnet, and their "
+                     "validation accuracy."),
+    "pick_latency.png": ("Latency of the picks", "p50/p90/p99 of every fresh-process repeat of each pick's "
+                         "measurement, the QA re-measurement where a verdict exists, and the budget."),
 }
 
 
@@ -363,7 +418,8 @@ def render_html(data: RunData, images: dict[str, bytes], created: str) -> str:
              f"<p class='caution'>{html.escape(CAUTION)}</p>"]
     for name, png in images.items():
         b64 = base64.b64encode(png).decode()
-        parts.append(f"<h2>{html.escape(name[:-4].replace('_', ' '))}</h2><p>{html.escape(CAPTIONS[name])}</p>"
+        heading, caption = CAPTIONS[name]
+        parts.append(f"<h2>{heading}</h2><p>{html.escape(caption)}</p>"
                      f"<a href='{name}'><img src='data:image/png;base64,{b64}' alt='{name}'></a>")
     if data.picks:
         parts += ["<h2>picks</h2>", _picks_table(data)]
@@ -396,7 +452,8 @@ def add_report_parser(sub: Any) -> None:
     r = sub.add_parser("report", help="plots and a one-page HTML report of a run",
                        description="Write PNG plots and report.html into RUN_DIR/report/: accuracy vs latency "
                                    "(candidates, Pareto front, budgets, picks, baselines), training curves, and "
-                                   "the picks' latency distributions. Renders whatever exists and lists what is missing.")
+                                   "the picks' latency distributions. Renders whatever exists and lists what "
+                                   "is missing.")
     r.add_argument("run", help="run directory")
     r.add_argument("--out", default=None, help="folder for the report (default RUN_DIR/report)")
     r.set_defaults(func=_cmd_report)

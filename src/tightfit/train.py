@@ -149,8 +149,11 @@ def _epoch_eval(model: Supernet, recipe: Recipe, ds: Dataset, epoch: int, step: 
 
 
 def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, recipe_path: str | Path | None = None,
-          progress: bool = True, ds: Dataset | None = None, device: str | None = None) -> Path:
-    """Train (or resume) the supernet of ``recipe`` into ``run_dir``; returns the checkpoint path."""
+          progress: bool = True, ds: Dataset | None = None, device: str | None = None,
+          stop_at_step: int | None = None) -> Path:
+    """Train (or resume) the supernet of ``recipe`` into ``run_dir``; returns the checkpoint path.
+
+    ``stop_at_step`` behaves like a SIGINT arriving at that step (checkpoint, then Interrupted)."""
     run_dir = Path(run_dir)
     ckpt = checkpoint_path(run_dir)
     if ckpt.exists() and not resume:
@@ -179,11 +182,11 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, recipe_p
         start = int(state["step"])
     if recipe_path is not None and not (run_dir / "recipe.toml").exists():
         shutil.copyfile(recipe_path, run_dir / "recipe.toml")
-    return _loop(model, opt, recipe, ds, run_dir, start, progress, dev)
+    return _loop(model, opt, recipe, ds, run_dir, start, progress, dev, stop_at_step)
 
 
 def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, start: int, progress: bool,
-          dev: torch.device) -> Path:
+          dev: torch.device, stop_at_step: int | None = None) -> Path:
     cfg = recipe.train
     spe = steps_per_epoch(ds, cfg.batch_size)
     if spe == 0:
@@ -216,6 +219,8 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
                 if step % 20 == 0 or step == total:
                     _log(metrics, {"step": step, "epoch": step / spe, "lr": lr, "images_per_s": ips, **losses})
                 end_of_epoch = step % spe == 0 or step == total
+                if step == stop_at_step:
+                    stop.signum = signal.SIGINT
                 if end_of_epoch:
                     _log(metrics, _epoch_eval(model, recipe, ds, epoch + 1, step))
                 if end_of_epoch or (cfg.checkpoint_every and step % cfg.checkpoint_every == 0) or stop.signum:

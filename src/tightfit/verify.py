@@ -16,6 +16,7 @@ import hashlib
 import json
 import os
 import sys
+import tempfile
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -107,7 +108,8 @@ def load_export(folder: str | os.PathLike) -> Export:
     """Manifest read, file present, hash unchanged, loadable by ONNX Runtime."""
     folder = Path(folder)
     if not folder.is_dir():
-        raise VerifyError(f"export folder {folder} {'is not a folder' if folder.exists() else 'not found'}; pass folders such as RUN_DIR/exports/<device>-<budget>ms")
+        what = "is not a folder" if folder.exists() else "not found"
+        raise VerifyError(f"export folder {folder} {what}; pass folders such as RUN_DIR/exports/<device>-<budget>ms")
     m = read_manifest(folder)
     rel = Path(m["model_file"])
     if rel.is_absolute() or ".." in rel.parts:
@@ -286,9 +288,18 @@ def _check_args(args: argparse.Namespace) -> Path:
     out = Path(args.out) if args.out else default_out(args.export_dirs)
     if out.is_dir():
         raise VerifyError(f"--out {out} is a folder; give a file path such as verdict.json")
-    if not os.access(out.parent if out.parent.exists() else Path.cwd(), os.W_OK):
-        raise VerifyError(f"cannot write {out}; choose a writable --out path")
     return out
+
+
+def check_writable(out: Path) -> None:
+    """Fail before minutes of measuring, not after, when the verdict cannot be written."""
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        fd, probe = tempfile.mkstemp(prefix=f".{out.name}.", suffix=".probe", dir=out.parent)
+        os.close(fd)
+        os.unlink(probe)
+    except OSError as exc:
+        raise VerifyError(f"cannot write {out} ({exc.strerror}); choose a writable --out path") from None
 
 
 def run(args: argparse.Namespace) -> int:
@@ -297,6 +308,7 @@ def run(args: argparse.Namespace) -> int:
         out = _check_args(args)
         exports = list({e.folder: e for e in map(load_export, args.export_dirs)}.values())
         accuracy = [folder_accuracy(e, Path(args.data)) for e in exports] if args.data else None
+        check_writable(out)
     except VerifyError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 2
@@ -313,6 +325,9 @@ def run(args: argparse.Namespace) -> int:
     except RuntimeError as exc:
         print(f"error: {' '.join(str(exc).split())}", file=sys.stderr)
         return 1
+    except KeyboardInterrupt:
+        print("error: interrupted; no verdict written", file=sys.stderr)
+        return 130
     rows = [judge(e, summaries[e.model], p, w, args.threads) for e, p, w in zip(exports, protocols, warned)]
     for row, acc in zip(rows, accuracy or []):
         row["accuracy"] = acc
@@ -322,7 +337,11 @@ def run(args: argparse.Namespace) -> int:
     verdict = {"format": VERDICT_FORMAT, "version": 1, "pass": all(r["pass"] for r in rows),
                "quick": bool(args.quick), "device": device,
                "created": datetime.now(timezone.utc).isoformat(timespec="seconds"), "models": rows}
-    write_json_atomic(out, verdict)
+    try:
+        write_json_atomic(out, verdict)
+    except OSError as exc:
+        print(f"error: cannot write {out} ({exc.strerror}); choose a writable --out path", file=sys.stderr)
+        return 2
     print(f"verdict: {'PASS' if verdict['pass'] else 'MISS'} -> {out}", file=sys.stderr)
     return 0 if verdict["pass"] else 1
 

@@ -68,6 +68,8 @@ def load_dataset(cfg: DataConfig, seed: int) -> Dataset:
         keep, test = _carve(len(x), cfg.test_fraction, rng)
         x, y, tx, ty = x[keep], y[keep], x[test], y[test]
     keep, val = _carve(len(x), cfg.val_fraction, rng)
+    if cfg.max_train_images:
+        keep = keep[:cfg.max_train_images]
     tr_x, tr_y = x[keep], y[keep]
     mean = tr_x.reshape(-1, tr_x.shape[-1]).mean(0) / 255.0
     std = tr_x.reshape(-1, tr_x.shape[-1]).std(0) / 255.0

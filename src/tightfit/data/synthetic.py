@@ -4,8 +4,9 @@ Every image is drawn by this module from a seed, so the project can train and te
 download. Parts are signed-distance shapes in a part-local frame (negative inside), turned
 into soft anti-aliased coverage, shaded like bare metal and composited over a rubber belt
 with stray debris, neighbouring parts, uneven lighting and sensor noise. The defect classes
-differ from their good twins only by a detail of a pixel or two, which is what separates
-a large network from a tiny one. Material colour is drawn independently of the class, so
+differ from their good twins only by a detail a few pixels across at 32x32 (a hairline
+crack, one missing tooth or ball, a chipped corner), which is what separates a large
+network from a tiny one. Material colour is drawn independently of the class, so
 shape is the only reliable cue (the project also offers a greyscale mode).
 
 Images of one class are rendered together as a batch on broadcast coordinate grids, so
@@ -87,7 +88,7 @@ def _hex_nut(u, v, rng):
 def _hex_nut_chipped(u, v, rng):
     """One corner knocked off: a flat cut across the vertex on the local +u axis."""
     sdf, corner = _nut(u, v, rng)
-    return _cut(sdf, corner - _p(rng, len(u), 0.09, 0.13) - u)
+    return _cut(sdf, corner - _p(rng, len(u), 0.14, 0.19) - u)
 
 
 def _square_nut(u, v, rng):
@@ -99,12 +100,12 @@ def _square_nut(u, v, rng):
 def _teeth(u, v, rng, missing: bool):
     """Gear outline: a hub plus a smoothed square wave of teeth around the rim."""
     b = len(u)
-    n = rng.choice(np.array([9, 10, 11], _F), (b, 1, 1))
+    n = rng.choice(np.array([7, 8, 9], _F), (b, 1, 1))
     r, phi = np.hypot(u, v), np.arctan2(v, u)
     tooth = np.clip(2.2 * np.cos(n * phi) + 0.4, 0.0, 1.0)
     if missing:
         tooth = tooth * (np.abs(phi) > np.pi / n)
-    solid = r - (_p(rng, b, 0.34, 0.37) + 0.12 * tooth)
+    solid = r - (_p(rng, b, 0.32, 0.35) + 0.14 * tooth)
     return _cut(solid, r - _p(rng, b, 0.10, 0.15))
 
 
@@ -122,7 +123,7 @@ def _bolt(u, v, rng):
     length = _p(rng, b, 0.32, 0.42)
     head = _box(u + 0.36, v, 0.09, _p(rng, b, 0.18, 0.22))
     thread = 0.022 * np.sin(u * 75) * (u > -0.05)
-    shank = _box(u - (length - 0.27) / 2 + 0.0, v, (length + 0.27) / 2, 0.085 + thread)
+    shank = _box(u - (length - 0.27) / 2, v, (length + 0.27) / 2, 0.085 + thread)
     return np.minimum(head, shank)
 
 
@@ -144,17 +145,17 @@ def _l_bracket(u, v, rng):
 
 
 def _balls(u, v, rng, missing: bool):
-    """Ball bearing: outer and inner races with eight balls between them."""
+    """Ball bearing: outer and inner races with seven balls between them."""
     b = len(u)
     r, phi = np.hypot(u, v), np.arctan2(v, u)
-    step = np.float32(2 * np.pi / 8)
+    step = np.float32(2 * np.pi / 7)
     k = np.round(phi / step)
     ang = k * step
-    ball = np.hypot(u - 0.285 * np.cos(ang), v - 0.285 * np.sin(ang)) - _p(rng, b, 0.06, 0.075)
+    ball = np.hypot(u - 0.285 * np.cos(ang), v - 0.285 * np.sin(ang)) - _p(rng, b, 0.075, 0.09)
     if missing:
         ball = np.where(k == 0, 1.0, ball)
-    outer = np.maximum(r - 0.48, 0.37 - r)
-    inner = np.maximum(r - 0.20, _p(rng, b, 0.09, 0.12) - r)
+    outer = np.maximum(r - 0.48, 0.39 - r)
+    inner = np.maximum(r - 0.18, _p(rng, b, 0.08, 0.11) - r)
     return np.minimum(np.minimum(outer, inner), ball)
 
 
@@ -178,7 +179,7 @@ def _grid(size: int) -> tuple[np.ndarray, np.ndarray]:
 def _part_sdf(labels, x, y, rng):
     """Place every part (shift, turn, scale) and evaluate its class shape in the local frame."""
     b = len(labels)
-    cx, cy, scale = _p(rng, b, -0.2, 0.2), _p(rng, b, -0.2, 0.2), _p(rng, b, 0.85, 1.25)
+    cx, cy, scale = _p(rng, b, -0.2, 0.2), _p(rng, b, -0.2, 0.2), _p(rng, b, 0.9, 1.25)
     th = _p(rng, b, 0, 2 * np.pi)
     dx, dy = (x - cx) / scale, (y - cy) / scale
     u, v = np.cos(th) * dx + np.sin(th) * dy, np.cos(th) * dy - np.sin(th) * dx
@@ -237,13 +238,13 @@ def _clutter(img, x, y, size, rng):
     return _over(img, img * 1.6 + 0.05, 0.7 * scratch)
 
 
-def _specks(img, x, y, size, rng):
-    """Chips and oil drops, which may land on the part too: small blobs, light or dark."""
+def _specks(img, x, y, size, rng, count: int, chance: float):
+    """Chips and oil drops: small light or dark blobs, each present with `chance`."""
     b = len(img)
     alpha, tone = np.zeros((2, b, size, size), _F)
-    for _ in range(4):
+    for _ in range(count):
         d = np.hypot(x - _p(rng, b, -1, 1), y - _p(rng, b, -1, 1)) - _p(rng, b, 0.03, 0.08)
-        cov = _coverage(d, size) * (rng.random((b, 1, 1)) < 0.5)
+        cov = _coverage(d, size) * (rng.random((b, 1, 1)) < chance)
         tone = np.where(cov > alpha, np.where(rng.random((b, 1, 1)) < 0.5, _F(0.08), _F(0.75)), tone)
         alpha = np.maximum(alpha, cov)
     return _over(img, tone[:, None], alpha)
@@ -264,7 +265,7 @@ def _camera(img, x, y, rng):
     cast = rng.uniform(0.9 * 255, 1.1 * 255, (b, 3, 1, 1)).astype(_F)
     img = img * (lamp[:, None] * cast)
     noise = _noise(rng, img.shape)
-    noise *= _p(rng, b, 0.01 * 255, 0.05 * 255)[:, None]
+    noise *= _p(rng, b, 0.01 * 255, 0.04 * 255)[:, None]
     img += noise + 0.5
     return np.clip(img, 0, 255, out=img).astype(np.uint8).transpose(0, 2, 3, 1)
 
@@ -273,12 +274,13 @@ def _render(labels, size, rng):
     """Draw one chunk of images, all stages batched over the chunk."""
     x, y = _grid(size)
     img = _clutter(_belt(len(labels), size, rng), x, y, size, rng)
+    img = _specks(img, x, y, size, rng, 3, 0.5)
     sdf = _part_sdf(labels, x, y, rng)
     cov = _coverage(sdf, size)
     shadow = 0.5 * (np.roll(cov, (1, 1), (1, 2)) + np.roll(cov, (2, 2), (1, 2)))
     img *= (1.0 - 0.5 * shadow)[:, None]
     img = _over(img, _metal(sdf, x, y, rng), cov)
-    return _camera(_specks(img, x, y, size, rng), x, y, rng)
+    return _camera(_specks(img, x, y, size, rng, 1, 0.3), x, y, rng)
 
 
 def generate_parts(n: int, size: int = 32, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:

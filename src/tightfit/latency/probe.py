@@ -13,8 +13,10 @@ import random
 import shutil
 import tempfile
 import zipfile
+from contextlib import contextmanager
 from dataclasses import asdict, dataclass
 from pathlib import Path
+from typing import Iterator
 
 import torch
 from torch import nn
@@ -48,13 +50,16 @@ class LayerConfig:
     act: str = ""
     se: bool = False
     skip: bool = False
+    copies: int = 0            # overhead probes: chained passthrough convs
 
     def shape(self) -> str:
         """Readable one-liner, e.g. '24x16x16 -> e4 (96) k5 s2 hswish +SE -> 40x8x8'."""
         out_res = conv_out(self.resolution, self.stride)
         io = (f"{self.in_chs}x{self.resolution}x{self.resolution}", f"{self.out_chs}x{out_res}x{out_res}")
+        if self.role == "overhead":
+            return f"passthrough x{self.copies}{' +skip' if self.skip else ''}: {io[0]} -> {io[0]}"
         if self.role != "block":
-            return f"{self.role}: {io[0]} -> {io[1] if self.role != 'head' else str(self.out_chs)}"
+            return f"{self.role}: {io[0]} -> {io[1] if self.role == 'stem' else 'logits'}"
         extras = " +SE" if self.se else ""
         extras += " +skip" if self.skip else ""
         return (f"{io[0]} -> e{self.exp_ratio:g} ({self.hidden_chs}) k{self.kernel} s{self.stride} "
@@ -115,10 +120,22 @@ class _Head(nn.Module):
 
 
 class _Passthrough(nn.Module):
-    """The cheapest model on a given input: one Relu. Measures per-session call overhead."""
+    """`copies` chained depthwise 1x1 convs (and the skip add, as a block probe has it).
+
+    A probe pays, besides its layer, what a whole network pays once: the session call and,
+    where the runtime changes the tensor layout around convs, a layout change in and out.
+    The same cheapest conv once and twice isolates that: 2 * T(once) - T(twice).
+    """
+
+    def __init__(self, chs: int, copies: int, skip: bool):
+        super().__init__()
+        self.convs = nn.Sequential(*[nn.Conv2d(chs, chs, 1, groups=chs, bias=False) for _ in range(copies)])
+        for conv in self.convs:
+            nn.init.ones_(conv.weight)
+        self.skip = skip
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
-        return torch.relu(x)
+        return x + self.convs(x) if self.skip else self.convs(x)
 
 
 def layer_module(supernet: Supernet, cfg: LayerConfig) -> nn.Module:
@@ -127,21 +144,22 @@ def layer_module(supernet: Supernet, cfg: LayerConfig) -> nn.Module:
     if cfg.role == "block":
         return _block(supernet.stages[cfg.stage][0 if cfg.first else 1], cfg.exp_ratio, cfg.kernel).eval()
     if cfg.role == "overhead":
-        return _Passthrough()
+        return _Passthrough(cfg.in_chs, cfg.copies, cfg.skip).eval()
     net = extract_subnet(supernet, space.smallest())
     if cfg.role == "stem":
         return net.features[0]
     return _Head(net, bool(space.head_chs)).eval()
 
 
-def overhead_id(chs: int, res: int) -> str:
-    return f"{OVERHEAD_ID}-{chs}x{res}x{res}"
+def overhead_id(chs: int, res: int, skip: bool, copies: int) -> str:
+    return f"{OVERHEAD_ID}-{chs}x{res}x{res}{'-skip' if skip else ''}-x{copies}"
 
 
 def overhead_configs(layers: list[LayerConfig]) -> list[LayerConfig]:
-    """One passthrough model per distinct layer input shape: what a session call costs on it."""
-    shapes = dict.fromkeys((c.in_chs, c.resolution) for c in layers)
-    return [LayerConfig(overhead_id(chs, res), "overhead", chs, chs, res) for chs, res in shapes]
+    """Passthrough probes, once and twice, for every distinct (input shape, skip) of the layers."""
+    shapes = dict.fromkeys((c.in_chs, c.resolution, c.skip) for c in layers)
+    return [LayerConfig(overhead_id(chs, res, skip, n), "overhead", chs, chs, res, skip=skip, copies=n)
+            for chs, res, skip in shapes for n in (1, 2)]
 
 
 def calibration_subnets(space: SpaceSpec, n: int, seed: int = 0) -> list[tuple[str, Subnet]]:
@@ -196,6 +214,18 @@ def load_source(source: str | Path) -> tuple[Recipe, Supernet]:
     return recipe, Supernet(recipe.space, recipe.data.channels, _class_count(recipe)).eval()
 
 
+@contextmanager
+def single_thread() -> Iterator[None]:
+    """Torch on one thread while tracing many tiny models: on a busy machine more threads
+    only contend (measured 10x slower exports on 2 shared cores)."""
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)
+    try:
+        yield
+    finally:
+        torch.set_num_threads(threads)
+
+
 def _bundle_entries(recipe: Recipe, supernet: Supernet, n_subnets: int, seed: int):
     """(id, kind, torch module, input chs, input size, meta) for every entry, in bundle order."""
     chs, size = recipe.data.channels, recipe.data.image_size
@@ -247,14 +277,14 @@ def write_bundle(source: str | Path, out: str | Path | None = None, n_subnets: i
     out = Path(out)
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)  # tracing tiny models: more threads only add contention
     try:
         entries = []
         todo = list(_bundle_entries(recipe, supernet, n_subnets, seed))
-        for eid, kind, build, chs, size, meta in tqdm(todo, desc="probe export", unit="model", disable=not progress):
-            write_bytes(tmp / "onnx" / f"{eid}.onnx", onnx_bytes(build(), chs, size))
-            entries.append({"id": eid, "kind": kind, "file": f"onnx/{eid}.onnx", "meta": meta})
+        with single_thread():
+            for eid, kind, build, chs, size, meta in tqdm(todo, desc="probe export", unit="model",
+                                                          disable=not progress):
+                write_bytes(tmp / "onnx" / f"{eid}.onnx", onnx_bytes(build(), chs, size))
+                entries.append({"id": eid, "kind": kind, "file": f"onnx/{eid}.onnx", "meta": meta})
         write_json(tmp / "index.json", {
             "format": BUNDLE_FORMAT, "version": 1,
             "space_hash": space_hash(recipe.space, recipe.data.channels, recipe.data.image_size),
@@ -265,8 +295,6 @@ def write_bundle(source: str | Path, out: str | Path | None = None, n_subnets: i
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
-    finally:
-        torch.set_num_threads(threads)
     if zip:
         return _zip_folder(out, out.with_name(out.name + ".zip"))
     return out
