@@ -15,6 +15,7 @@ import signal
 import time
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Callable
 
 import torch
 import torch.nn.functional as F
@@ -22,12 +23,14 @@ from torch import nn
 from tqdm import tqdm
 
 from tightfit.checkpoint import save_checkpoint
+from tightfit.distributed import (GradientSync, Ranks, barrier, broadcast_weights, decided_on_main, joined,
+                                  local_rows, step_seed)
 from tightfit.data.dataset import Dataset, calibration_batches, eval_batches, load_dataset, steps_per_epoch, train_batches
 from tightfit.errors import Interrupted, UserError
 from tightfit.recalibrate import subnet_accuracy
 from tightfit.recipe import Recipe, TrainConfig
 from tightfit.checkpoint import load_checkpoint
-from tightfit.rundir import checkpoint_path, pick_device
+from tightfit.rundir import checkpoint_path
 from tightfit.space import SpaceSpec, Subnet
 from tightfit.supernet import Supernet
 
@@ -71,10 +74,10 @@ def build_supernet(recipe: Recipe, num_classes: int) -> Supernet:
                     kernel_transform=recipe.train.kernel_mode == "transform")
 
 
-def train_step(model: Supernet, opt: torch.optim.Optimizer, x: torch.Tensor, y: torch.Tensor,
-               subnets: list[Subnet], cfg: TrainConfig) -> dict[str, float]:
-    """One sandwich step; returns the largest's and smallest's losses."""
-    opt.zero_grad(set_to_none=True)
+def sandwich_backward(model: Supernet, x: torch.Tensor, y: torch.Tensor, subnets: list[Subnet],
+                      cfg: TrainConfig) -> dict[str, float]:
+    """Forward and backward every subnet of the sandwich, gradients summing in .grad;
+    returns the largest's and smallest's losses."""
     losses = {}
     soft = None
     for i, subnet in enumerate(subnets):
@@ -91,6 +94,18 @@ def train_step(model: Supernet, opt: torch.optim.Optimizer, x: torch.Tensor, y: 
         loss.backward()
         if i < 2:
             losses["loss_largest" if i == 0 else "loss_smallest"] = loss.item()
+    return losses
+
+
+def train_step(model: Supernet, opt: torch.optim.Optimizer, x: torch.Tensor, y: torch.Tensor,
+               subnets: list[Subnet], cfg: TrainConfig,
+               sync: Callable[[dict[str, float]], dict[str, float]] | None = None) -> dict[str, float]:
+    """One sandwich step; ``sync`` (several processes) averages gradients and losses over
+    ranks once, after the whole sandwich and before the optimizer step."""
+    opt.zero_grad(set_to_none=True)
+    losses = sandwich_backward(model, x, y, subnets, cfg)
+    if sync is not None:
+        losses = sync(losses)
     opt.step()
     return losses
 
@@ -153,8 +168,34 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, recipe_p
           stop_at_step: int | None = None) -> Path:
     """Train (or resume) the supernet of ``recipe`` into ``run_dir``; returns the checkpoint path.
 
-    ``stop_at_step`` behaves like a SIGINT arriving at that step (checkpoint, then Interrupted)."""
+    Under torchrun every process calls this; rank 0 alone touches ``run_dir`` (see
+    tightfit.distributed). ``stop_at_step`` behaves like a SIGINT arriving at that step
+    (checkpoint, then Interrupted); under torchrun, like any signal, it takes effect one
+    step later, when all ranks have agreed on it."""
     run_dir = Path(run_dir)
+    with joined(device) as (ranks, dev):
+        local_rows(recipe.train.batch_size, ranks)  # refuse a global batch that does not split
+        state = decided_on_main(ranks, lambda: _open_run(run_dir, recipe, resume), dev)
+        ds = ds or load_dataset(recipe.data, recipe.seed)
+        torch.manual_seed(recipe.seed)
+        model = build_supernet(recipe, ds.num_classes).to(dev)
+        if recipe.train.channels_last:
+            model = model.to(memory_format=torch.channels_last)
+        opt = make_optimizer(model, recipe.train)
+        start = 0
+        if state is not None:
+            model.load_state_dict(state["model"])
+            opt.load_state_dict(state["optimizer"])
+            torch.set_rng_state(state["rng"])
+            start = int(state["step"])
+        broadcast_weights(model, ranks)  # every rank starts from rank 0's weights
+        if ranks.is_main and recipe_path is not None and not (run_dir / "recipe.toml").exists():
+            shutil.copyfile(recipe_path, run_dir / "recipe.toml")
+        return _loop(model, opt, recipe, ds, run_dir, start, progress, dev, ranks, stop_at_step)
+
+
+def _open_run(run_dir: Path, recipe: Recipe, resume: bool) -> dict | None:
+    """Check and prepare ``run_dir``; returns the checkpoint to resume from, if any (rank 0 only)."""
     ckpt = checkpoint_path(run_dir)
     if ckpt.exists() and not resume:
         raise UserError(f"{run_dir} already holds a training run: add --resume to continue it, or pick a new --run")
@@ -164,70 +205,68 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, recipe_p
         (run_dir / ".write-test").unlink()
     except OSError as e:
         raise UserError(f"cannot write to run directory {run_dir}: {e.strerror}") from None
-    ds = ds or load_dataset(recipe.data, recipe.seed)
-    torch.manual_seed(recipe.seed)
-    dev = pick_device(device)
-    model = build_supernet(recipe, ds.num_classes).to(dev)
-    if recipe.train.channels_last:
-        model = model.to(memory_format=torch.channels_last)
-    opt = make_optimizer(model, recipe.train)
-    start = 0
+    state = None
     if resume and ckpt.exists():
         state = load_checkpoint(ckpt)
         if state.get("recipe_hash") != recipe.hash():
             raise UserError(f"checkpoint in {run_dir} was trained from a different recipe; use that recipe or a new --run")
-        model.load_state_dict(state["model"])
-        opt.load_state_dict(state["optimizer"])
-        torch.set_rng_state(state["rng"])
-        start = int(state["step"])
-    if recipe_path is not None and not (run_dir / "recipe.toml").exists():
-        shutil.copyfile(recipe_path, run_dir / "recipe.toml")
-    return _loop(model, opt, recipe, ds, run_dir, start, progress, dev, stop_at_step)
+    return state
 
 
 def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, start: int, progress: bool,
-          dev: torch.device, stop_at_step: int | None = None) -> Path:
+          dev: torch.device, ranks: Ranks = Ranks(), stop_at_step: int | None = None) -> Path:
     cfg = recipe.train
     spe = steps_per_epoch(ds, cfg.batch_size)
     if spe == 0:
         raise UserError(f"train.batch_size = {cfg.batch_size} is larger than the training split ({len(ds.train_y)} images)")
     total = max(1, int(round(cfg.epochs * spe)))
     warmup = int(cfg.warmup_epochs * spe)
+    rows = local_rows(cfg.batch_size, ranks)
+    main = ranks.is_main
     metrics = run_dir / "metrics.jsonl"
-    _trim_log(metrics, start)
+    if main:
+        _trim_log(metrics, start)
     ckpt = checkpoint_path(run_dir)
     model.train()
     step = start
-    bar = tqdm(total=total, initial=start, desc="supernet", unit="step", disable=not progress, dynamic_ncols=True)
+    bar = tqdm(total=total, initial=start, desc="supernet", unit="step", disable=not (progress and main),
+               dynamic_ncols=True)
     t0, seen = time.perf_counter(), 0
     with _StopFlag() as stop:
+        sync = GradientSync(model, ranks, lambda: stop.signum) if ranks.launched else None
         while step < total:
             epoch = step // spe
             for x, y in train_batches(ds, recipe.data, cfg.batch_size, recipe.seed, epoch, start=step % spe):
-                x, y = x.to(dev, non_blocking=True), y.to(dev, non_blocking=True)
+                seen += len(y)  # the global batch
+                x, y = x[rows].to(dev, non_blocking=True), y[rows].to(dev, non_blocking=True)
                 if cfg.channels_last:
                     x = x.contiguous(memory_format=torch.channels_last)
                 lr = lr_at(step, total, warmup, cfg.lr)
                 for g in opt.param_groups:
                     g["lr"] = lr
-                losses = train_step(model, opt, x, y, sandwich(recipe.space, step, recipe.seed, cfg.random_subnets), cfg)
+                if ranks.launched:
+                    torch.manual_seed(step_seed(recipe.seed, ranks.rank, step))
+                losses = train_step(model, opt, x, y, sandwich(recipe.space, step, recipe.seed, cfg.random_subnets),
+                                    cfg, sync)
                 step += 1
-                seen += len(y)
                 ips = seen / (time.perf_counter() - t0)
                 bar.update(1)
                 bar.set_postfix(loss=f"{losses['loss_largest']:.3f}", img_s=f"{ips:.0f}")
-                if step % 20 == 0 or step == total:
+                if main and (step % 20 == 0 or step == total):
                     _log(metrics, {"step": step, "epoch": step / spe, "lr": lr, "images_per_s": ips, **losses})
                 end_of_epoch = step % spe == 0 or step == total
                 if step == stop_at_step:
                     stop.signum = signal.SIGINT
-                if end_of_epoch:
+                stopping = sync.agreed_stop if sync else stop.signum
+                if main and end_of_epoch:
                     _log(metrics, _epoch_eval(model, recipe, ds, epoch + 1, step))
-                if end_of_epoch or (cfg.checkpoint_every and step % cfg.checkpoint_every == 0) or stop.signum:
-                    save_checkpoint(ckpt, _state(model, opt, step, recipe, ds, step == total))
-                if stop.signum:
+                if end_of_epoch or (cfg.checkpoint_every and step % cfg.checkpoint_every == 0) or stopping:
+                    if main:
+                        save_checkpoint(ckpt, _state(model, opt, step, recipe, ds, step == total))
+                    barrier(ranks)  # nobody leaves (or is stopped by torchrun) before the file is whole
+                if stopping:
                     bar.close()
-                    raise Interrupted(130 if stop.signum == signal.SIGINT else 143,
+                    raise Interrupted(130 if stopping == signal.SIGINT else 143,
                                       f"interrupted at step {step}; checkpoint written. Resume with: "
                                       f"tightfit train RECIPE --run {run_dir} --resume")
                 if step >= total or end_of_epoch:

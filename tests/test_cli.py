@@ -1,0 +1,61 @@
+"""The command line: help texts, exit codes, one-line errors."""
+import subprocess
+import sys
+
+import pytest
+
+from tightfit.cli import main
+
+
+def run(*args, cwd=None):
+    return subprocess.run([sys.executable, "-m", "tightfit", *args], capture_output=True, text=True, cwd=cwd, timeout=300)
+
+
+def test_help_via_module_and_per_command():
+    out = run("--help")
+    assert out.returncode == 0 and "latency budget" in out.stdout
+    for cmd in ("train", "cut", "demo", "verify", "report"):
+        r = run(cmd, "--help")
+        assert r.returncode == 0 and "usage:" in r.stdout, cmd
+
+
+def test_no_command_prints_help_and_exits_2(capsys):
+    assert main([]) == 2
+
+
+@pytest.mark.parametrize("args,fragment", [
+    (["train", "missing.toml", "--run", "x"], "recipe file not found"),
+    (["cut", "no-such-run", "--subnet", "largest"], "run directory not found"),
+])
+def test_bad_input_is_one_line_exit_2(tmp_path, args, fragment):
+    r = run(*args, cwd=tmp_path)
+    assert r.returncode == 2
+    assert r.stderr.strip().count("\n") == 0 and fragment in r.stderr and "Traceback" not in r.stderr
+
+
+def test_train_and_cut_through_the_cli(tmp_path):
+    recipe = tmp_path / "tiny.toml"
+    recipe.write_text("""
+name = "tiny-cli"
+[data]
+source = "builtin"
+image_size = 16
+samples = 400
+[space]
+stem_channels = 8
+[[space.stage]]
+channels = 8
+stride = 2
+depths = [1, 2]
+expansions = [2, 3]
+kernels = [3, 5]
+[train]
+epochs = 0.5
+batch_size = 32
+""")
+    r = run("train", str(recipe), "--run", str(tmp_path / "run"), "--quiet")
+    assert r.returncode == 0, r.stderr
+    assert (tmp_path / "run" / "checkpoint.pt").is_file() and (tmp_path / "run" / "recipe.toml").is_file()
+    r = run("cut", str(tmp_path / "run"), "--subnet", "smallest", "--subnet", "e2k5-e3k3")
+    assert r.returncode == 0, r.stderr
+    assert "smallest" in r.stdout and (tmp_path / "run" / "exports" / "smallest" / "model.onnx").is_file()

@@ -1,0 +1,112 @@
+"""Recipes: every shipped recipe loads; bad recipes fail with one line naming the key."""
+import copy
+from pathlib import Path
+
+import pytest
+from hypothesis import given, settings, strategies as st
+
+from tightfit.errors import UserError
+from tightfit.recipe import load_recipe, parse_recipe, recipe_from_dict
+from tightfit.supernet import Supernet
+from helpers import TINY
+
+RECIPES = sorted((Path(__file__).parents[1] / "recipes").glob("*.toml"))
+
+
+@pytest.mark.parametrize("path", RECIPES, ids=lambda p: p.name)
+def test_shipped_recipes_load_and_build(path):
+    recipe = load_recipe(path)
+    assert recipe_from_dict(recipe.to_dict()) == recipe  # survives the checkpoint round trip
+    assert recipe.space.size() > 1
+    Supernet(recipe.space, recipe.data.channels, 10)
+
+
+def _with(path: str, value):
+    doc = copy.deepcopy(TINY)
+    *parents, last = path.split(".")
+    node = doc
+    for p in parents:
+        node = node[int(p)] if p.isdigit() else node[p]
+    if value is KeyError:
+        del node[last]
+    else:
+        node[last] = value
+    return doc
+
+
+BAD = [
+    ("space.stage.1.channels", 0, "channels"),
+    ("space.stage.1.channels", -8, "channels"),
+    ("space.stage.1.kernels", [3, 4], "odd"),
+    ("space.stage.1.stride", 3, "1 or 2"),
+    ("space.stage.1.depths", [], "non-empty"),
+    ("space.stage.1.depths", [0, 1], ">= 1"),
+    ("space.stage.1.expansions", [0, 2], "> 0"),
+    ("space.stage.1.expansions", ["6"], "number"),
+    ("space.stage.1.activation", "gelu", "relu6"),
+    ("space.stage.1.colour", 1, "unknown"),
+    ("space.stage.1.kernels", KeyError, "missing"),
+    ("space.stage", [], "at least one"),
+    ("train.optimizer", "adam", "sgd"),
+    ("train.batch_size", 0, "> 0"),
+    ("train.batch_size", "64", "int"),
+    ("train.epochs", -1, "> 0"),
+    ("train.label_smoothing", 1.5, "[0, 1)"),
+    ("train.learning_rate", 0.1, "unknown"),
+    ("data.source", "imagenet", "builtin"),
+    ("data.channels", 2, "1 (grey) or 3"),
+    ("data.val_fraction", 0.95, "[0, 0.9)"),
+    ("space.stem_stride", 4, "1 or 2"),
+]
+
+
+@pytest.mark.parametrize("path,value,fragment", BAD, ids=[f"{p}={v}" for p, v, _ in BAD])
+def test_bad_values_name_the_key(path, value, fragment):
+    with pytest.raises(UserError) as e:
+        parse_recipe(_with(path, value))
+    msg = str(e.value)
+    assert "\n" not in msg and fragment in msg
+    assert path.split(".")[-1] in msg or fragment in ("at least one",)
+
+
+def test_toml_syntax_error_shows_line(tmp_path):
+    p = tmp_path / "bad.toml"
+    p.write_text('name = "x"\n[space\nstem_channels = 8\n')
+    with pytest.raises(UserError, match="line 2"):
+        load_recipe(p)
+
+
+def test_missing_recipe_file(tmp_path):
+    with pytest.raises(UserError, match="not found"):
+        load_recipe(tmp_path / "nope.toml")
+
+
+# Property: random valid stage tables always build; random invalid ones fail with UserError only.
+stage = st.fixed_dictionaries({
+    "channels": st.integers(1, 64), "stride": st.sampled_from([1, 2]),
+    "depths": st.lists(st.integers(1, 4), min_size=1, max_size=3, unique=True),
+    "expansions": st.lists(st.sampled_from([1, 2, 3, 4, 6]), min_size=1, max_size=3, unique=True),
+    "kernels": st.lists(st.sampled_from([1, 3, 5, 7]), min_size=1, max_size=3, unique=True),
+    "activation": st.sampled_from(["relu6", "hswish"]), "squeeze_excite": st.booleans(),
+})
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(stage, min_size=1, max_size=4))
+def test_random_valid_recipes_build(stages):
+    doc = {**TINY, "space": {"stem_channels": 8, "stage": stages}}
+    recipe = parse_recipe(doc)
+    assert len(recipe.space.stages) == len(stages)
+    Supernet(recipe.space, 3, 4)
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.dictionaries(st.sampled_from(["channels", "stride", "depths", "expansions", "kernels", "activation"]),
+                       st.one_of(st.integers(-3, 3), st.text(max_size=3), st.lists(st.integers(-2, 4), max_size=3),
+                                 st.floats(allow_nan=True), st.none().map(lambda _: {}))))
+def test_random_invalid_stages_raise_user_error_only(garbage):
+    doc = {**TINY, "space": {"stem_channels": 8, "stage": [garbage]}}
+    try:
+        parse_recipe(doc)
+    except UserError as e:
+        assert "\n" not in str(e)
