@@ -92,8 +92,12 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--threads", type=int, default=None, help="torch CPU threads (default: all cores)")
     d.set_defaults(func=_cmd_demo)
 
+    from tightfit.latency.cli_commands import add_latency_check_parser, add_probe_parser, add_profile_parser
     from tightfit.report import add_report_parser
     from tightfit.verify import add_verify_parser
+    add_probe_parser(sub)
+    add_profile_parser(sub)
+    add_latency_check_parser(sub)
     add_verify_parser(sub)
     add_report_parser(sub)
     return p

@@ -188,19 +188,17 @@ class RunAccuracy:
         return {"val_acc": round(acc, 4), "params": params, "macs": macs}
 
 
-def load_predictors(paths: list[str], space: SpaceSpec, channels: int, image_size: int) -> list[tuple[Any, Any]]:
-    """(table, predictor) per --table; a table for another space is refused by load_table."""
-    from tightfit.latency.predict import LatencyPredictor
-    from tightfit.latency.table import load_table
-    from tightfit.space import space_hash
-    expected = space_hash(space, channels, image_size)
+def load_predictors(paths: list[str], recipe: Any) -> list[tuple[Any, Any]]:
+    """(table, predictor of the table's budget percentile) per --table; tables measured for
+    another space are refused by the latency module."""
+    from tightfit.latency.predict import load_predictor
     out = []
     for p in paths:
-        table = load_table(p, expected)
-        out.append((table, LatencyPredictor(table, space)))
+        predictor = load_predictor(recipe, p, target="budget_stat_ms")
+        out.append((predictor.table, predictor))
     names = [t.name for t, _ in out]
     if len(set(names)) != len(names):
-        raise UserError(f"two --table files describe the same device {names}: pass each device once")
+        raise UserError(f"two --table files name the same device {names}: pass each device once")
     return out
 
 
@@ -214,7 +212,7 @@ def run_search(run_dir: str | Path, table_paths: list[str], budgets: list[str], 
     run_dir = Path(run_dir)
     run = load_trained(run_dir)
     cfg = run.recipe
-    tables = load_predictors(table_paths, cfg.space, cfg.data.channels, cfg.data.image_size)
+    tables = load_predictors(table_paths, cfg)
     ds = load_dataset(cfg.data, cfg.seed)
     if ds.class_names != run.class_names:
         raise UserError(f"the data the recipe points at has classes {ds.class_names}, the run was trained on {run.class_names}")

@@ -36,9 +36,9 @@ class EvolutionSettings:
     population: int = 32          # P: size of the aging queue
     sample_size: int = 8          # S: tournament size (Real et al. 2019 use S < P)
     evaluations: int = 320        # distinct candidates evaluated, initial population included
-    mutate_prob: float = 0.15     # per decision: a stage's depth, a block's expansion, a block's kernel
+    mutate_prob: float = 0.1      # per decision: a stage's depth, a block's expansion, a block's kernel
     seed: int = 0
-    sample_tries: int = 2000      # rejection-sampling attempts before shrinking random draws instead
+    sample_tries: int = 300       # rejection-sampling attempts before shrinking random draws instead
     redraws: int = 100            # mutation attempts before giving up on a parent this cycle
 
 
@@ -87,7 +87,7 @@ def shrink(space: SpaceSpec, subnet: Subnet, rng: random.Random) -> Subnet:
 
 
 def sample_within(space: SpaceSpec, rng: random.Random, latency: Latency, budget_ms: float,
-                  tries: int = 2000) -> Subnet:
+                  tries: int = 300) -> Subnet:
     """A subnet with latency <= budget: uniform rejection sampling, then (if the budget admits
     only a sliver of the space) a uniform draw shrunk step by step until it fits.
     Call fastest_check first: shrinking ends at the smallest subnet, which must fit."""
@@ -191,7 +191,7 @@ def regularized_evolution(space: SpaceSpec, fitness: Fitness, latency: Latency, 
 
 def random_search(space: SpaceSpec, fitness: Fitness, latency: Latency, budget_ms: float, evaluations: int,
                   seed: int = 0, on_eval: Optional[Callable[[Candidate], None]] = None,
-                  device: str = "device", sample_tries: int = 2000) -> list[Candidate]:
+                  device: str = "device", sample_tries: int = 300) -> list[Candidate]:
     """Baseline: ``evaluations`` distinct subnets drawn uniformly within the budget."""
     fastest_check(space, latency, budget_ms, device)
     rng = random.Random(seed)

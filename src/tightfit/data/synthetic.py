@@ -88,7 +88,7 @@ def _hex_nut(u, v, rng):
 def _hex_nut_chipped(u, v, rng):
     """One corner knocked off: a flat cut across the vertex on the local +u axis."""
     sdf, corner = _nut(u, v, rng)
-    return _cut(sdf, corner - _p(rng, len(u), 0.14, 0.19) - u)
+    return _cut(sdf, corner - _p(rng, len(u), 0.17, 0.22) - u)
 
 
 def _square_nut(u, v, rng):
@@ -100,12 +100,12 @@ def _square_nut(u, v, rng):
 def _teeth(u, v, rng, missing: bool):
     """Gear outline: a hub plus a smoothed square wave of teeth around the rim."""
     b = len(u)
-    n = rng.choice(np.array([7, 8, 9], _F), (b, 1, 1))
+    n = rng.choice(np.array([6, 7, 8], _F), (b, 1, 1))
     r, phi = np.hypot(u, v), np.arctan2(v, u)
     tooth = np.clip(2.2 * np.cos(n * phi) + 0.4, 0.0, 1.0)
     if missing:
         tooth = tooth * (np.abs(phi) > np.pi / n)
-    solid = r - (_p(rng, b, 0.32, 0.35) + 0.14 * tooth)
+    solid = r - (_p(rng, b, 0.31, 0.34) + 0.15 * tooth)
     return _cut(solid, r - _p(rng, b, 0.10, 0.15))
 
 
@@ -145,13 +145,13 @@ def _l_bracket(u, v, rng):
 
 
 def _balls(u, v, rng, missing: bool):
-    """Ball bearing: outer and inner races with seven balls between them."""
+    """Ball bearing: outer and inner races with six balls between them."""
     b = len(u)
     r, phi = np.hypot(u, v), np.arctan2(v, u)
-    step = np.float32(2 * np.pi / 7)
+    step = np.float32(2 * np.pi / 6)
     k = np.round(phi / step)
     ang = k * step
-    ball = np.hypot(u - 0.285 * np.cos(ang), v - 0.285 * np.sin(ang)) - _p(rng, b, 0.075, 0.09)
+    ball = np.hypot(u - 0.285 * np.cos(ang), v - 0.285 * np.sin(ang)) - _p(rng, b, 0.08, 0.09)
     if missing:
         ball = np.where(k == 0, 1.0, ball)
     outer = np.maximum(r - 0.48, 0.39 - r)
@@ -179,7 +179,7 @@ def _grid(size: int) -> tuple[np.ndarray, np.ndarray]:
 def _part_sdf(labels, x, y, rng):
     """Place every part (shift, turn, scale) and evaluate its class shape in the local frame."""
     b = len(labels)
-    cx, cy, scale = _p(rng, b, -0.2, 0.2), _p(rng, b, -0.2, 0.2), _p(rng, b, 0.9, 1.25)
+    cx, cy, scale = _p(rng, b, -0.2, 0.2), _p(rng, b, -0.2, 0.2), _p(rng, b, 0.95, 1.25)
     th = _p(rng, b, 0, 2 * np.pi)
     dx, dy = (x - cx) / scale, (y - cy) / scale
     u, v = np.cos(th) * dx + np.sin(th) * dy, np.cos(th) * dy - np.sin(th) * dx

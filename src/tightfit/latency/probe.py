@@ -202,6 +202,8 @@ def load_source(source: str | Path) -> tuple[Recipe, Supernet]:
     from tightfit.recipe import load_recipe
     from tightfit.rundir import load_trained
     source = Path(source)
+    if not source.exists():
+        raise UserError(f"{source} not found: pass a run directory (or a recipe file)")
     if source.is_dir() and (source / CHECKPOINT_NAME).is_file():
         run = load_trained(source)
         return run.recipe, run.supernet

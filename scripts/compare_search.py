@@ -1,0 +1,102 @@
+"""Regularized evolution vs random search on a trained run, one device and one budget.
+
+    .venv/bin/python scripts/compare_search.py RUN_DIR --table T.json --budget 0.3ms [--evaluations 100]
+
+For each seed: the best validation accuracy found by evolution with N evaluations, by random
+search with N, and by random search with FACTOR x N (random search = distinct subnets drawn
+uniformly within the predicted budget, best one kept). Accuracies go through the run's
+accuracy cache (RUN_DIR/search/accuracy_cache.jsonl), shared with `tightfit search`, so a
+second run costs nothing, and random search with N is the first N draws of the FACTOR x N
+run with the same seed, so it is free too.
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import statistics
+import sys
+import time
+from pathlib import Path
+
+from tightfit.errors import UserError
+
+
+def parse_args(argv: list[str] | None) -> argparse.Namespace:
+    p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("run")
+    p.add_argument("--table", required=True, help="latency table JSON of the device")
+    p.add_argument("--budget", required=True, help="latency budget such as 0.3ms")
+    p.add_argument("--evaluations", type=int, default=100, help="evaluations for evolution and random search")
+    p.add_argument("--factor", type=int, default=10, help="random search also gets FACTOR x the evaluations")
+    p.add_argument("--seeds", type=int, default=3)
+    p.add_argument("--population", type=int, default=32)
+    p.add_argument("--val-images", type=int, default=0, help="as in tightfit search (0 = whole validation split)")
+    p.add_argument("--threads", type=int, default=None)
+    return p.parse_args(argv)
+
+
+def compare(args: argparse.Namespace) -> list[dict]:
+    from tightfit.data.dataset import load_dataset
+    from tightfit.rundir import load_trained
+    from tightfit.search import RunAccuracy, SearchSettings, load_predictors, parse_budget
+    from tightfit.search_evolution import (AccuracyCache, CachedAccuracy, CachedLatency, random_search,
+                                           regularized_evolution)
+    budget = parse_budget(args.budget)
+    run = load_trained(args.run)
+    (table, predictor), = load_predictors([args.table], run.recipe)
+    ds = load_dataset(run.recipe.data, run.recipe.seed)
+    compute = RunAccuracy(run, ds, args.val_images)
+    fitness = CachedAccuracy(AccuracyCache(Path(args.run) / "search" / "accuracy_cache.jsonl",
+                                           compute.tag(Path(args.run))), compute)
+    latency = CachedLatency(predictor)
+    space = run.recipe.space
+    n = args.evaluations
+    print(f"device {table.name}, budget {budget:g} ms, {n} evaluations (random also {args.factor * n}), "
+          f"{compute.images} validation images, {len(fitness.cache.entries)} accuracies cached; load {os.getloadavg()[0]:.2f}")
+    rows = []
+    for seed in range(args.seeds):
+        t0, fresh0 = time.perf_counter(), fitness.fresh
+        cfg = SearchSettings(population=args.population, evaluations=n, seed=seed).evolution()
+        evo = regularized_evolution(space, fitness, latency, budget, cfg, device=table.name)
+        rnd = random_search(space, fitness, latency, budget, args.factor * n, seed=seed, device=table.name)
+        row = {"seed": seed, "evolution": max(c.fitness for c in evo), "random": max(c.fitness for c in rnd[:n]),
+               "random_x": max(c.fitness for c in rnd),
+               "evo_ms": max(evo, key=lambda c: c.fitness).latency_ms,
+               "seconds": time.perf_counter() - t0, "fresh": fitness.fresh - fresh0}
+        rows.append(row)
+        print(f"seed {seed}: evolution {row['evolution']:.2f}  random {row['random']:.2f}  "
+              f"random x{args.factor} {row['random_x']:.2f}  (evolution's pick predicts {row['evo_ms']:.4f} ms; "
+              f"{row['fresh']} new evaluations in {row['seconds']:.0f} s)", flush=True)
+    return rows
+
+
+def summarize(rows: list[dict], factor: int) -> str:
+    mean = {k: statistics.mean(r[k] for r in rows) for k in ("evolution", "random", "random_x")}
+    wins = sum(r["evolution"] > r["random"] for r in rows)
+    gap_x = mean["evolution"] - mean["random_x"]
+    return "\n".join([
+        f"mean best val acc: evolution {mean['evolution']:.2f}, random {mean['random']:.2f}, "
+        f"random x{factor} {mean['random_x']:.2f}",
+        f"evolution beats random at equal evaluations: {'yes' if mean['evolution'] > mean['random'] else 'NO'} "
+        f"({wins}/{len(rows)} seeds, mean {mean['evolution'] - mean['random']:+.2f} points)",
+        f"evolution vs random with {factor}x the evaluations: {gap_x:+.2f} points "
+        f"({'within' if gap_x >= -0.3 else 'NOT within'} 0.3)",
+    ])
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = parse_args(argv)
+    if args.threads:
+        import torch
+        torch.set_num_threads(args.threads)
+    try:
+        rows = compare(args)
+    except UserError as e:
+        print(f"error: {e}", file=sys.stderr)
+        return 2
+    print(summarize(rows, args.factor))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
