@@ -21,8 +21,11 @@ from helpers import tiny_recipe  # noqa: E402
 
 EPOCHS = 0.5      # 459 training images // 32 = 14 steps per epoch -> 7 steps
 STOP_ON_RANK1 = 3  # rank 1 alone asks to stop after step 3; all ranks agree at step 4
-# fp32 noise only: the two sides sum the same per-half gradients, but conv kernels may
-# reduce in another order (1 thread per rank vs. the test's threads); measured ~1e-7.
+# ||w_2ranks - w_reference|| / ||w_reference|| over all parameters after 7 steps. Both sides
+# sum the same per-half gradients; with one thread on both sides the result is bit-equal
+# (measured 0.0). The margin is for fp32 reduction-order noise: with 2 threads in the
+# reference instead of 1 it measured 6e-6. For scale, whole-batch BN instead of per-half
+# BN moves the weights by 1.8e-3 and the 7 updates themselves by 4e-3 (same units).
 RTOL = 1e-5
 
 
@@ -37,6 +40,17 @@ def test_ranks_come_from_torchrun_environment():
     # torchrun sets RANK, WORLD_SIZE, LOCAL_RANK (PyTorch docs, "torchrun (Elastic Launch)", environment variables).
     assert ranks_from_env({}) == Ranks()
     assert ranks_from_env({"RANK": "3", "WORLD_SIZE": "4", "LOCAL_RANK": "1"}) == Ranks(3, 4, 1, True)
+
+
+def test_documented_torchrun_command_reaches_tightfit_intact():
+    # torchrun's own parser (torch.distributed.run.get_args_parser, argparse prefix matching) reads a
+    # script's '--run' as an abbreviation of its '--run-path' and stops; '--run-dir' passes through.
+    from torch.distributed.run import get_args_parser
+    from tightfit.cli import build_parser
+    launch = get_args_parser().parse_args(["--nproc_per_node=2", "-m", "tightfit", "train", "r.toml",
+                                           "--run-dir", "D", "--device", "cpu", "--resume"])
+    args = build_parser().parse_args(launch.training_script_args)
+    assert (launch.training_script, args.run, args.device, args.resume) == ("tightfit", "D", "cpu", True)
 
 
 def test_device_is_cuda_local_rank_when_present_else_cpu(monkeypatch):
@@ -102,11 +116,23 @@ def _reference(recipe, steps: int, world: int) -> dict[str, torch.Tensor]:
     return {k: v.detach() for k, v in model.named_parameters()}
 
 
-def _worst_relative(a: dict, b: dict) -> float:
-    return max(((a[k] - b[k]).abs().max() / b[k].abs().max().clamp_min(1e-12)).item() for k in b)
+def _relative(a: dict, b: dict) -> float:
+    """Over all parameters at once: BN biases that a following BN cancels get only rounding-noise
+    gradients, so a per-tensor ratio would measure noise against noise."""
+    fa, fb = torch.cat([a[k].reshape(-1) for k in b]), torch.cat([b[k].reshape(-1) for k in b])
+    return ((fa - fb).norm() / fb.norm()).item()
 
 
-def test_two_ranks_match_one_process_and_only_rank0_writes(tmp_path):
+@pytest.fixture
+def one_thread():
+    """The same thread count as each torchrun worker (OMP_NUM_THREADS=1), so kernels reduce alike."""
+    before = torch.get_num_threads()
+    torch.set_num_threads(1)
+    yield
+    torch.set_num_threads(before)
+
+
+def test_two_ranks_match_one_process_and_only_rank0_writes(tmp_path, one_thread):
     # Launch through torch.distributed.run (torchrun), as users do; each rank gets its own --run
     # folder, as on machines without a shared disk, so anything rank 1 wrote would show.
     env = {**os.environ, "OMP_NUM_THREADS": "1", "PYTHONUNBUFFERED": "1"}
@@ -124,11 +150,11 @@ def test_two_ranks_match_one_process_and_only_rank0_writes(tmp_path):
     recipe = tiny_recipe(epochs=EPOCHS)
     ref = _reference(recipe, 7, world=2)
     got = {k: v for k, v in state["model"].items() if k in ref}
-    worst = _worst_relative(got, ref)
-    print(f"torchrun launch {launch_s:.1f} s, worst relative weight difference vs reference {worst:.2e}")
-    assert worst <= RTOL
+    diff = _relative(got, ref)
+    print(f"torchrun launch {launch_s:.1f} s, relative weight difference vs reference {diff:.2e}")
+    assert diff <= RTOL
     # Per-rank BN really differs from one process on the whole batch (so the reference above is needed).
-    assert _worst_relative(_reference(recipe, 2, world=1), _reference(recipe, 2, world=2)) > RTOL
+    assert _relative(_reference(recipe, 2, world=1), _reference(recipe, 2, world=2)) > 10 * RTOL
 
 
 def _worker(base: Path) -> None:

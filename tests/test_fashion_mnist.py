@@ -17,7 +17,7 @@ pytestmark = pytest.mark.skipif(not Path(DEFAULT_DIR).is_dir(),
 
 QUICK = {
     "name": "fashion-quick", "seed": 0,
-    "data": {"source": "fashion-mnist", "image_size": 28, "channels": 1, "max_train_images": 30000},
+    "data": {"source": "fashion-mnist", "image_size": 28, "channels": 1, "max_train_images": 15000},
     "space": {"stem_channels": 16, "stem_stride": 2, "stage": [
         {"channels": 16, "stride": 1, "depths": [1], "expansions": [1], "kernels": [3]},
         {"channels": 24, "stride": 2, "depths": [1, 2], "expansions": [2, 4], "kernels": [3, 5]},

@@ -297,6 +297,22 @@ def test_manifest_fields_and_sha256(tmp_path):
         write_export(tmp_path / "bad", data + b"x", net, m)
 
 
+@pytest.mark.parametrize("which", ["smallest", "largest", "middle", "random"])
+def test_architecture_size_matches_torch_counters(which):
+    # Reference: parameters counted by torch.nn.Module.parameters() and multiply-adds by
+    # torch.utils.flop_counter.FlopCounterMode (via tightfit.extract), on the built network.
+    from tightfit.extract import count_macs, count_params, extract_subnet
+    from tightfit.manifest import architecture_size
+    from tightfit.supernet import Supernet
+    from helpers import tiny_recipe
+    space = tiny_recipe().space  # has squeeze-excite in its last stage
+    for head in (0, 24):
+        sp = SpaceSpec(space.stem_chs, 2 if head else 1, space.stages, head_chs=head)
+        subnet = sp.sample(random.Random(5)) if which == "random" else getattr(sp, which)()
+        net = extract_subnet(Supernet(sp, 3, 7), subnet)
+        assert architecture_size(sp, subnet, 3, 17, 7) == (count_params(net), count_macs(net, 3, 17))
+
+
 def test_manifest_unverified_latency_says_so():
     lat = latency_section(None, {"cpu_model": "elsewhere"}, {"threads": 1}, 0.42, "unverified: measure on the device")
     assert lat["measured"] is False and lat["p90_ms"] is None and lat["stable"] is False
@@ -322,12 +338,8 @@ class MacsPredictor:
         self.space, self.k = space, ms_per_mmac
 
     def predict_ms(self, subnet: Subnet) -> float:
-        from tightfit.manifest import describe_architecture
-        macs = 0
-        for b in describe_architecture(self.space, subnet):
-            if b["type"] == "inverted_residual":
-                macs += b["mid_chs"] * (b["in_chs"] + b["out_chs"] + b["kernel"] ** 2)
-        return self.k * macs / 1e3
+        from tightfit.manifest import architecture_size
+        return self.k * architecture_size(self.space, subnet, 3, 16, 10)[1] / 1e5
 
 
 @pytest.fixture(scope="module")

@@ -6,6 +6,7 @@ on-device runner work where only numpy and onnxruntime are installed.
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import warnings
 
@@ -26,11 +27,15 @@ typical day:
 
 def _cmd_train(args: argparse.Namespace) -> int:
     from tightfit.recipe import load_recipe
+    recipe = load_recipe(args.recipe)  # before torch is imported: a bad recipe is refused in a second
+    from tightfit.rundir import discard_unstarted_run
     from tightfit.train import train
-    recipe = load_recipe(args.recipe)
     _apply_threads(args.threads)
-    ckpt = train(recipe, args.run, resume=args.resume, recipe_path=args.recipe, progress=not args.quiet)
-    print(f"supernet checkpoint: {ckpt}")
+    with discard_unstarted_run(args.run):
+        ckpt = train(recipe, args.run, resume=args.resume, recipe_path=args.recipe, progress=not args.quiet,
+                 device=args.device)
+    if os.environ.get("RANK", "0") == "0":  # under torchrun, rank 0 speaks for all
+        print(f"supernet checkpoint: {ckpt}")
     return 0
 
 
@@ -44,6 +49,9 @@ def _cmd_cut(args: argparse.Namespace) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
+    if args.recipe:  # before torch is imported: a bad recipe is refused in a second
+        from tightfit.recipe import load_recipe
+        load_recipe(args.recipe)
     from tightfit.demo import run_demo
     _apply_threads(args.threads)
     run_demo(args.run, recipe_path=args.recipe)
@@ -67,7 +75,10 @@ def build_parser() -> argparse.ArgumentParser:
                                    "atomically at the end of every epoch (and every train.checkpoint_every steps); "
                                    "Ctrl-C or SIGTERM writes one and exits 130/143. Continue with --resume.")
     t.add_argument("recipe", help="TOML recipe (see recipes/)")
-    t.add_argument("--run", required=True, help="run directory to create (or resume)")
+    t.add_argument("--run", "--run-dir", dest="run", required=True,
+                   help="run directory to create (or resume); spell it --run-dir under torchrun")
+    t.add_argument("--device", default=None,
+                   help="cpu, cuda or cuda:N (default: CUDA when present; under torchrun each rank takes cuda:LOCAL_RANK)")
     t.add_argument("--resume", action="store_true", help="continue the run in RUN_DIR from its last checkpoint")
     t.add_argument("--threads", type=int, default=None, help="torch CPU threads (default: all cores)")
     t.add_argument("--quiet", action="store_true", help="no progress bar")

@@ -74,13 +74,17 @@ def measure_latency(results: list[CutResult], repeats: int = 1, min_seconds: flo
 
 def cut_subnets(run_dir: str | Path, specs: list[str], out: str | Path | None = None) -> list[CutResult]:
     run = load_trained(run_dir)
+    picked = [resolve_subnet(run, spec) for spec in specs]  # a bad key fails before anything is written
     ds = load_dataset(run.recipe.data, run.recipe.seed)
     if ds.class_names != run.class_names:
         raise UserError(f"the data the recipe points at has classes {ds.class_names}, the run was trained on {run.class_names}")
     out_dir = Path(out) if out else Path(run_dir) / "exports"
+    try:
+        out_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise UserError(f"cannot create the export folder {out_dir} ({e.strerror}); choose another --out") from None
     results = []
-    for spec in specs:
-        name, subnet = resolve_subnet(run, spec)
+    for (name, subnet), spec in zip(picked, specs):
         results.append(cut_one(run, ds, name if name != spec or len(name) < 24 else f"subnet{len(results)}",
                                subnet, out_dir)[0])
     measure_latency(results)

@@ -10,29 +10,39 @@ All gradients (None counted as zero), a did-this-rank-have-a-gradient count per
 parameter, the losses and the stop request travel in one flat buffer; a parameter
 with no gradient on any rank keeps grad None, so the optimizer skips it exactly as in
 a single process (no weight decay, no momentum step). Measured against
-DistributedDataParallel(find_unused_parameters=True, broadcast_buffers=False), 2 CPU
-ranks with gloo, recipes/demo.toml (global batch 128, 4 subnets per step), one thread
-per rank, on a shared 2-core machine (load average ~9, so absolute figures are
-contended; median of 15 steps after 3 warm-up steps):
-    manual all-reduce after the sandwich       BENCH_MANUAL ms/step
-    DDP, reduction after every subnet          BENCH_DDP ms/step
-    DDP, no_sync() on all but the last subnet  BENCH_DDP_NOSYNC ms/step
-Manual wins or ties on speed; we take it mainly because it is exact: DDP walks the
-autograd graph after every forward to find unused parameters, reduces once per
-subnet, and hands zero (not None) gradients to parameters no subnet used, so SGD would
-apply weight decay and momentum to them where a single process would not.
+DistributedDataParallel(find_unused_parameters=True, broadcast_buffers=False): 2 CPU
+ranks, gloo, recipes/demo.toml (global batch 128, 4 subnets per step, channels_last),
+1 thread per rank, a shared 2-core machine at load average ~8; median (quartiles) of 16
+steps, modes interleaved:
+    manual all-reduce after the sandwich        868 ms/step (820-995)
+    DDP, one reduction per subnet              1097 ms/step (718-1442)
+    DDP, no_sync() on all but the last subnet  1007 ms/step (888-1162)
+The all-reduce alone (178k parameters) takes 7 ms, so speed does not decide at this
+size; first-step gradients of all three agree to 2e-7. We take the manual one because
+it is one collective per step by construction (DDP reduces once per subnet unless told
+otherwise) and carries the losses and the stop request in the same message; it keeps
+None gradients None where DDP would hand zeros to the optimizer; it needs no wrapper
+around a model whose set_subnet changes the graph every forward (DDP re-walks the
+autograd graph after each one); and DDP warns that channels_last gradients do not
+match its bucket strides.
 
 BatchNorm: per-rank batch statistics. torch.nn.SyncBatchNorm runs on CUDA only, and our
 elastic BN slices its channels per subnet anyway. Each rank normalises with the
 statistics of its own sub-batch (batch_size / world images), so results depend
-slightly on the world size: 2 ranks x 16 is not bit-equal to 1 x 32. Running
-statistics do not matter: every subnet is BN-recalibrated before it is evaluated or
-exported, and the checkpoint keeps rank 0's. tests/test_distributed.py compares a
-2-rank run with one process that computes the same per-half BN.
+slightly on the world size: 2 ranks x 16 is not bit-equal to 1 x 32 (tiny test recipe,
+7 steps: the weights differ by 1.8e-3 of their norm, while the 7 updates move them by
+4e-3). Running statistics do not matter: every subnet is BN-recalibrated before it is
+evaluated or exported, and the checkpoint keeps rank 0's. tests/test_distributed.py
+therefore compares a 2-rank run with one process that computes the same per-half BN.
+Dropout masks come from a global RNG reseeded per (seed, rank, step).
 
-Only rank 0 touches the run directory (checkpoint, metrics, recipe copy) and shows the
-progress bar; it also loads the checkpoint on resume and sends the start state to the
-others, so the run directory need exist only on rank 0's machine.
+Only rank 0 touches the run directory (checkpoint, metrics, recipe copy), evaluates at
+epoch ends and shows the progress bar; it also loads the checkpoint on resume and sends
+the start state to the others, so the run directory need exist only on rank 0's
+machine (the data must exist on every machine; the built-in set is generated there).
+A signal (Ctrl-C, SIGTERM from torchrun or a scheduler) is agreed on in the next
+step's all-reduce, so all ranks stop after the same step: rank 0 writes the
+checkpoint, everyone waits at a barrier, everyone exits 130/143.
 """
 from __future__ import annotations
 
@@ -132,7 +142,8 @@ def barrier(ranks: Ranks) -> None:
 
 
 def decided_on_main(ranks: Ranks, fn: Callable[[], Any], dev: torch.device) -> Any:
-    """Run ``fn`` on rank 0 and hand its result (or its UserError) to every rank."""
+    """Run ``fn`` on rank 0 and hand its result (or its UserError) to every rank; the result
+    must be tensors and plain data (received with weights_only=True, like checkpoints)."""
     if not ranks.launched:
         return fn()
     box: list[Any] = [None]
@@ -141,7 +152,7 @@ def decided_on_main(ranks: Ranks, fn: Callable[[], Any], dev: torch.device) -> A
             box[0] = ("ok", fn())
         except UserError as e:
             box[0] = ("error", str(e))
-    dist.broadcast_object_list(box, src=0, device=dev if dev.type == "cuda" else None)
+    dist.broadcast_object_list(box, src=0, device=dev if dev.type == "cuda" else None, weights_only=True)
     kind, value = box[0]
     if kind == "error":
         raise UserError(value)

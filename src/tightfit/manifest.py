@@ -26,6 +26,7 @@ from tightfit.atomic import write_bytes, write_json
 from tightfit.search import budget_label, safe_name
 from tightfit.search_evolution import CachedAccuracy, CachedLatency, Candidate
 from tightfit.space import SpaceSpec, Subnet
+from tightfit.elastic import squeeze_chs
 from tightfit.supernet import hidden_chs
 
 MANIFEST_FORMAT = "tightfit-export-manifest"
@@ -47,22 +48,52 @@ def sha256_hex(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()
 
 
-def describe_architecture(space: SpaceSpec, subnet: Subnet) -> list[dict[str, Any]]:
-    """One dict per layer group, in forward order, enough to rebuild the network by hand."""
-    out: list[dict[str, Any]] = [{"type": "stem", "out_chs": space.stem_chs, "kernel": 3,
-                                  "stride": space.stem_stride, "act": space.stem_act}]
+def _out(size: int, stride: int) -> int:
+    return (size - 1) // stride + 1  # odd kernel k, padding k // 2
+
+
+def describe_architecture(space: SpaceSpec, subnet: Subnet, in_chs: int, image_size: int,
+                          num_classes: int) -> list[dict[str, Any]]:
+    """One dict per layer group in forward order, with its parameters and multiply-adds at batch 1
+    (convolutions and the classifier, as torch's FlopCounterMode counts them), enough to
+    rebuild the network by hand and to size candidates without building them."""
+    size = _out(image_size, space.stem_stride)
+    out: list[dict[str, Any]] = [{"type": "stem", "in_chs": in_chs, "out_chs": space.stem_chs, "kernel": 3,
+                                  "stride": space.stem_stride, "act": space.stem_act, "out_size": size,
+                                  "params": 9 * in_chs * space.stem_chs + 2 * space.stem_chs,
+                                  "macs": 9 * in_chs * space.stem_chs * size * size}]
     for i, (st, blocks) in enumerate(zip(space.stages, subnet.stages)):
-        in_chs = space.stage_in_chs(i)
+        chs = space.stage_in_chs(i)
         for j, (e, k) in enumerate(blocks):
             stride = st.stride if j == 0 else 1
-            out.append({"type": "inverted_residual", "stage": i, "block": j, "in_chs": in_chs,
-                        "mid_chs": hidden_chs(in_chs, e), "out_chs": st.out_chs, "exp_ratio": e, "kernel": k,
-                        "stride": stride, "act": st.act, "se": st.se, "skip": stride == 1 and in_chs == st.out_chs})
-            in_chs = st.out_chs
+            mid, res = hidden_chs(chs, e), _out(size, stride)
+            params = mid * k * k + 2 * mid + mid * st.out_chs + 2 * st.out_chs
+            macs = (mid * k * k + mid * st.out_chs) * res * res
+            if st.has_expand:
+                params, macs = params + chs * mid + 2 * mid, macs + chs * mid * size * size
+            if st.se:
+                sq = squeeze_chs(mid)
+                params, macs = params + 2 * mid * sq + sq + mid, macs + 2 * mid * sq
+            out.append({"type": "inverted_residual", "stage": i, "block": j, "in_chs": chs, "mid_chs": mid,
+                        "out_chs": st.out_chs, "exp_ratio": e, "kernel": k, "stride": stride, "act": st.act,
+                        "se": st.se, "skip": stride == 1 and chs == st.out_chs, "out_size": res,
+                        "params": params, "macs": macs})
+            chs, size = st.out_chs, res
     if space.head_chs:
-        out.append({"type": "head", "out_chs": space.head_chs, "kernel": 1, "act": space.head_act})
-    out.append({"type": "pool_classifier", "dropout": space.dropout})
+        out.append({"type": "head", "in_chs": chs, "out_chs": space.head_chs, "kernel": 1, "act": space.head_act,
+                    "out_size": size, "params": chs * space.head_chs + 2 * space.head_chs,
+                    "macs": chs * space.head_chs * size * size})
+        chs = space.head_chs
+    out.append({"type": "pool_classifier", "in_chs": chs, "out_chs": num_classes, "dropout": space.dropout,
+                "params": chs * num_classes + num_classes, "macs": chs * num_classes})
     return out
+
+
+def architecture_size(space: SpaceSpec, subnet: Subnet, in_chs: int, image_size: int,
+                      num_classes: int) -> tuple[int, int]:
+    """(parameters, multiply-adds) of the static subnet, computed from the space alone."""
+    parts = describe_architecture(space, subnet, in_chs, image_size, num_classes)
+    return sum(p["params"] for p in parts), sum(p["macs"] for p in parts)
 
 
 def software_versions() -> dict[str, str]:
@@ -102,7 +133,8 @@ def build_manifest(*, space: SpaceSpec, subnet: Subnet, params: int, macs: int, 
         "format": MANIFEST_FORMAT, "version": MANIFEST_VERSION, "model_file": "model.onnx",
         "sha256": sha256_hex(onnx_data),
         "architecture": {"key": subnet.to_key(), "depths": list(subnet.depths), "params": params, "macs": macs,
-                         "description": describe_architecture(space, subnet)},
+                         "description": describe_architecture(space, subnet, channels, image_size,
+                                                              len(class_names))},
         "input": {"name": "image", "layout": "NCHW", "dtype": "float32", "shape": [None, channels, image_size, image_size],
                   "channels": channels, "image_size": image_size, "color": "RGB" if channels == 3 else "grey",
                   "scale": "divide by 255, then (x-mean)/std", "mean": list(mean), "std": list(std),

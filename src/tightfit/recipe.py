@@ -214,7 +214,8 @@ def load_recipe(path: str | Path) -> Recipe:
     try:
         doc = tomllib.loads(path.read_text(encoding="utf-8"))
     except tomllib.TOMLDecodeError as e:
-        raise UserError(f"recipe {path} is not valid TOML: {e}") from None
+        raise UserError(f"recipe {path} is not valid TOML: {e}; fix the syntax there "
+                        "(see recipes/ for examples)") from None
     except UnicodeDecodeError:
         raise UserError(f"recipe {path} is not a UTF-8 text file") from None
     return parse_recipe(doc, default_name=path.stem)

@@ -433,6 +433,10 @@ def write_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
     """Render every plot that has data, then the page; returns the page's path."""
     data = load_run(run_dir)
     out_dir = Path(out) if out else data.run_dir / "report"
+    try:  # fail before plotting, not half-way through writing
+        out_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise UserError(f"cannot write the report to {out_dir} ({e.strerror}); choose another --out") from None
     figures = {"accuracy_latency.png": plot_accuracy_latency(data), "training.png": plot_training(data.metrics),
                "pick_latency.png": plot_pick_latency(data)}
     images = {name: _png(fig) for name, fig in figures.items() if fig is not None}

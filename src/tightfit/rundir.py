@@ -8,8 +8,11 @@ RUN_DIR/
 """
 from __future__ import annotations
 
+import shutil
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Iterator
 
 import torch
 
@@ -31,6 +34,20 @@ class TrainedRun:
 
 def checkpoint_path(run_dir: str | Path) -> Path:
     return Path(run_dir) / CHECKPOINT_NAME
+
+
+@contextmanager
+def discard_unstarted_run(run_dir: str | Path) -> Iterator[None]:
+    """Bad input found after ``run_dir`` was created (data, batch size) must not leave a
+    checkpoint-less folder behind: remove it, but only if this call created it."""
+    run_dir = Path(run_dir)
+    existed = run_dir.exists()
+    try:
+        yield
+    except UserError:
+        if not existed and run_dir.is_dir() and not checkpoint_path(run_dir).exists():
+            shutil.rmtree(run_dir, ignore_errors=True)
+        raise
 
 
 def load_trained(run_dir: str | Path) -> TrainedRun:

@@ -159,7 +159,7 @@ class RunAccuracy:
         # The validation split is a random carve, so its first N images are a uniform subsample.
         self.val = list(eval_batches(ds.val_x[:self.images], ds.val_y[:self.images], ds,
                                      max(cfg.train.eval_batch_size, 512)))
-        self.recal_s = self.val_s = self.size_s = 0.0
+        self.recal_s = self.val_s = 0.0
 
     def tag(self, run_dir: Path) -> dict[str, Any]:
         """What the cached figures depend on: recipe, the exact weights, recalibration and images."""
@@ -170,7 +170,7 @@ class RunAccuracy:
                 "recalibration_batches": len(self.calib), "images": self.images}
 
     def __call__(self, subnet: Subnet) -> dict[str, Any]:
-        from tightfit.extract import count_macs, count_params, extract_subnet
+        from tightfit.manifest import architecture_size
         from tightfit.recalibrate import accuracy, preserved_bn_stats, recalibrate_bn
         sn, data = self.run.supernet, self.run.recipe.data
         sn.set_subnet(subnet)
@@ -179,12 +179,10 @@ class RunAccuracy:
             recalibrate_bn(sn, self.calib)
             t1 = time.perf_counter()
             acc = accuracy(sn, self.val)
-        t2 = time.perf_counter()
-        net = extract_subnet(sn, subnet)
-        params, macs = count_params(net), count_macs(net, data.channels, data.image_size)
         self.recal_s += t1 - t0
-        self.val_s += t2 - t1
-        self.size_s += time.perf_counter() - t2
+        self.val_s += time.perf_counter() - t1
+        params, macs = architecture_size(self.run.recipe.space, subnet, data.channels, data.image_size,
+                                         len(self.run.class_names))
         return {"val_acc": round(acc, 4), "params": params, "macs": macs}
 
 

@@ -94,7 +94,8 @@ class SpaceSpec:
         """Key → subnet, checked against this space (UserError if it does not belong)."""
         subnet = Subnet.from_key(key)
         if not self.contains(subnet):
-            raise UserError(f"subnet key {key!r} is not in this search space")
+            raise UserError(f"subnet key {key!r} is not in this search space; use only the depths, expansions "
+                            f"and kernels the recipe allows, e.g. {self.smallest().to_key()!r}")
         return subnet
 
 

@@ -86,9 +86,9 @@ def _hex_nut(u, v, rng):
 
 
 def _hex_nut_chipped(u, v, rng):
-    """One corner knocked off: a flat cut across the vertex on the local +u axis."""
+    """One corner knocked off: a round bite out of the vertex on the local +u axis."""
     sdf, corner = _nut(u, v, rng)
-    return _cut(sdf, corner - _p(rng, len(u), 0.17, 0.22) - u)
+    return _cut(sdf, np.hypot(u - corner, v) - _p(rng, len(u), 0.15, 0.19))
 
 
 def _square_nut(u, v, rng):
@@ -100,7 +100,7 @@ def _square_nut(u, v, rng):
 def _teeth(u, v, rng, missing: bool):
     """Gear outline: a hub plus a smoothed square wave of teeth around the rim."""
     b = len(u)
-    n = rng.choice(np.array([6, 7, 8], _F), (b, 1, 1))
+    n = _F(8)
     r, phi = np.hypot(u, v), np.arctan2(v, u)
     tooth = np.clip(2.2 * np.cos(n * phi) + 0.4, 0.0, 1.0)
     if missing:

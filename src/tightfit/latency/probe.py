@@ -277,8 +277,11 @@ def write_bundle(source: str | Path, out: str | Path | None = None, n_subnets: i
             raise UserError("give --out when probing a recipe file (a run directory defaults to RUN_DIR/probe)")
         out = Path(source) / "probe"
     out = Path(out)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
+    except OSError as e:
+        raise UserError(f"cannot write the probe bundle to {out} ({e.strerror}); choose another --out") from None
     try:
         entries = []
         todo = list(_bundle_entries(recipe, supernet, n_subnets, seed))

@@ -125,13 +125,13 @@ def run_runner(bundle: Path, out: Path, args: list[str]) -> None:
 def profile_host(run_dir: str | Path, name: str | None = None, threads: int = 1, quick: bool = False,
                  n_subnets: int = 8, progress: bool = True) -> Path:
     """Probe the run's space, measure the bundle on this machine, write RUN_DIR/latency/NAME.json."""
-    from tightfit.latency.probe import write_bundle
     run_dir = Path(run_dir)
     if not run_dir.is_dir():
         raise UserError(f"run directory not found: {run_dir}")
     if threads < 1:
         raise UserError(f"--threads {threads} must be at least 1")
     out = run_dir / "latency" / f"{check_device_name(name or default_device_name())}.json"
+    from tightfit.latency.probe import write_bundle  # torch: only once the arguments are known good
     with tempfile.TemporaryDirectory(prefix="tightfit-probe-") as tmp:
         bundle = write_bundle(run_dir, Path(tmp) / "probe", n_subnets=n_subnets, progress=progress)
         run_runner(bundle, out, ["--threads", str(threads)] + (["--quick"] if quick else []))

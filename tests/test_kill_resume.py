@@ -1,0 +1,223 @@
+"""Training survives being killed: SIGKILL at random moments, then `--resume`, ends with weights
+bit-identical to an uninterrupted run (CPU, one thread); SIGINT/SIGTERM write a checkpoint, exit
+130/143 and say how to resume; a half-written checkpoint file is never trusted.
+
+The kill points are drawn from a seeded random.Random and located by reading the progress bar
+the `tightfit train` subprocess prints, so each kill lands mid-training (at a chosen step plus
+a random fraction of a step), not in the seconds of start-up.
+"""
+from __future__ import annotations
+
+import copy
+import json
+import random
+import re
+import signal
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+
+import pytest
+import torch
+
+from helpers import TINY
+from tightfit.checkpoint import load_checkpoint
+
+RECIPE = copy.deepcopy(TINY)
+RECIPE["data"]["samples"] = 400                                 # 306 training images: 9 steps of 32 per epoch
+RECIPE["train"].update(epochs=4, checkpoint_every=3)            # 36 steps, a checkpoint every 3
+TOTAL_STEPS = 36
+STEP = re.compile(rb"(\d+)/(\d+) \[")                            # tqdm's "n/total [" counter
+LEFTOVER = ".checkpoint.pt.*.tmp"                                # tightfit.atomic's temporary names
+
+
+def toml_value(v) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(map(toml_value, v)) + "]"
+    return json.dumps(v) if isinstance(v, str) else repr(v)
+
+
+def recipe_toml(doc: dict) -> str:
+    """TOML text of a recipe dict: scalars, [tables] and [[space.stage]] arrays of tables."""
+    lines = [f"{k} = {toml_value(v)}" for k, v in doc.items() if not isinstance(v, dict)]
+    for section, table in ((k, v) for k, v in doc.items() if isinstance(v, dict)):
+        lines.append(f"[{section}]")
+        lines += [f"{k} = {toml_value(v)}" for k, v in table.items() if k != "stage"]
+        for item in table.get("stage", []):
+            lines += [f"[[{section}.stage]]"] + [f"{k} = {toml_value(v)}" for k, v in item.items()]
+    return "\n".join(lines) + "\n"
+
+
+class Training:
+    """A `tightfit train` subprocess whose progress bar is read while it runs."""
+
+    def __init__(self, recipe: Path, run: Path, resume: bool):
+        args = [sys.executable, "-m", "tightfit", "train", str(recipe), "--run", str(run), "--threads", "1"]
+        self.proc = subprocess.Popen(args + (["--resume"] if resume else []), stdin=subprocess.DEVNULL,
+                                     stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        self.err, self.step = b"", -1
+        self._reader = threading.Thread(target=self._read, daemon=True)
+        self._reader.start()
+
+    def _read(self) -> None:
+        while chunk := self.proc.stderr.read1(4096):
+            self.err += chunk
+            found = STEP.findall(self.err[-400:])
+            if found:
+                self.step = int(found[-1][0])
+
+    def wait_for_step(self, step: int, timeout: float = 300) -> bool:
+        """True once `step` steps are done and the process still runs."""
+        deadline = time.monotonic() + timeout
+        while self.step < step and self.proc.poll() is None:
+            assert time.monotonic() < deadline, "training made no progress"
+            time.sleep(0.01)
+        return self.step >= step and self.proc.poll() is None
+
+    def finish(self, timeout: float = 300) -> tuple[int, str]:
+        code = self.proc.wait(timeout)
+        self._reader.join(10)
+        return code, self.err.decode("utf-8", "replace")
+
+
+@pytest.fixture(scope="module")
+def recipe_file(tmp_path_factory) -> Path:
+    path = tmp_path_factory.mktemp("kill") / "tiny.toml"
+    path.write_text(recipe_toml(RECIPE))
+    return path
+
+
+@pytest.fixture(scope="module")
+def reference(recipe_file) -> Path:
+    """The uninterrupted run, trained in this process on one thread like the subprocesses."""
+    from tightfit.recipe import load_recipe
+    from tightfit.train import train
+    run = recipe_file.parent / "reference"
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)
+    try:
+        train(load_recipe(recipe_file), run, recipe_path=recipe_file, progress=False)
+    finally:
+        torch.set_num_threads(threads)
+    assert load_checkpoint(run / "checkpoint.pt")["step"] == TOTAL_STEPS
+    return run
+
+
+def metrics(run: Path) -> list[dict]:
+    """Logged records without the throughput (a wall-clock figure)."""
+    rows = [json.loads(line) for line in (run / "metrics.jsonl").read_text().splitlines() if line.strip()]
+    return [{k: v for k, v in r.items() if k != "images_per_s"} for r in rows]
+
+
+def assert_same_training(run: Path, reference: Path) -> None:
+    """torch.equal on every weight, buffer and optimizer tensor; the same logged losses and accuracies."""
+    a, b = load_checkpoint(run / "checkpoint.pt"), load_checkpoint(reference / "checkpoint.pt")
+    assert a["complete"] and a["step"] == b["step"] == TOTAL_STEPS
+    assert a["model"].keys() == b["model"].keys()
+    different = [k for k in a["model"] if not torch.equal(a["model"][k], b["model"][k])]
+    assert different == []
+    sa, sb = a["optimizer"]["state"], b["optimizer"]["state"]
+    assert sa.keys() == sb.keys()
+    for pid in sa:
+        for name, value in sa[pid].items():
+            assert torch.equal(value, sb[pid][name]) if torch.is_tensor(value) else value == sb[pid][name]
+    assert metrics(run) == metrics(reference)
+
+
+def after_kill(run: Path) -> dict:
+    """What a SIGKILL left: a checkpoint that loads whole (or none yet), maybe a temporary file.
+    A fake half-written temporary is then planted, to show resume never reads one."""
+    ckpt = run / "checkpoint.pt"
+    state = load_checkpoint(ckpt) if ckpt.exists() else None  # raises if half-written
+    if state is not None:
+        assert 0 < state["step"] < TOTAL_STEPS and state["complete"] is False
+    leftovers = len(list(run.glob(LEFTOVER)))
+    (run / ".checkpoint.pt.planted.tmp").write_bytes(b"PK\x03\x04 half a checkpoint")
+    return {"checkpoint_step": state["step"] if state else None, "leftover_tmp": leftovers}
+
+
+def kill_and_resume(recipe: Path, run: Path, kill_steps: list[int], rng: random.Random) -> list[dict]:
+    """SIGKILL the run once it has done each of kill_steps (plus a random part of a step),
+    resuming in between; then resume to the end. Returns what each kill left."""
+    log = []
+    for i, target in enumerate(kill_steps):
+        t = Training(recipe, run, resume=i > 0)
+        assert t.wait_for_step(target), t.finish()[1][-2000:]
+        time.sleep(rng.uniform(0.0, 0.25))
+        t.proc.kill()
+        code, err = t.finish()
+        assert code == -signal.SIGKILL, err[-2000:]
+        log.append({"kill_after_step": t.step, **after_kill(run)})
+    code, err = Training(recipe, run, resume=True).finish()
+    assert code == 0, err[-2000:]
+    return log
+
+
+def kill_points(seed: int, n: int) -> list[int]:
+    """n distinct steps, away from the very end so the kill lands before training finishes."""
+    return sorted(random.Random(seed).sample(range(2, TOTAL_STEPS - 4), n))
+
+
+def test_sigkill_once_then_resume_is_bit_identical(tmp_path, recipe_file, reference):
+    log = kill_and_resume(recipe_file, tmp_path / "run", kill_points(seed=7, n=1), random.Random(7))
+    assert len(log) == 1
+    assert_same_training(tmp_path / "run", reference)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_sigkill_at_random_moments_then_resume_is_bit_identical(tmp_path, recipe_file, reference, seed):
+    """Three seeded trials of two kills each: six random kill points in all."""
+    log = kill_and_resume(recipe_file, tmp_path / "run", kill_points(seed, n=2), random.Random(seed))
+    assert len(log) == 2
+    assert_same_training(tmp_path / "run", reference)
+
+
+@pytest.mark.parametrize("sig,code", [(signal.SIGINT, 130), (signal.SIGTERM, 143)], ids=["SIGINT", "SIGTERM"])
+def test_sigint_sigterm_write_a_checkpoint_and_say_how_to_resume(tmp_path, recipe_file, reference, sig, code):
+    """128 + signal number is the shell's exit status for a signal (POSIX shell, 'Exit Status');
+    the run stops between steps with a whole checkpoint, and resuming it matches the reference."""
+    run = tmp_path / "run"
+    t = Training(recipe_file, run, resume=False)
+    assert t.wait_for_step(4), t.finish()[1][-2000:]
+    t.proc.send_signal(sig)
+    got, err = t.finish()
+    assert got == code == 128 + sig, err[-2000:]
+    last = [ln for ln in err.replace("\r", "\n").splitlines() if ln.strip()][-1]
+    m = re.fullmatch(r"interrupted at step (\d+); checkpoint written\. Resume with: "
+                     r"tightfit train \S+ --run (\S+) --resume", last)
+    assert m and m[2] == str(run), last
+    state = load_checkpoint(run / "checkpoint.pt")
+    assert state["step"] == int(m[1]) and 4 <= state["step"] < TOTAL_STEPS and state["complete"] is False
+    assert list(run.glob(LEFTOVER)) == []  # a clean stop leaves no temporary file
+    resumed, err = Training(recipe_file, run, resume=True).finish()
+    assert resumed == 0, err[-2000:]
+    assert_same_training(run, reference)
+
+
+def test_sigkill_while_writing_keeps_the_previous_checkpoint(tmp_path):
+    """A kill in the middle of a checkpoint write (the writer blocks after half the bytes) leaves
+    the previous checkpoint.pt whole; the half-written file exists only under a temporary name."""
+    from tightfit.checkpoint import save_checkpoint
+    path = tmp_path / "checkpoint.pt"
+    save_checkpoint(path, {"model": {"w": torch.arange(1000.0)}, "recipe": {}, "step": 3})
+    writer = (
+        "import sys, time\n"
+        "from tightfit.atomic import atomic_write\n"
+        "def half(tmp):\n"
+        "    with open(tmp, 'wb') as f:\n"
+        "        f.write(open(sys.argv[1], 'rb').read()[:500]); f.flush()\n"
+        "    print('written', flush=True); time.sleep(60)\n"
+        "atomic_write(sys.argv[1], half)\n")
+    proc = subprocess.Popen([sys.executable, "-c", writer, str(path)], stdout=subprocess.PIPE, text=True)
+    assert proc.stdout.readline().strip() == "written"
+    proc.kill()
+    proc.wait(30)
+    leftovers = list(tmp_path.glob(LEFTOVER))
+    assert len(leftovers) == 1 and leftovers[0].stat().st_size == 500
+    state = load_checkpoint(path)
+    assert state["step"] == 3 and torch.equal(state["model"]["w"], torch.arange(1000.0))
