@@ -29,7 +29,7 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
     p.add_argument("--evaluations", type=int, default=100, help="evaluations for evolution and random search")
     p.add_argument("--factor", type=int, default=10, help="random search also gets FACTOR x the evaluations")
     p.add_argument("--seeds", type=int, default=3)
-    p.add_argument("--population", type=int, default=32)
+    p.add_argument("--population", type=int, default=16)
     p.add_argument("--val-images", type=int, default=0, help="as in tightfit search (0 = whole validation split)")
     p.add_argument("--threads", type=int, default=None)
     return p.parse_args(argv)

@@ -17,13 +17,14 @@ pytestmark = pytest.mark.skipif(not Path(DEFAULT_DIR).is_dir(),
 
 QUICK = {
     "name": "fashion-quick", "seed": 0,
-    "data": {"source": "fashion-mnist", "image_size": 28, "channels": 1, "max_train_images": 15000},
+    "data": {"source": "fashion-mnist", "image_size": 28, "channels": 1, "shift": 0, "flip": False},
     "space": {"stem_channels": 16, "stem_stride": 2, "stage": [
         {"channels": 16, "stride": 1, "depths": [1], "expansions": [1], "kernels": [3]},
         {"channels": 24, "stride": 2, "depths": [1, 2], "expansions": [2, 4], "kernels": [3, 5]},
         {"channels": 32, "stride": 1, "depths": [1, 2], "expansions": [2, 4], "kernels": [3, 5]},
     ]},
-    "train": {"epochs": 1, "batch_size": 128, "lr": 0.1, "warmup_epochs": 0.1, "random_subnets": 1,
+    "train": {"epochs": 1, "batch_size": 128, "lr": 0.05, "warmup_epochs": 0.1, "random_subnets": 1,
+              "label_smoothing": 0.0,
               "channels_last": True},
 }
 

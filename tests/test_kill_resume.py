@@ -12,6 +12,7 @@ import copy
 import json
 import random
 import re
+import shutil
 import signal
 import subprocess
 import sys
@@ -31,6 +32,7 @@ RECIPE["train"].update(epochs=4, checkpoint_every=3)            # 36 steps, a ch
 TOTAL_STEPS = 36
 STEP = re.compile(rb"(\d+)/(\d+) \[")                            # tqdm's "n/total [" counter
 LEFTOVER = ".checkpoint.pt.*.tmp"                                # tightfit.atomic's temporary names
+PLANTED = ".checkpoint.pt.planted.tmp"                           # a fake half-written one, planted by the test
 
 
 def toml_value(v) -> str:
@@ -135,8 +137,8 @@ def after_kill(run: Path) -> dict:
     state = load_checkpoint(ckpt) if ckpt.exists() else None  # raises if half-written
     if state is not None:
         assert 0 < state["step"] < TOTAL_STEPS and state["complete"] is False
-    leftovers = len(list(run.glob(LEFTOVER)))
-    (run / ".checkpoint.pt.planted.tmp").write_bytes(b"PK\x03\x04 half a checkpoint")
+    leftovers = len([p for p in run.glob(LEFTOVER) if p.name != PLANTED])
+    (run / PLANTED).write_bytes(b"PK\x03\x04 half a checkpoint")
     return {"checkpoint_step": state["step"] if state else None, "leftover_tmp": leftovers}
 
 
@@ -164,6 +166,7 @@ def kill_points(seed: int, n: int) -> list[int]:
 
 def test_sigkill_once_then_resume_is_bit_identical(tmp_path, recipe_file, reference):
     log = kill_and_resume(recipe_file, tmp_path / "run", kill_points(seed=7, n=1), random.Random(7))
+    print("kills:", log)
     assert len(log) == 1
     assert_same_training(tmp_path / "run", reference)
 
@@ -173,6 +176,7 @@ def test_sigkill_once_then_resume_is_bit_identical(tmp_path, recipe_file, refere
 def test_sigkill_at_random_moments_then_resume_is_bit_identical(tmp_path, recipe_file, reference, seed):
     """Three seeded trials of two kills each: six random kill points in all."""
     log = kill_and_resume(recipe_file, tmp_path / "run", kill_points(seed, n=2), random.Random(seed))
+    print("kills:", log)
     assert len(log) == 2
     assert_same_training(tmp_path / "run", reference)
 
@@ -221,3 +225,30 @@ def test_sigkill_while_writing_keeps_the_previous_checkpoint(tmp_path):
     assert len(leftovers) == 1 and leftovers[0].stat().st_size == 500
     state = load_checkpoint(path)
     assert state["step"] == 3 and torch.equal(state["model"]["w"], torch.arange(1000.0))
+
+
+def _resume_in_process(run: Path, recipe_file: Path) -> None:
+    from tightfit.recipe import load_recipe
+    from tightfit.train import train
+    train(load_recipe(recipe_file), run, resume=True, progress=False)
+
+
+@pytest.mark.xfail(strict=False, reason="train._trim_log parses every line of metrics.jsonl; it should drop a "
+                                        "partial last line (a SIGKILL during _log) and rewrite the file atomically")
+def test_resume_survives_a_metrics_line_cut_by_a_kill(tmp_path, recipe_file, reference):
+    run = Path(shutil.copytree(reference, tmp_path / "run"))
+    whole = (run / "metrics.jsonl").read_text()
+    with open(run / "metrics.jsonl", "a") as f:
+        f.write('{"step": 37, "epoch": 4.1, "lr"')  # what a kill in the middle of a write leaves
+    _resume_in_process(run, recipe_file)
+    assert (run / "metrics.jsonl").read_text() == whole
+
+
+@pytest.mark.xfail(strict=False, reason="train._open_run should call tightfit.checkpoint.remove_stale_temporaries"
+                                        "(ckpt) on resume, so temporaries of killed writes do not pile up")
+def test_resume_removes_temporaries_left_by_killed_writes(tmp_path, recipe_file, reference):
+    run = Path(shutil.copytree(reference, tmp_path / "run"))
+    (run / ".checkpoint.pt.k1ll3d.tmp").write_bytes(b"PK\x03\x04 half a checkpoint")
+    _resume_in_process(run, recipe_file)
+    assert list(run.glob(LEFTOVER)) == []
+    assert load_checkpoint(run / "checkpoint.pt")["complete"]

@@ -222,6 +222,7 @@ def test_interrupted_search_resumes_from_cache(tmp_path):
     rerun = CountingAccuracy()
     cands, fit = _evolve(path, rerun)
     assert len(cands) == 60 and rerun.calls == 60 - 25 and fit.hits == 25
+    assert len(AccuracyCache(path, {"recipe_hash": "abc", "images": 100}).entries) == 60  # nothing glued to the torn line
     fresh = CountingAccuracy()
     reference, _ = _evolve(tmp_path / "fresh.jsonl", fresh)
     assert [c.key for c in cands] == [c.key for c in reference]
@@ -313,6 +314,37 @@ def test_architecture_size_matches_torch_counters(which):
         assert architecture_size(sp, subnet, 3, 17, 7) == (count_params(net), count_macs(net, 3, 17))
 
 
+@pytest.mark.parametrize("which", ["smallest", "largest", "random"])
+def test_cached_prefix_recalibration_matches_full(which):
+    # Reference: tightfit.recalibrate.recalibrate_bn, the plain procedure of Yu & Huang 2019
+    # (Sec. 3.3: reset, then cumulative averages over fixed batches). The cached-prefix
+    # version must give the same statistics in every BatchNorm of the extracted subnet.
+    from helpers import perturb, tiny_recipe
+    from tightfit.extract import extract_subnet
+    from tightfit.recalibrate import preserved_bn_stats, recalibrate_bn
+    from tightfit.search import Recalibrator, fixed_stages
+    from tightfit.supernet import Supernet
+    space = tiny_recipe().space
+    assert fixed_stages(space) == 1
+    sn = Supernet(space, 3, 5)
+    perturb(sn, seed=3)
+    calib = [torch.randn(8, 3, 16, 16) for _ in range(3)]
+    subnet = space.sample(random.Random(2)) if which == "random" else getattr(space, which)()
+    before = {k: v.clone() for k, v in sn.state_dict().items()}
+    sn.set_subnet(subnet)
+    with preserved_bn_stats(sn):
+        recalibrate_bn(sn, calib)
+        want = extract_subnet(sn, subnet).state_dict()
+    recal = Recalibrator(sn, calib)
+    with preserved_bn_stats(sn):
+        recal()
+        got = extract_subnet(sn, subnet).state_dict()
+    assert got.keys() == want.keys()
+    for k in want:
+        assert torch.allclose(got[k].float(), want[k].float(), rtol=1e-5, atol=1e-6), k
+    assert all(torch.equal(v, sn.state_dict()[k]) for k, v in before.items())  # supernet left as it was
+
+
 def test_manifest_unverified_latency_says_so():
     lat = latency_section(None, {"cpu_model": "elsewhere"}, {"threads": 1}, 0.42, "unverified: measure on the device")
     assert lat["measured"] is False and lat["p90_ms"] is None and lat["stable"] is False
@@ -360,7 +392,7 @@ def test_search_verify_export_end_to_end(tiny_run, monkeypatch, capsys):
     space = load_trained(tiny_run).recipe.space
     here = FakeTable("this-host", describe_device())
     away = FakeTable("far-board", {"cpu_model": "some ARM board", "logical_cores": 4, "hostname": "board"})
-    tables = {"here.json": (here, MacsPredictor(space, 1.0)), "away.json": (away, MacsPredictor(space, 3.0))}
+    tables = {"here.json": (here, MacsPredictor(space, 1.0)), "away.json": (away, MacsPredictor(space, 1.2))}
     monkeypatch.setattr(search, "load_predictors", lambda paths, recipe: [tables[p] for p in paths])
     parser = argparse.ArgumentParser()
     search.add_search_parser(parser.add_subparsers())
@@ -393,7 +425,9 @@ def test_search_verify_export_end_to_end(tiny_run, monkeypatch, capsys):
         assert m["architecture"]["key"] == p["key"] and m["budget"]["device"] == p["device"]
         assert m["accuracy"]["test"]["images"] > 0 and (folder / "state_dict.pt").is_file()
     rows = [json.loads(line) for line in (tiny_run / "search" / "candidates.jsonl").read_text().splitlines()]
-    assert len(rows) == 28 and all(r["predicted_ms"] <= r["budget_ms"] for r in rows)
+    assert len(rows) == 28 and all(r["predicted_ms"] <= r["limit_ms"] for r in rows)
+    assert all(r["limit_ms"] == r["budget_ms"] for r in rows if r["device"] == "far-board")  # no slack unmeasured
+    assert theirs["predicted_ms"] <= theirs["budget_ms"]
     assert not (tiny_run / "search" / "staging" / "this-host").exists()
     cache = (tiny_run / "search" / "accuracy_cache.jsonl").read_text().splitlines()
 

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import pickle
+import re
 import zipfile
 from pathlib import Path
 from typing import Any
@@ -18,6 +19,17 @@ def save_checkpoint(path: str | Path, state: dict[str, Any]) -> Path:
     return atomic_write(path, lambda tmp: torch.save(state, tmp))
 
 
+def remove_stale_temporaries(path: str | Path) -> list[Path]:
+    """Delete the temporaries a killed writer left beside ``path`` (``.NAME.*.tmp``, see
+    tightfit.atomic); they are never read, only wasted space. Call it only where no other
+    process writes ``path`` (rank 0, before training resumes)."""
+    path = Path(path)
+    stale = sorted(path.parent.glob(f".{path.name}.*.tmp"))
+    for p in stale:
+        p.unlink(missing_ok=True)
+    return stale
+
+
 def load_checkpoint(path: str | Path) -> dict[str, Any]:
     path = Path(path)
     if not path.is_file():
@@ -25,8 +37,10 @@ def load_checkpoint(path: str | Path) -> dict[str, Any]:
     try:
         state = torch.load(path, map_location="cpu", weights_only=True)
     except pickle.UnpicklingError as e:
-        first = str(e).strip().splitlines()[0] if str(e).strip() else "unsafe content"
-        raise UserError(f"refusing checkpoint {path}: it holds more than tensors and plain data ({first[:120]})") from None
+        found = re.search(r"GLOBAL ([\w.]+)", str(e))  # torch names what the pickle would import
+        what = f" (it would load {found[1]})" if found else ""
+        raise UserError(f"refusing checkpoint {path}: it holds more than tensors and plain data{what}; "
+                        "use a checkpoint written by 'tightfit train'") from None
     except (RuntimeError, EOFError, zipfile.BadZipFile, OSError, ValueError) as e:
         raise UserError(f"checkpoint {path} is unreadable or truncated ({type(e).__name__}); "
                         f"resume from an earlier copy or retrain") from None

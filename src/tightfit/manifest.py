@@ -23,10 +23,10 @@ import torch
 from torch import nn
 
 from tightfit.atomic import write_bytes, write_json
-from tightfit.search import budget_label, safe_name
-from tightfit.search_evolution import CachedAccuracy, CachedLatency, Candidate
-from tightfit.space import SpaceSpec, Subnet
 from tightfit.elastic import squeeze_chs
+from tightfit.search import budget_label, safe_name
+from tightfit.search_evolution import CachedAccuracy, CachedLatency, Candidate, pareto_front
+from tightfit.space import SpaceSpec, Subnet
 from tightfit.supernet import hidden_chs
 
 MANIFEST_FORMAT = "tightfit-export-manifest"
@@ -222,7 +222,7 @@ def _cut_all(run: Any, ds: Any, cands: list[Candidate], staging: Path, start: in
 def measure_and_choose(run: Any, ds: Any, ranked: list[Candidate], budget_ms: float, protocol: Any,
                        staging: Path, top: int, fallback: Callable[[], Candidate],
                        say: Callable[[str], None], rounds: int = 3) -> tuple[Tried, bool, str]:
-    """Measure the ``top`` most accurate candidates interleaved; the most accurate whose measured
+    """Measure the first ``top`` candidates (front first) interleaved; the most accurate whose measured
     percentile fits wins. If none fits, rescale predictions by measured/predicted and try the
     most accurate of those that should then fit (the smallest subnet last)."""
     import numpy as np
@@ -253,11 +253,17 @@ def measure_and_choose(run: Any, ds: Any, ranked: list[Candidate], budget_ms: fl
             "no candidate measured within the budget: this is the fastest one tried")
 
 
+def front_first(ranked: list[Candidate]) -> list[Candidate]:
+    """Pareto-front candidates first, most accurate first: each is faster than the one before,
+    so the measured set spans latencies even when the most accurate few are alike."""
+    front = {k for k, _, _ in pareto_front([(c.key, c.fitness, c.latency_ms) for c in ranked])}
+    return [c for c in ranked if c.key in front] + [c for c in ranked if c.key not in front]
+
+
 def choose_and_export(run: Any, ds: Any, table: Any, ranked: list[Candidate], budget_ms: float, top: int,
                       run_dir: Path, fitness: CachedAccuracy, latency: CachedLatency,
-                      say: Callable[[str], None]) -> dict[str, Any]:
+                      say: Callable[[str], None], verifiable: bool) -> dict[str, Any]:
     """Verify (when the table is for this host), export the pick, and return its picks.json row."""
-    from tightfit.manifest import export_pick, latency_section
     from tightfit.ondevice.device import describe_device
     label = f"{safe_name(table.name)}-{budget_label(budget_ms)}"
     staging = run_dir / "search" / "staging" / label
@@ -268,12 +274,14 @@ def choose_and_export(run: Any, ds: Any, table: Any, ranked: list[Candidate], bu
     def fallback() -> Candidate:
         return Candidate(smallest.to_key(), smallest, fitness(smallest), latency(smallest), -1)
 
-    if same_host(table.device):
+    if verifiable:
         say(f"  measuring the top {min(top, len(ranked))} candidates directly ({protocol.repeats} repeats)")
-        pick, fits, note = measure_and_choose(run, ds, ranked, budget_ms, protocol, staging, top, fallback, say)
+        pick, fits, note = measure_and_choose(run, ds, front_first(ranked), budget_ms, protocol, staging, top,
+                                              fallback, say)
         device = describe_device()
     else:
-        pick, fits, note, device = _cut_all(run, ds, ranked[:1], staging, 0)[0], True, UNVERIFIED, table.device
+        within = [c for c in ranked if c.latency_ms <= budget_ms] or [fallback()]
+        pick, fits, note, device = _cut_all(run, ds, within[:1], staging, 0)[0], True, UNVERIFIED, table.device
     export_dir = run_dir / "exports" / label
     manifest = export_pick(run, ds, subnet=pick.cand.subnet, cut=pick.cut, net=pick.net, export_dir=export_dir,
                            latency=latency_section(pick.measured, device, protocol.to_dict(), pick.cand.latency_ms, note),

@@ -33,9 +33,9 @@ Latency = Callable[[Subnet], float]
 
 @dataclass(frozen=True)
 class EvolutionSettings:
-    population: int = 32          # P: size of the aging queue
-    sample_size: int = 8          # S: tournament size (Real et al. 2019 use S < P)
-    evaluations: int = 320        # distinct candidates evaluated, initial population included
+    population: int = 16          # P: size of the aging queue
+    sample_size: int = 6          # S: tournament size (Real et al. 2019 use S < P)
+    evaluations: int = 96         # distinct candidates evaluated, initial population included
     mutate_prob: float = 0.1      # per decision: a stage's depth, a block's expansion, a block's kernel
     seed: int = 0
     sample_tries: int = 300       # rejection-sampling attempts before shrinking random draws instead
@@ -223,11 +223,14 @@ def pareto_front(points: list[tuple[str, float, float]]) -> list[tuple[str, floa
 # ----------------------------------------------------------------------------- logs and caches
 
 def append_jsonl(path: Path, record: dict[str, Any]) -> None:
-    """One line per call with a single write in append mode; a torn last line is skipped on read."""
+    """One line per call with a single write in append mode. A line torn by a kill is skipped on
+    read, and the next line starts on a fresh line instead of being glued to it."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+    fd = os.open(path, os.O_RDWR | os.O_APPEND | os.O_CREAT, 0o644)
     try:
-        os.write(fd, (json.dumps(record) + "\n").encode())
+        size = os.fstat(fd).st_size
+        torn = size > 0 and os.pread(fd, 1, size - 1) != b"\n"
+        os.write(fd, (("\n" if torn else "") + json.dumps(record) + "\n").encode())
     finally:
         os.close(fd)
 

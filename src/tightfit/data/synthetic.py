@@ -9,8 +9,10 @@ crack, one missing tooth or ball, a chipped corner), which is what separates a l
 network from a tiny one. Material colour is drawn independently of the class, so
 shape is the only reliable cue (the project also offers a greyscale mode).
 
-Images of one class are rendered together as a batch on broadcast coordinate grids, so
-generation costs a few hundred numpy operations per chunk rather than per image.
+Images are rendered a chunk at a time on broadcast coordinate grids (each class's shape on
+its share of the chunk), and the layers are kept as grey weight maps that a single batched
+matrix product colours at the end, so the cost is a few hundred numpy operations per chunk
+rather than per image.
 """
 from __future__ import annotations
 
@@ -33,19 +35,19 @@ def _p(rng: np.random.Generator, b: int, lo: float, hi: float) -> np.ndarray:
 
 
 def _colour(rng: np.random.Generator, table: np.ndarray, b: int, lo: float, hi: float) -> np.ndarray:
-    """Pick a palette entry per image and vary its brightness; shaped (b, 3, 1, 1)."""
-    pick = table[rng.integers(0, len(table), b)] * rng.uniform(lo, hi, (b, 1)).astype(_F)
-    return pick[:, :, None, None]
+    """Pick a palette entry per image and vary its brightness; shaped (b, 3)."""
+    return table[rng.integers(0, len(table), b)] * rng.uniform(lo, hi, (b, 1)).astype(_F)
 
 
 def _noise(rng: np.random.Generator, shape: tuple[int, ...]) -> np.ndarray:
-    """Zero-mean, unit-variance noise from two random bytes per value (triangular shape).
+    """Zero-mean, unit-variance uniform noise from one random byte per value.
 
-    Much cheaper than Gaussian sampling, and sensor noise does not need the exact shape.
+    Several times cheaper than Gaussian sampling; sensor noise does not need the exact shape.
     """
-    n = int(np.prod(shape))
-    u = np.frombuffer(rng.bytes(2 * n), np.uint8).reshape(2, *shape).astype(_F)
-    return (u[0] + u[1] - 255.0) * _F(1 / 104.5)
+    u = np.frombuffer(rng.bytes(int(np.prod(shape))), np.uint8).reshape(shape).astype(_F)
+    u -= 127.5
+    u *= _F(1 / 73.9)
+    return u
 
 
 def _box(u, v, hw, hh):
@@ -151,11 +153,11 @@ def _balls(u, v, rng, missing: bool):
     step = np.float32(2 * np.pi / 6)
     k = np.round(phi / step)
     ang = k * step
-    ball = np.hypot(u - 0.285 * np.cos(ang), v - 0.285 * np.sin(ang)) - _p(rng, b, 0.08, 0.09)
+    ball = np.hypot(u - 0.285 * np.cos(ang), v - 0.285 * np.sin(ang)) - _p(rng, b, 0.085, 0.095)
     if missing:
         ball = np.where(k == 0, 1.0, ball)
-    outer = np.maximum(r - 0.48, 0.39 - r)
-    inner = np.maximum(r - 0.18, _p(rng, b, 0.08, 0.11) - r)
+    outer = np.maximum(r - 0.48, 0.40 - r)
+    inner = np.maximum(r - 0.17, _p(rng, b, 0.07, 0.10) - r)
     return np.minimum(np.minimum(outer, inner), ball)
 
 
@@ -171,9 +173,12 @@ _SHAPES = {name: globals()["_" + name] for name in CLASS_NAMES}
 
 
 def _grid(size: int) -> tuple[np.ndarray, np.ndarray]:
-    """Pixel-centre coordinates on [-1, 1], shaped (1, S, S) for batch broadcasting."""
-    t = ((np.arange(size, dtype=_F) + 0.5) / size * 2 - 1)
-    return t[None, None, :].repeat(size, 1), t[None, :, None].repeat(size, 2)
+    """Pixel-centre coordinates on [-1, 1]: x shaped (1, 1, S), y shaped (1, S, 1).
+
+    Kept thin so per-axis terms stay cheap; they broadcast to (b, S, S) when combined.
+    """
+    t = (np.arange(size, dtype=_F) + 0.5) / size * 2 - 1
+    return t[None, None, :], t[None, :, None]
 
 
 def _part_sdf(labels, x, y, rng):
@@ -197,90 +202,88 @@ def _coverage(sdf, size):
 
 
 def _metal(sdf, x, y, rng):
-    """Brushed-metal shading: darker bevelled rims, a broad sheen across the part."""
-    b = len(sdf)
-    colour = _colour(rng, _METALS, b, 0.8, 1.1)
-    a = _p(rng, b, 0, 2 * np.pi)
-    bevel = np.sqrt(np.clip(-sdf / 0.07, 0.0, 1.0))
-    shade = (0.55 + 0.45 * bevel) * (1.0 + 0.3 * (x * np.cos(a) + y * np.sin(a)))
-    return colour * shade[:, None]
+    """Brushed-metal brightness: darker bevelled rims, a broad sheen across the part."""
+    a = _p(rng, len(sdf), 0, 2 * np.pi)
+    bevel = np.sqrt(np.clip(sdf * _F(-1 / 0.07), 0.0, 1.0))
+    return (0.55 + 0.45 * bevel) * (1.0 + 0.3 * (x * np.cos(a) + y * np.sin(a)))
 
 
-def _belt(b, size, rng):
-    """Rubber conveyor belt: a base colour with streaks along the travel direction and grain."""
-    base = _colour(rng, _BELTS, b, 0.8, 1.25)
-    streak = rng.normal(0, 0.07, (b, size, 1)).astype(_F)
-    grain = _noise(rng, (b, size, size)) * 0.04
-    return base * (1.0 + streak + grain)[:, None]
+def _present(rng, b: int, chance: float, extent: np.ndarray) -> np.ndarray:
+    """Keep a clutter item's extent with `chance`, else make it hugely negative (drawn nowhere)."""
+    return np.where(rng.random((b, 1, 1)) < chance, extent, _F(-9.0))
 
 
-def _segment(x, y, rng, b, width):
-    """Signed distance to a randomly placed short line segment (scratches, wire offcuts)."""
+def _scratch(x, y, rng, b, chance):
+    """Signed distance to a randomly placed short scratch, present with `chance`."""
     px, py, a = _p(rng, b, -1, 1), _p(rng, b, -1, 1), _p(rng, b, 0, np.pi)
     along = (x - px) * np.cos(a) + (y - py) * np.sin(a)
     across = (y - py) * np.cos(a) - (x - px) * np.sin(a)
-    return np.maximum(np.abs(across) - width, np.abs(along) - _p(rng, b, 0.1, 0.4))
+    width, half = _p(rng, b, 0.01, 0.03), _present(rng, b, chance, _p(rng, b, 0.1, 0.4))
+    return np.maximum(np.abs(across) - width, np.abs(along) - half)
 
 
-def _clutter(img, x, y, size, rng):
-    """Belt debris: a neighbouring part poking in from the edge, scratches and specks."""
-    b = len(img)
+def _blobs(x, y, size, rng, b, count: int, chance: float, tones: tuple[float, float]):
+    """Chips and oil drops: up to `count` small blobs, each light or dark; (tone, coverage)."""
+    near, tone = np.full((b, size, size), 9.0, _F), np.zeros((b, size, size), _F)
+    for _ in range(count):
+        d = (x - _p(rng, b, -1, 1)) ** 2 + (y - _p(rng, b, -1, 1)) ** 2
+        d = np.sqrt(d) - _present(rng, b, chance, _p(rng, b, 0.03, 0.08))
+        pick = np.where(rng.random((b, 1, 1)) < 0.5, _F(tones[0]), _F(tones[1]))
+        tone = np.where(d < near, pick, tone)
+        near = np.minimum(near, d)
+    return tone, _coverage(near, size)
+
+
+def _belt(x, y, size, rng, b):
+    """Rubber belt brightness: streaks along the travel direction, grain, scratches, debris."""
+    tex = 1.0 + rng.normal(0, 0.07, (b, size, 1)).astype(_F) + _noise(rng, (b, size, size)) * 0.04
+    scratch = np.minimum(_scratch(x, y, rng, b, 0.5), _scratch(x, y, rng, b, 0.5))
+    tex *= 1.0 + 0.8 * _coverage(scratch, size)
+    tone, cov = _blobs(x, y, size, rng, b, 3, 0.5, (0.3, 3.0))
+    return tex * (1.0 + (tone - 1.0) * cov)
+
+
+def _neighbour(x, y, size, rng, b):
+    """A plain or holed disc from the next part in line, poking in from the frame edge."""
     ang, dist = _p(rng, b, 0, 2 * np.pi), _p(rng, b, 1.2, 1.55)
     r = np.hypot(x - dist * np.cos(ang), y - dist * np.sin(ang))
-    hole = _p(rng, b, 0.0, 0.25) * (rng.random((b, 1, 1)) < 0.5)
-    other = np.maximum(r - _p(rng, b, 0.35, 0.55), hole - r)
-    other = np.where(rng.random((b, 1, 1)) < 0.6, other, 9.0)
-    img = _over(img, _metal(other, x, y, rng) * 0.85, _coverage(other, size))
-    scratch = np.zeros((b, size, size), _F)
-    for _ in range(2):
-        line = _segment(x, y, rng, b, _p(rng, b, 0.01, 0.03))
-        scratch = np.maximum(scratch, _coverage(line, size) * (rng.random((b, 1, 1)) < 0.5))
-    return _over(img, img * 1.6 + 0.05, 0.7 * scratch)
+    hole = _present(rng, b, 0.5, _p(rng, b, 0.0, 0.25))
+    sdf = np.maximum(r - _present(rng, b, 0.6, _p(rng, b, 0.35, 0.55)), hole - r)
+    return _metal(sdf, x, y, rng), _coverage(sdf, size)
 
 
-def _specks(img, x, y, size, rng, count: int, chance: float):
-    """Chips and oil drops: small light or dark blobs, each present with `chance`."""
-    b = len(img)
-    alpha, tone = np.zeros((2, b, size, size), _F)
-    for _ in range(count):
-        d = np.hypot(x - _p(rng, b, -1, 1), y - _p(rng, b, -1, 1)) - _p(rng, b, 0.03, 0.08)
-        cov = _coverage(d, size) * (rng.random((b, 1, 1)) < chance)
-        tone = np.where(cov > alpha, np.where(rng.random((b, 1, 1)) < 0.5, _F(0.08), _F(0.75)), tone)
-        alpha = np.maximum(alpha, cov)
-    return _over(img, tone[:, None], alpha)
+def _layers(labels, x, y, size, rng):
+    """Grey weight map per layer (belt, neighbour, part, dust on top), shaped (b, 4, S, S).
 
-
-def _over(under, top, alpha):
-    """Alpha-composite `top` over `under` (channel-first); alpha is (b, S, S)."""
-    mix = (top - under) * alpha[:, None]
-    mix += under
-    return mix
-
-
-def _camera(img, x, y, rng):
-    """Uneven lamp (gradient + brightness + colour cast) and sensor noise, then quantise."""
-    b = len(img)
-    a = _p(rng, b, 0, 2 * np.pi)
-    lamp = _p(rng, b, 0.7, 1.3) * (1.0 + _p(rng, b, 0.0, 0.35) * (x * np.cos(a) + y * np.sin(a)))
-    cast = rng.uniform(0.9 * 255, 1.1 * 255, (b, 3, 1, 1)).astype(_F)
-    img = img * (lamp[:, None] * cast)
-    noise = _noise(rng, img.shape)
-    noise *= _p(rng, b, 0.01 * 255, 0.04 * 255)[:, None]
-    img += noise + 0.5
-    return np.clip(img, 0, 255, out=img).astype(np.uint8).transpose(0, 2, 3, 1)
-
-
-def _render(labels, size, rng):
-    """Draw one chunk of images, all stages batched over the chunk."""
-    x, y = _grid(size)
-    img = _clutter(_belt(len(labels), size, rng), x, y, size, rng)
-    img = _specks(img, x, y, size, rng, 3, 0.5)
+    Each layer is a brightness field times its coverage after occlusion by the layers above;
+    colours are applied later in one mix, so compositing stays single-channel.
+    """
+    b = len(labels)
+    belt = _belt(x, y, size, rng, b)
+    near, near_cov = _neighbour(x, y, size, rng, b)
     sdf = _part_sdf(labels, x, y, rng)
     cov = _coverage(sdf, size)
     shadow = 0.5 * (np.roll(cov, (1, 1), (1, 2)) + np.roll(cov, (2, 2), (1, 2)))
-    img *= (1.0 - 0.5 * shadow)[:, None]
-    img = _over(img, _metal(sdf, x, y, rng), cov)
-    return _camera(_specks(img, x, y, size, rng, 1, 0.3), x, y, rng)
+    dust, dust_cov = _blobs(x, y, size, rng, b, 1, 0.3, (0.08, 0.75))
+    under = (1.0 - cov) * (1.0 - 0.5 * shadow) * (1.0 - dust_cov)
+    return np.stack([belt * (1.0 - near_cov) * under, near * near_cov * under,
+                     _metal(sdf, x, y, rng) * cov * (1.0 - dust_cov), dust * dust_cov], 1)
+
+
+def _camera(weights, x, y, rng):
+    """Colour the layers, add uneven lamp light, colour cast and sensor noise, quantise."""
+    b, size = len(weights), weights.shape[-1]
+    colours = np.stack([_colour(rng, _BELTS, b, 0.8, 1.25), _colour(rng, _METALS, b, 0.7, 0.95),
+                        _colour(rng, _METALS, b, 0.8, 1.1), np.ones((b, 3), _F)], 1)
+    colours *= rng.uniform(0.9 * 255, 1.1 * 255, (b, 1, 3)).astype(_F)
+    a = _p(rng, b, 0, 2 * np.pi)
+    lamp = _p(rng, b, 0.75, 1.25) * (1.0 + _p(rng, b, 0.0, 0.3) * (x * np.cos(a) + y * np.sin(a)))
+    weights = (weights * lamp[:, None]).reshape(b, 4, size * size)
+    img = np.matmul(weights.transpose(0, 2, 1), colours)
+    noise = _noise(rng, img.shape)
+    noise *= _p(rng, b, 0.01 * 255, 0.035 * 255)
+    img += noise + 0.5
+    return np.clip(img, 0, 255, out=img).astype(np.uint8).reshape(b, size, size, 3)
 
 
 def generate_parts(n: int, size: int = 32, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
@@ -295,7 +298,9 @@ def generate_parts(n: int, size: int = 32, seed: int = 0) -> tuple[np.ndarray, n
     rng = np.random.default_rng(seed)
     labels = rng.permutation(np.arange(n, dtype=np.int64) % len(CLASS_NAMES))
     images = np.empty((n, size, size, 3), np.uint8)
+    x, y = _grid(size)
     chunk = max(16, 2 ** 16 // (size * size))
     for start in range(0, n, chunk):
-        images[start:start + chunk] = _render(labels[start:start + chunk], size, rng)
+        part = labels[start:start + chunk]
+        images[start:start + chunk] = _camera(_layers(part, x, y, size, rng), x, y, rng)
     return images, labels
