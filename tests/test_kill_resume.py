@@ -233,8 +233,6 @@ def _resume_in_process(run: Path, recipe_file: Path) -> None:
     train(load_recipe(recipe_file), run, resume=True, progress=False)
 
 
-@pytest.mark.xfail(strict=False, reason="train._trim_log parses every line of metrics.jsonl; it should drop a "
-                                        "partial last line (a SIGKILL during _log) and rewrite the file atomically")
 def test_resume_survives_a_metrics_line_cut_by_a_kill(tmp_path, recipe_file, reference):
     run = Path(shutil.copytree(reference, tmp_path / "run"))
     whole = (run / "metrics.jsonl").read_text()
@@ -244,8 +242,6 @@ def test_resume_survives_a_metrics_line_cut_by_a_kill(tmp_path, recipe_file, ref
     assert (run / "metrics.jsonl").read_text() == whole
 
 
-@pytest.mark.xfail(strict=False, reason="train._open_run should call tightfit.checkpoint.remove_stale_temporaries"
-                                        "(ckpt) on resume, so temporaries of killed writes do not pile up")
 def test_resume_removes_temporaries_left_by_killed_writes(tmp_path, recipe_file, reference):
     run = Path(shutil.copytree(reference, tmp_path / "run"))
     (run / ".checkpoint.pt.k1ll3d.tmp").write_bytes(b"PK\x03\x04 half a checkpoint")

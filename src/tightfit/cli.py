@@ -105,10 +105,12 @@ def build_parser() -> argparse.ArgumentParser:
 
     from tightfit.latency.cli_commands import add_latency_check_parser, add_probe_parser, add_profile_parser
     from tightfit.report import add_report_parser
+    from tightfit.search import add_search_parser
     from tightfit.verify import add_verify_parser
     add_probe_parser(sub)
     add_profile_parser(sub)
     add_latency_check_parser(sub)
+    add_search_parser(sub)
     add_verify_parser(sub)
     add_report_parser(sub)
     return p

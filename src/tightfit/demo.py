@@ -1,4 +1,8 @@
-"""`tightfit demo`: the whole foundation on built-in data, in a few minutes on 2 cores."""
+"""`tightfit demo`: the user's whole day on the built-in dataset, in a few minutes on 2 cores.
+
+train → cut three reference subnets → profile this machine → search two budgets →
+export with manifests → verify (QA re-measurement) → report.
+"""
 from __future__ import annotations
 
 import time
@@ -20,6 +24,16 @@ def default_recipe() -> Path:
     raise UserError("recipes/demo.toml not found: run from the repository root or pass --recipe")
 
 
+def _budgets_between(predictor, space) -> list[str]:
+    """Two budgets inside the space's predicted latency range (35 % and 70 % of the way up)."""
+    lo, hi = predictor.predict_ms(space.smallest()), predictor.predict_ms(space.largest())
+    return [f"{lo + f * (hi - lo):.3g}ms" for f in (0.35, 0.7)]
+
+
+def _stage(title: str, t0: float) -> None:
+    print(f"\n== {title}  (t = {time.perf_counter() - t0:.0f} s)")
+
+
 def run_demo(run_dir: str | Path | None = None, recipe_path: str | Path | None = None) -> Path:
     t0 = time.perf_counter()
     recipe_path = Path(recipe_path) if recipe_path else default_recipe()
@@ -30,16 +44,41 @@ def run_demo(run_dir: str | Path | None = None, recipe_path: str | Path | None =
     print(f"data: {len(ds.train_y)} train / {len(ds.val_y)} validation / {len(ds.test_y)} test images, "
           f"{ds.num_classes} classes ({', '.join(ds.class_names)}); generated in {time.perf_counter() - t0:.1f} s")
     print(f"search space: {recipe.space.size():,} subnets")
+
+    _stage("1. train the supernet (sandwich rule + in-place distillation)", t0)
     train(recipe, run_dir, recipe_path=recipe_path, ds=ds)
     run = load_trained(run_dir)
-    results = []
-    for name in ("smallest", "middle", "largest"):
-        subnet = getattr(recipe.space, name)()
-        results.append(cut_one(run, ds, name, subnet, run_dir / "exports")[0])
+
+    _stage("2. cut smallest / middle / largest (BN recalibration, static net, ONNX)", t0)
+    results = [cut_one(run, ds, name, getattr(recipe.space, name)(), run_dir / "exports" / "reference")[0]
+               for name in ("smallest", "middle", "largest")]
     measure_latency(results)
-    print()
     print(format_table(results))
-    print(f"\nvalidation accuracy after BatchNorm recalibration; latency: ONNX Runtime, batch 1, 1 thread, this machine.")
-    print(f"outputs: {run_dir.resolve()}  (checkpoint.pt, metrics.jsonl, exports/*/model.onnx)")
+
+    _stage("3. profile this machine (probe bundle + on-device runner)", t0)
+    from tightfit.latency.predict import load_predictor
+    from tightfit.latency.table import profile_host
+    table = profile_host(run_dir, name="this-host", progress=False)
+    predictor = load_predictor(recipe, str(table), target="budget_stat_ms")
+    budgets = _budgets_between(predictor, recipe.space)
+    print(f"latency table: {table}  (budgets chosen inside the space's range: {', '.join(budgets)})")
+
+    _stage("4. search each budget, verify the top candidates by direct measurement, export", t0)
+    from tightfit.search import SearchSettings, format_picks, run_search
+    picks = run_search(run_dir, [str(table)], budgets, SearchSettings(population=12, generations=3, top=3))
+    print(format_picks(picks))
+
+    _stage("5. QA: re-measure every export against its manifest (tightfit verify)", t0)
+    from tightfit import verify
+    exports = [p["export_dir"] for p in picks]
+    code = verify.main(exports + ["--out", str(run_dir / "verdict.json")])
+
+    _stage("6. report", t0)
+    from tightfit.report import write_report
+    page = write_report(run_dir)
+    print(f"\nsummary: {len(picks)} picks exported under {run_dir / 'exports'}; "
+          f"verify {'passed' if code == 0 else 'found a miss' if code == 1 else 'failed'}; "
+          f"report {page.resolve()}")
+    print("validation accuracy after BatchNorm recalibration; latency: ONNX Runtime, batch 1, 1 thread, this machine.")
     print(f"demo finished in {time.perf_counter() - t0:.0f} s")
     return run_dir

@@ -10,7 +10,6 @@ from __future__ import annotations
 import json
 import math
 import random
-import shutil
 import signal
 import time
 from dataclasses import dataclass
@@ -22,14 +21,14 @@ import torch.nn.functional as F
 from torch import nn
 from tqdm import tqdm
 
-from tightfit.checkpoint import save_checkpoint
+from tightfit.checkpoint import load_checkpoint, remove_stale_temporaries, save_checkpoint
 from tightfit.distributed import (GradientSync, Ranks, barrier, broadcast_weights, decided_on_main, joined,
                                   local_rows, step_seed)
 from tightfit.data.dataset import Dataset, calibration_batches, eval_batches, load_dataset, steps_per_epoch, train_batches
 from tightfit.errors import Interrupted, UserError
+from tightfit.atomic import write_bytes, write_text
 from tightfit.recalibrate import subnet_accuracy
 from tightfit.recipe import Recipe, TrainConfig
-from tightfit.checkpoint import load_checkpoint
 from tightfit.rundir import checkpoint_path
 from tightfit.space import SpaceSpec, Subnet
 from tightfit.supernet import Supernet
@@ -148,10 +147,18 @@ def _log(path: Path, record: dict) -> None:
 
 
 def _trim_log(path: Path, step: int) -> None:
-    """On resume, drop records written after the checkpoint we resume from."""
-    if path.exists():
-        keep = [ln for ln in path.read_text().splitlines() if ln.strip() and json.loads(ln).get("step", 0) <= step]
-        path.write_text("".join(ln + "\n" for ln in keep))
+    """On resume, drop records written after the checkpoint we resume from, and a last line
+    that a kill cut in half."""
+    if not path.exists():
+        return
+    keep = []
+    for line in path.read_text().splitlines():
+        try:
+            if json.loads(line).get("step", 0) <= step:
+                keep.append(line)
+        except (json.JSONDecodeError, AttributeError):
+            continue
+    write_text(path, "".join(ln + "\n" for ln in keep))
 
 
 def _epoch_eval(model: Supernet, recipe: Recipe, ds: Dataset, epoch: int, step: int) -> dict:
@@ -190,7 +197,7 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, recipe_p
             start = int(state["step"])
         broadcast_weights(model, ranks)  # every rank starts from rank 0's weights
         if ranks.is_main and recipe_path is not None and not (run_dir / "recipe.toml").exists():
-            shutil.copyfile(recipe_path, run_dir / "recipe.toml")
+            write_bytes(run_dir / "recipe.toml", Path(recipe_path).read_bytes())
         return _loop(model, opt, recipe, ds, run_dir, start, progress, dev, ranks, stop_at_step)
 
 
@@ -204,9 +211,10 @@ def _open_run(run_dir: Path, recipe: Recipe, resume: bool) -> dict | None:
         (run_dir / ".write-test").touch()
         (run_dir / ".write-test").unlink()
     except OSError as e:
-        raise UserError(f"cannot write to run directory {run_dir}: {e.strerror}") from None
+        raise UserError(f"cannot write to run directory {run_dir}: {e.strerror}; choose another --run") from None
     state = None
     if resume and ckpt.exists():
+        remove_stale_temporaries(ckpt)  # left by a kill in the middle of a save; never trusted
         state = load_checkpoint(ckpt)
         if state.get("recipe_hash") != recipe.hash():
             raise UserError(f"checkpoint in {run_dir} was trained from a different recipe; use that recipe or a new --run")
@@ -218,7 +226,7 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
     cfg = recipe.train
     spe = steps_per_epoch(ds, cfg.batch_size)
     if spe == 0:
-        raise UserError(f"train.batch_size = {cfg.batch_size} is larger than the training split ({len(ds.train_y)} images)")
+        raise UserError(f"train.batch_size = {cfg.batch_size} is larger than the training split ({len(ds.train_y)} images): lower train.batch_size or add data")
     total = max(1, int(round(cfg.epochs * spe)))
     warmup = int(cfg.warmup_epochs * spe)
     rows = local_rows(cfg.batch_size, ranks)
@@ -268,7 +276,7 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
                     bar.close()
                     raise Interrupted(130 if stopping == signal.SIGINT else 143,
                                       f"interrupted at step {step}; checkpoint written. Resume with: "
-                                      f"tightfit train RECIPE --run {run_dir} --resume")
+                                      f"tightfit train {run_dir / 'recipe.toml'} --run {run_dir} --resume")
                 if step >= total or end_of_epoch:
                     break
     bar.close()
