@@ -314,11 +314,12 @@ def test_architecture_size_matches_torch_counters(which):
         assert architecture_size(sp, subnet, 3, 17, 7) == (count_params(net), count_macs(net, 3, 17))
 
 
-@pytest.mark.parametrize("which", ["smallest", "largest", "random"])
-def test_cached_prefix_recalibration_matches_full(which):
+@pytest.mark.parametrize("max_bytes", [1 << 30, 300_000, 0])
+def test_cached_prefix_recalibration_matches_full(max_bytes):
     # Reference: tightfit.recalibrate.recalibrate_bn, the plain procedure of Yu & Huang 2019
-    # (Sec. 3.3: reset, then cumulative averages over fixed batches). The cached-prefix
-    # version must give the same statistics in every BatchNorm of the extracted subnet.
+    # (Sec. 3.3: reset, then cumulative averages over fixed batches). The cached version must
+    # give the same statistics in every BatchNorm of the extracted subnet, whether the shared
+    # prefix and first-block outputs are cached (big cap), only some fit (small) or none (0).
     from helpers import perturb, tiny_recipe
     from tightfit.extract import extract_subnet
     from tightfit.recalibrate import preserved_bn_stats, recalibrate_bn
@@ -326,23 +327,28 @@ def test_cached_prefix_recalibration_matches_full(which):
     from tightfit.supernet import Supernet
     space = tiny_recipe().space
     assert fixed_stages(space) == 1
-    sn = Supernet(space, 3, 5)
+    sn = Supernet(space, 3, 5).eval()
     perturb(sn, seed=3)
     calib = [torch.randn(8, 3, 16, 16) for _ in range(3)]
-    subnet = space.sample(random.Random(2)) if which == "random" else getattr(space, which)()
+    rng = random.Random(2)
+    subnets = [space.smallest(), space.largest()] + [space.sample(rng) for _ in range(4)] + [space.smallest()]
     before = {k: v.clone() for k, v in sn.state_dict().items()}
-    sn.set_subnet(subnet)
-    with preserved_bn_stats(sn):
-        recalibrate_bn(sn, calib)
-        want = extract_subnet(sn, subnet).state_dict()
-    recal = Recalibrator(sn, calib)
-    with preserved_bn_stats(sn):
-        recal()
-        got = extract_subnet(sn, subnet).state_dict()
-    assert got.keys() == want.keys()
-    for k in want:
-        assert torch.allclose(got[k].float(), want[k].float(), rtol=1e-5, atol=1e-6), k
-    assert all(torch.equal(v, sn.state_dict()[k]) for k, v in before.items())  # supernet left as it was
+    recal = Recalibrator(sn, calib, max_bytes=max_bytes)
+    assert (recal.inputs is None) == (max_bytes == 0) and not sn.training
+    for subnet in subnets:
+        sn.set_subnet(subnet)
+        with preserved_bn_stats(sn):
+            recalibrate_bn(sn, calib)
+            want = extract_subnet(sn, subnet).state_dict()
+        with preserved_bn_stats(sn):
+            recal()
+            got = extract_subnet(sn, subnet).state_dict()
+        assert got.keys() == want.keys()
+        for k in want:
+            assert torch.allclose(got[k].float(), want[k].float(), rtol=1e-5, atol=1e-6), (subnet.to_key(), k)
+        assert all(torch.equal(v, sn.state_dict()[k]) for k, v in before.items())  # supernet left as it was
+    if max_bytes > 1 << 20:
+        assert len([v for v in recal.variants.values() if v]) > 1  # first-block outputs were reused
 
 
 def test_manifest_unverified_latency_says_so():

@@ -175,44 +175,94 @@ def fixed_stages(space: SpaceSpec) -> int:
     return n
 
 
-class Recalibrator:
-    """BN recalibration (tightfit.recalibrate.recalibrate_bn) that runs the layers every subnet
-    shares (stem and fixed stages) once: in training mode their outputs and statistics do not
-    depend on the rest of the network, so they are cached and only the rest is re-run."""
+def _cumulative(bns: list[Any]) -> list[Optional[float]]:
+    """Reset running statistics to a cumulative average (momentum None); returns the old momenta."""
+    saved = [bn.momentum for bn in bns]
+    for bn in bns:
+        bn.reset_running_stats()
+        bn.momentum = None
+    return saved
 
-    def __init__(self, supernet: Any, calib: list[Any]):
+
+def _bn_state(bns: list[Any]) -> list[tuple]:
+    return [(bn, bn.running_mean.clone(), bn.running_var.clone(), bn.num_batches_tracked.clone()) for bn in bns]
+
+
+class Recalibrator:
+    """BN recalibration (tightfit.recalibrate.recalibrate_bn) that reuses what subnets share.
+
+    In training mode a layer's output and batch statistics depend only on the layers before
+    it, so the outputs of the stem and fixed stages are computed once, and the outputs of
+    the first variable block once per (expansion, kernel) choice; only the rest is re-run.
+    Cached outputs are capped at ``max_bytes`` (big images): beyond it, plain recalibration."""
+
+    def __init__(self, supernet: Any, calib: list[Any], max_bytes: int = 1 << 30):
         import torch
         from tightfit.recalibrate import _bns, preserved_bn_stats, recalibrate_bn
-        self.sn, self.n = supernet, fixed_stages(supernet.space)
+        self.sn, self.calib, self.n, self.budget = supernet, calib, fixed_stages(supernet.space), max_bytes
         prefix = torch.nn.Sequential(supernet.stem, *[b for blocks in supernet.stages[:self.n] for b in blocks])
+        was_training = supernet.training
         with preserved_bn_stats(prefix), torch.no_grad():
             recalibrate_bn(prefix, calib)
-            self.prefix_stats = [(bn, bn.running_mean.clone(), bn.running_var.clone(), bn.num_batches_tracked.clone())
-                                 for bn in _bns(prefix)]
+            self.prefix_stats = _bn_state(_bns(prefix))
             prefix.train()
-            self.inputs = [prefix(x) for x in calib]  # (B, C, H, W) after the shared layers
+            first = prefix(calib[0])  # (B, C, H, W) after the shared layers
+            self.inputs = [first] + [prefix(x) for x in calib[1:]] if self._take(first) else None
+        supernet.train(was_training)
+        self.variants: dict[tuple, tuple[list[Any], list[tuple]]] = {}
+        self.first = supernet.stages[self.n][0] if self.n < len(supernet.stages) else None
         prefix_ids = {id(bn) for bn, *_ in self.prefix_stats}
         self.rest = [bn for bn in _bns(supernet) if id(bn) not in prefix_ids]
+        self.first_ids = {id(bn) for bn in _bns(self.first)} if self.first is not None else set()
+
+    def _take(self, sample: Any) -> bool:
+        """Reserve room for len(calib) tensors shaped like ``sample``, if the cap allows."""
+        size = sample.element_size() * sample.numel() * len(self.calib)
+        if size > self.budget:
+            return False
+        self.budget -= size
+        return True
+
+    def _first_block(self) -> Optional[tuple[list[Any], list[tuple]]]:
+        """Outputs and statistics of the first variable block for its current choice (cached)."""
+        import torch
+        from tightfit.recalibrate import _bns, preserved_bn_stats
+        key = (self.first.exp_ratio, self.first.kernel)
+        if key not in self.variants:
+            bns = _bns(self.first)
+            with preserved_bn_stats(self.first), torch.no_grad():
+                saved, was_training = _cumulative(bns), self.first.training
+                self.first.train()
+                outs = [self.first(h) for h in self.inputs]
+                self.first.train(was_training)
+                for bn, m in zip(bns, saved):
+                    bn.momentum = m
+                stats = _bn_state(bns)
+            self.variants[key] = (outs, stats) if self._take(outs[0]) else None
+        return self.variants[key]
 
     def __call__(self) -> None:
         """Recalibrate the active subnet's BatchNorm statistics (call inside preserved_bn_stats)."""
         import torch
-        saved = [bn.momentum for bn in self.rest]
-        for bn in self.rest:
-            bn.reset_running_stats()
-            bn.momentum = None
+        from tightfit.recalibrate import recalibrate_bn
+        if self.inputs is None:
+            return recalibrate_bn(self.sn, self.calib)
+        cached = self._first_block() if self.first is not None else None
+        hs, keep = (cached[0], self.prefix_stats + cached[1]) if cached else (self.inputs, self.prefix_stats)
+        rest = [bn for bn in self.rest if not (cached and id(bn) in self.first_ids)]
+        saved = _cumulative(rest)
         was_training = self.sn.training
         self.sn.train()
         with torch.no_grad():
-            for h in self.inputs:
-                for blocks, depth in zip(self.sn.stages[self.n:], self.sn.depths[self.n:]):
-                    for block in blocks[:depth]:
+            for h in hs:
+                for i, (blocks, depth) in enumerate(zip(self.sn.stages[self.n:], self.sn.depths[self.n:])):
+                    for block in blocks[1 if cached and i == 0 else 0:depth]:
                         h = block(h)
                 self.sn.head(h)
         self.sn.train(was_training)
-        for bn, m in zip(self.rest, saved):
+        for bn, m in zip(rest, saved):
             bn.momentum = m
-        for bn, mean, var, count in self.prefix_stats:
+        for bn, mean, var, count in keep:
             bn.running_mean.copy_(mean)
             bn.running_var.copy_(var)
             bn.num_batches_tracked.copy_(count)

@@ -1,17 +1,16 @@
 """Built-in dataset: top-down camera shots of machined parts at a conveyor inspection station.
 
-Every image is drawn by this module from a seed, so the project can train and test with no
-download. Parts are signed-distance shapes in a part-local frame (negative inside), turned
-into soft anti-aliased coverage, shaded like bare metal and composited over a rubber belt
-with stray debris, neighbouring parts, uneven lighting and sensor noise. The defect classes
-differ from their good twins only by a detail a few pixels across at 32x32 (a hairline
-crack, one missing tooth or ball, a chipped corner), which is what separates a large
-network from a tiny one. Material colour is drawn independently of the class, so
-shape is the only reliable cue (the project also offers a greyscale mode).
+Drawn from a seed, so the project trains and tests with no download. Parts are signed
+distance shapes in a part-local frame (negative inside), turned into soft anti-aliased
+coverage, shaded like bare metal and laid over a rubber belt with debris, neighbouring
+parts, uneven lighting and sensor noise. Defect classes differ from their good twins by a
+detail a few pixels across at 32x32 (hairline crack, missing tooth or ball, chipped
+corner): that is what separates a large network from a tiny one. Material colour is drawn
+independently of the class, so shape is the only reliable cue (greyscale mode works too).
 
 Images are rendered a chunk at a time on broadcast coordinate grids (each class's shape on
-its share of the chunk), and the layers are kept as grey weight maps that a single batched
-matrix product colours at the end, so the cost is a few hundred numpy operations per chunk
+its share of the chunk), and the layers are kept as grey weight maps that are coloured in
+one mix at the end, so the cost is a few hundred numpy operations per chunk
 rather than per image.
 """
 from __future__ import annotations
@@ -40,10 +39,8 @@ def _colour(rng: np.random.Generator, table: np.ndarray, b: int, lo: float, hi: 
 
 
 def _noise(rng: np.random.Generator, shape: tuple[int, ...]) -> np.ndarray:
-    """Zero-mean, unit-variance uniform noise from one random byte per value.
-
-    Several times cheaper than Gaussian sampling; sensor noise does not need the exact shape.
-    """
+    """Zero-mean, unit-variance uniform noise, one random byte per value: far cheaper than
+    Gaussian sampling, and sensor noise does not need the exact shape."""
     u = np.frombuffer(rng.bytes(int(np.prod(shape))), np.uint8).reshape(shape).astype(_F)
     u -= 127.5
     u *= _F(1 / 73.9)
@@ -100,9 +97,11 @@ def _square_nut(u, v, rng):
 
 
 def _teeth(u, v, rng, missing: bool):
-    """Gear outline: a hub plus a smoothed square wave of teeth around the rim."""
-    b = len(u)
-    n = _F(8)
+    """Gear outline: a hub plus a smoothed square wave of teeth around the rim.
+
+    The tooth count is fixed, so a gap reads as a defect rather than as another gear size.
+    """
+    b, n = len(u), 8
     r, phi = np.hypot(u, v), np.arctan2(v, u)
     tooth = np.clip(2.2 * np.cos(n * phi) + 0.4, 0.0, 1.0)
     if missing:
@@ -150,7 +149,7 @@ def _balls(u, v, rng, missing: bool):
     """Ball bearing: outer and inner races with six balls between them."""
     b = len(u)
     r, phi = np.hypot(u, v), np.arctan2(v, u)
-    step = np.float32(2 * np.pi / 6)
+    step = _F(2 * np.pi / 6)
     k = np.round(phi / step)
     ang = k * step
     ball = np.hypot(u - 0.285 * np.cos(ang), v - 0.285 * np.sin(ang)) - _p(rng, b, 0.085, 0.095)
@@ -272,18 +271,20 @@ def _layers(labels, x, y, size, rng):
 
 def _camera(weights, x, y, rng):
     """Colour the layers, add uneven lamp light, colour cast and sensor noise, quantise."""
-    b, size = len(weights), weights.shape[-1]
+    b = len(weights)
     colours = np.stack([_colour(rng, _BELTS, b, 0.8, 1.25), _colour(rng, _METALS, b, 0.7, 0.95),
                         _colour(rng, _METALS, b, 0.8, 1.1), np.ones((b, 3), _F)], 1)
     colours *= rng.uniform(0.9 * 255, 1.1 * 255, (b, 1, 3)).astype(_F)
     a = _p(rng, b, 0, 2 * np.pi)
     lamp = _p(rng, b, 0.75, 1.25) * (1.0 + _p(rng, b, 0.0, 0.3) * (x * np.cos(a) + y * np.sin(a)))
-    weights = (weights * lamp[:, None]).reshape(b, 4, size * size)
-    img = np.matmul(weights.transpose(0, 2, 1), colours)
+    weights = weights * lamp[:, None]
+    img = weights[:, :1] * colours[:, 0, :, None, None]  # channel-first: long inner loops
+    for i in range(1, 4):  # plain multiply-adds (no BLAS), so every machine rounds alike
+        img += weights[:, i:i + 1] * colours[:, i, :, None, None]
     noise = _noise(rng, img.shape)
-    noise *= _p(rng, b, 0.01 * 255, 0.035 * 255)
+    noise *= _p(rng, b, 0.01 * 255, 0.035 * 255)[:, None]
     img += noise + 0.5
-    return np.clip(img, 0, 255, out=img).astype(np.uint8).reshape(b, size, size, 3)
+    return np.clip(img, 0, 255, out=img).astype(np.uint8).transpose(0, 2, 3, 1)
 
 
 def generate_parts(n: int, size: int = 32, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
