@@ -331,7 +331,7 @@ def test_cached_prefix_recalibration_matches_full(max_bytes):
     perturb(sn, seed=3)
     calib = [torch.randn(8, 3, 16, 16) for _ in range(3)]
     rng = random.Random(2)
-    subnets = [space.smallest(), space.largest()] + [space.sample(rng) for _ in range(4)] + [space.smallest()]
+    subnets = [space.smallest(), space.largest()] + [space.sample(rng) for _ in range(2)] + [space.smallest()]
     before = {k: v.clone() for k, v in sn.state_dict().items()}
     recal = Recalibrator(sn, calib, max_bytes=max_bytes)
     assert (recal.inputs is None) == (max_bytes == 0) and not sn.training
@@ -434,7 +434,7 @@ def test_search_verify_export_end_to_end(tiny_run, monkeypatch, capsys):
     assert len(rows) == 28 and all(r["predicted_ms"] <= r["limit_ms"] for r in rows)
     assert all(r["limit_ms"] == r["budget_ms"] for r in rows if r["device"] == "far-board")  # no slack unmeasured
     assert theirs["predicted_ms"] <= theirs["budget_ms"]
-    assert not (tiny_run / "search" / "staging" / "this-host").exists()
+    assert not (tiny_run / "search" / "staging").exists()
     cache = (tiny_run / "search" / "accuracy_cache.jsonl").read_text().splitlines()
 
     # Re-run: every accuracy comes from the cache, the logs are replaced rather than doubled.

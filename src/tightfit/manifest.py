@@ -287,6 +287,10 @@ def choose_and_export(run: Any, ds: Any, table: Any, ranked: list[Candidate], bu
                            latency=latency_section(pick.measured, device, protocol.to_dict(), pick.cand.latency_ms, note),
                            budget_ms=budget_ms, percentile=protocol.percentile, device_name=table.name)
     shutil.rmtree(staging, ignore_errors=True)
+    try:
+        staging.parent.rmdir()  # the staging folder goes once no budget uses it
+    except OSError:
+        pass
     if note:
         say(f"  {note}")
     return {"device": table.name, "budget_ms": budget_ms, "percentile": protocol.percentile, "key": pick.cand.key,

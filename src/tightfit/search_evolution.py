@@ -20,8 +20,8 @@ import os
 import random
 import time
 from collections import deque
-from pathlib import Path
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any, Callable, Optional
 
 from tightfit.errors import UserError
@@ -192,7 +192,8 @@ def regularized_evolution(space: SpaceSpec, fitness: Fitness, latency: Latency, 
 def random_search(space: SpaceSpec, fitness: Fitness, latency: Latency, budget_ms: float, evaluations: int,
                   seed: int = 0, on_eval: Optional[Callable[[Candidate], None]] = None,
                   device: str = "device", sample_tries: int = 300) -> list[Candidate]:
-    """Baseline: ``evaluations`` distinct subnets drawn uniformly within the budget."""
+    """Baseline: ``evaluations`` distinct subnets drawn uniformly within the budget (rejection
+    sampling; where the budget admits only a sliver of the space, see sample_within)."""
     fastest_check(space, latency, budget_ms, device)
     rng = random.Random(seed)
     ledger = _Ledger(fitness, latency, on_eval)
@@ -201,11 +202,6 @@ def random_search(space: SpaceSpec, fitness: Fitness, latency: Latency, budget_m
             break
         ledger.evaluate(_fresh_within(space, rng, ledger, budget_ms, sample_tries), 0)
     return list(ledger.seen.values())
-
-
-def best(candidates: list[Candidate], budget_ms: float) -> Optional[Candidate]:
-    fitting = [c for c in candidates if c.latency_ms <= budget_ms]
-    return max(fitting, key=lambda c: c.fitness) if fitting else None
 
 
 def pareto_front(points: list[tuple[str, float, float]]) -> list[tuple[str, float, float]]:
