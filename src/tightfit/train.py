@@ -35,7 +35,10 @@ from tightfit.supernet import Supernet
 
 
 def sandwich(space: SpaceSpec, step: int, seed: int, n_random: int) -> list[Subnet]:
-    """[largest, smallest, n random]; the draw depends only on (seed, step)."""
+    """[largest, smallest, n random]; the draw depends only on (seed, step).
+    A one-subnet space (a fixed network, e.g. a hand-scaled baseline) trains as a plain network."""
+    if space.size() == 1:
+        return [space.largest()]
     rng = random.Random(seed * 7_919 + step)
     return [space.largest(), space.smallest()] + [space.sample(rng) for _ in range(n_random)]
 
@@ -164,7 +167,8 @@ def _trim_log(path: Path, step: int) -> None:
 def _epoch_eval(model: Supernet, recipe: Recipe, ds: Dataset, epoch: int, step: int) -> dict:
     calib = calibration_batches(ds, recipe.train.batch_size, min(5, recipe.train.recalibration_batches), recipe.seed)
     rec = {"step": step, "epoch": epoch}
-    for name, sub in (("largest", recipe.space.largest()), ("smallest", recipe.space.smallest())):
+    pairs = (("largest", recipe.space.largest()), ("smallest", recipe.space.smallest()))
+    for name, sub in pairs[:1] if recipe.space.size() == 1 else pairs:
         rec[f"val_acc_{name}"] = subnet_accuracy(model, sub, calib, eval_batches(ds.val_x, ds.val_y, ds, 512))
     model.train()
     return rec
