@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import resource
 import sys
 import time
@@ -158,16 +157,28 @@ def export_member(run: Path) -> tuple[Path, int, int]:
     return path, count_params(net), count_macs(net, t.recipe.data.channels, t.recipe.data.image_size)
 
 
-def ort_test_accuracy(onnx_path: Path, ds) -> float:
-    """Top-1 on the test split through ONNX Runtime: the same code path for picks and baselines."""
+def ort_accuracy(onnx_path: Path, ds, split: str = "test") -> float:
+    """Top-1 through ONNX Runtime: the same code path for picks and baselines."""
     import onnxruntime as ort
     from tightfit.data.dataset import eval_batches
     opts = ort.SessionOptions()
     opts.log_severity_level = 3
     s = ort.InferenceSession(str(onnx_path), opts, providers=["CPUExecutionProvider"])
+    x_all, y_all = getattr(ds, f"{split}_x"), getattr(ds, f"{split}_y")
     correct = sum(int((s.run(None, {"image": x.numpy()})[0].argmax(1) == y.numpy()).sum())
-                  for x, y in eval_batches(ds.test_x, ds.test_y, ds, 1000))
-    return 100.0 * correct / len(ds.test_y)  # smoke: the first 1,000 test images only
+                  for x, y in eval_batches(x_all, y_all, ds, 1000))
+    return 100.0 * correct / len(y_all)  # smoke: the first 1,000 test images only
+
+
+def write_baselines(run: Path, models: list[dict], recipe) -> Path:
+    """RUN/baselines.json for `tightfit report`: the family on the validation split, like the candidates."""
+    from tightfit.atomic import write_json
+    from tightfit.data.dataset import load_dataset
+    ds = load_dataset(recipe.data, recipe.seed)
+    rows = [{"name": m["name"], "key": m["key"], "val_acc": round(ort_accuracy(Path(m["onnx"]), ds, "val"), 2),
+             "p50_ms": m["p50_ms"], "p90_ms": m["p90_ms"], "params": m["params"], "macs": m["macs"]}
+            for m in models if m["kind"] == "baseline"]
+    return write_json(run / "baselines.json", rows)
 
 
 def measure_all(picks: list[dict], members: list[dict], run: Path, recipe, smoke: bool) -> dict:
@@ -187,7 +198,7 @@ def measure_all(picks: list[dict], members: list[dict], run: Path, recipe, smoke
         models.append({"kind": "baseline", "name": mem["name"], "key": mem["key"], "onnx": str(path),
                        "params": params, "macs": macs, "describe": mem["describe"]})
     for m in models:
-        m["test_acc"] = round(ort_test_accuracy(Path(m["onnx"]), ds), 2)
+        m["test_acc"] = round(ort_accuracy(Path(m["onnx"]), ds), 2)
     proto = Protocol(repeats=1, min_runs=20, min_seconds=0.1, warmup_min_runs=5) if smoke else Protocol()
     figures = measure_repeated([m["onnx"] for m in models], proto)
     for m in models:
@@ -323,6 +334,7 @@ def main(argv: list[str] | None = None) -> int:
                for m in (DEFAULT_FAMILY[::len(DEFAULT_FAMILY) - 1] if args.smoke else DEFAULT_FAMILY)]
     measured = state.phase("measure and test every model", lambda: measure_all(picks, members, run, recipe, args.smoke))
     mach = state.phase("machinery figures", lambda: machinery(recipe, args.smoke))
+    write_baselines(run, measured["models"], recipe)
     result = summarize(state, measured, budgets)
     result.update({"machinery": mach, "supernet": state.data["train supernet"]["result"], "family": members,
                    "picks_search_s": {str(p["budget_ms"]): p["search_s"] for p in picks},

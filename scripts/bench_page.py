@@ -78,10 +78,10 @@ def page_text(result: dict, plot_name: str) -> str:
         "",
         "## Targets",
         "",
-        f"- pick at least as accurate as the best fitting baseline at every budget: "
+        "- pick at least as accurate as the best fitting baseline at every budget: "
         f"{'yes' if t['pick_at_least_baseline_every_budget'] else 'NO'}",
         f"- best pick test accuracy {t['best_pick_test_acc']:.2f} % (target {t['best_pick_target']} %)",
-        f"- best pick under 100K parameters: " + (f"{t['best_small_pick_test_acc']:.2f} %" if t["best_small_pick_test_acc"]
+        "- best pick under 100K parameters: " + (f"{t['best_small_pick_test_acc']:.2f} %" if t["best_small_pick_test_acc"]
                                                    is not None else "none") + f" (target {t['small_pick_target']} %)",
         f"- CPU time (supernet + search) / family: {t['cpu_ratio_supernet_search_over_family']:.2f} (target <= 1)",
         "",

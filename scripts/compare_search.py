@@ -38,7 +38,8 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
 def compare(args: argparse.Namespace) -> list[dict]:
     from tightfit.data.dataset import load_dataset
     from tightfit.rundir import load_trained
-    from tightfit.search import RunAccuracy, SearchSettings, load_predictors, parse_budget
+    from tightfit.search import SearchSettings, load_predictors, parse_budget
+    from tightfit.search_fitness import RunAccuracy
     from tightfit.search_evolution import (AccuracyCache, CachedAccuracy, CachedLatency, random_search,
                                            regularized_evolution)
     budget = parse_budget(args.budget)

@@ -323,7 +323,7 @@ def test_cached_prefix_recalibration_matches_full(max_bytes):
     from helpers import perturb, tiny_recipe
     from tightfit.extract import extract_subnet
     from tightfit.recalibrate import preserved_bn_stats, recalibrate_bn
-    from tightfit.search import Recalibrator, fixed_stages
+    from tightfit.search_fitness import Recalibrator, fixed_stages
     from tightfit.supernet import Supernet
     space = tiny_recipe().space
     assert fixed_stages(space) == 1

@@ -1,5 +1,4 @@
 """Training: sandwich sampling, schedule, exact resume, safe checkpoint loading."""
-import pickle
 
 import pytest
 import torch

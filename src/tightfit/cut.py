@@ -8,7 +8,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
-import torch
 
 from tightfit.atomic import write_bytes
 from tightfit.data.dataset import Dataset, calibration_batches, eval_batches, load_dataset

@@ -20,7 +20,8 @@ from tightfit.atomic import write_json, write_text
 from tightfit.errors import UserError
 from tightfit.search_evolution import (AccuracyCache, CachedAccuracy, CachedLatency, Candidate, EvolutionSettings,
                                        append_jsonl, fastest_check, pareto_front, read_jsonl, regularized_evolution)
-from tightfit.space import SpaceSpec, Subnet
+from tightfit.search_fitness import RunAccuracy
+from tightfit.space import SpaceSpec
 
 _UNITS = {"s": 1000.0, "ms": 1.0, "us": 1e-3, "µs": 1e-3}
 _BUDGET_RE = re.compile(r"^\s*([0-9]*\.?[0-9]+(?:[eE][-+]?[0-9]+)?)\s*(s|ms|us|µs)\s*$")
@@ -164,185 +165,6 @@ def time_report(r: BudgetResult, phases: dict[str, float]) -> str:
             f"in {r.seconds:.1f} s = {r.fresh / max(r.seconds, 1e-9):.2f} evaluations/s; {spent}")
 
 
-# ----------------------------------------------------------------------------- a trained run
-
-def fixed_stages(space: SpaceSpec) -> int:
-    """Leading stages with a single choice everywhere: every subnet shares them."""
-    n = 0
-    while n < len(space.stages) and all(len(v) == 1 for v in (space.stages[n].depths, space.stages[n].exp_ratios,
-                                                                space.stages[n].kernels)):
-        n += 1
-    return n
-
-
-def _cumulative(bns: list[Any]) -> list[Optional[float]]:
-    """Reset running statistics to a cumulative average (momentum None); returns the old momenta."""
-    saved = [bn.momentum for bn in bns]
-    for bn in bns:
-        bn.reset_running_stats()
-        bn.momentum = None
-    return saved
-
-
-def _bn_state(bns: list[Any]) -> list[tuple]:
-    return [(bn, bn.running_mean.clone(), bn.running_var.clone(), bn.num_batches_tracked.clone()) for bn in bns]
-
-
-class Recalibrator:
-    """BN recalibration (tightfit.recalibrate.recalibrate_bn) that reuses what subnets share.
-
-    In training mode a layer's output and batch statistics depend only on the layers before
-    it, so the outputs of the stem and fixed stages are computed once, and the outputs of
-    the first variable block once per (expansion, kernel) choice; only the rest is re-run.
-    Cached outputs are capped at ``max_bytes`` (big images): beyond it, plain recalibration."""
-
-    def __init__(self, supernet: Any, calib: list[Any], max_bytes: int = 1 << 30):
-        import torch
-        from tightfit.recalibrate import _bns, preserved_bn_stats, recalibrate_bn
-        self.sn, self.calib, self.n, self.budget = supernet, calib, fixed_stages(supernet.space), max_bytes
-        prefix = torch.nn.Sequential(supernet.stem, *[b for blocks in supernet.stages[:self.n] for b in blocks])
-        was_training = supernet.training
-        with preserved_bn_stats(prefix), torch.no_grad():
-            recalibrate_bn(prefix, calib)
-            self.prefix_stats = _bn_state(_bns(prefix))
-            prefix.train()
-            first = prefix(calib[0])  # (B, C, H, W) after the shared layers
-            self.inputs = [first] + [prefix(x) for x in calib[1:]] if self._take(first) else None
-        supernet.train(was_training)
-        self.variants: dict[tuple, tuple[list[Any], list[tuple]]] = {}
-        self.first = supernet.stages[self.n][0] if self.n < len(supernet.stages) else None
-        prefix_ids = {id(bn) for bn, *_ in self.prefix_stats}
-        self.rest = [bn for bn in _bns(supernet) if id(bn) not in prefix_ids]
-        self.first_ids = {id(bn) for bn in _bns(self.first)} if self.first is not None else set()
-
-    def _take(self, sample: Any) -> bool:
-        """Reserve room for len(calib) tensors shaped like ``sample``, if the cap allows."""
-        size = sample.element_size() * sample.numel() * len(self.calib)
-        if size > self.budget:
-            return False
-        self.budget -= size
-        return True
-
-    def _first_block(self) -> Optional[tuple[list[Any], list[tuple]]]:
-        """Outputs and statistics of the first variable block for its current choice (cached)."""
-        import torch
-        from tightfit.recalibrate import _bns, preserved_bn_stats
-        key = (self.first.exp_ratio, self.first.kernel)
-        if key not in self.variants:
-            bns = _bns(self.first)
-            with preserved_bn_stats(self.first), torch.no_grad():
-                saved, was_training = _cumulative(bns), self.first.training
-                self.first.train()
-                outs = [self.first(h) for h in self.inputs]
-                self.first.train(was_training)
-                for bn, m in zip(bns, saved):
-                    bn.momentum = m
-                stats = _bn_state(bns)
-            self.variants[key] = (outs, stats) if self._take(outs[0]) else None
-        return self.variants[key]
-
-    def __call__(self) -> None:
-        """Recalibrate the active subnet's BatchNorm statistics (call inside preserved_bn_stats)."""
-        import torch
-        from tightfit.recalibrate import recalibrate_bn
-        if self.inputs is None:
-            return recalibrate_bn(self.sn, self.calib)
-        cached = self._first_block() if self.first is not None else None
-        hs, keep = (cached[0], self.prefix_stats + cached[1]) if cached else (self.inputs, self.prefix_stats)
-        rest = [bn for bn in self.rest if not (cached and id(bn) in self.first_ids)]
-        saved = _cumulative(rest)
-        was_training = self.sn.training
-        self.sn.train()
-        with torch.no_grad():
-            for h in hs:
-                for i, (blocks, depth) in enumerate(zip(self.sn.stages[self.n:], self.sn.depths[self.n:])):
-                    for block in blocks[1 if cached and i == 0 else 0:depth]:
-                        h = block(h)
-                self.sn.head(h)
-        self.sn.train(was_training)
-        for bn, m in zip(rest, saved):
-            bn.momentum = m
-        for bn, mean, var, count in keep:
-            bn.running_mean.copy_(mean)
-            bn.running_var.copy_(var)
-            bn.num_batches_tracked.copy_(count)
-
-
-class RunAccuracy:
-    """``compute`` for CachedAccuracy on a trained run: recalibrate BN on training batches, then
-    top-1 on the (optionally capped) validation split; time spent per phase is kept.
-
-    With backend "onnxruntime" the recalibrated subnet is extracted and exported (tightfit.export)
-    and the validation pass runs in ONNX Runtime, which fuses conv + BatchNorm + activation:
-    3-4x faster than eager torch here, same predictions (export parity <= 1e-4 is checked
-    for every pick by tightfit.cut). Backend "torch" is tightfit.recalibrate.subnet_accuracy."""
-
-    def __init__(self, run: Any, ds: Any, val_images: int = 0, backend: str = "onnxruntime"):
-        from tightfit.data.dataset import calibration_batches, eval_batches
-        if backend not in ("onnxruntime", "torch"):
-            raise UserError(f"evaluation backend {backend!r} is unknown: use 'onnxruntime' or 'torch'")
-        cfg = run.recipe
-        self.run, self.backend = run, backend
-        self.calib = calibration_batches(ds, cfg.train.batch_size, cfg.train.recalibration_batches, cfg.seed)
-        self.images = len(ds.val_y) if val_images <= 0 else min(val_images, len(ds.val_y))
-        # The validation split is a random carve, so its first N images are a uniform subsample.
-        self.val = list(eval_batches(ds.val_x[:self.images], ds.val_y[:self.images], ds,
-                                     max(cfg.train.eval_batch_size, 512)))
-        self.recal_s = self.export_s = self.val_s = 0.0
-        self.recalibrate = Recalibrator(run.supernet, self.calib)
-
-    def tag(self, run_dir: Path) -> dict[str, Any]:
-        """What the cached figures depend on: recipe, the exact weights, recalibration and images."""
-        import hashlib
-        from tightfit.rundir import checkpoint_path
-        weights = hashlib.sha256(checkpoint_path(run_dir).read_bytes()).hexdigest()[:16]
-        return {"recipe_hash": self.run.recipe.hash(), "weights": weights,
-                "recalibration_batches": len(self.calib), "images": self.images}
-
-    def phases(self, latency: CachedLatency) -> dict[str, float]:
-        return {"BN recalibration": self.recal_s, "export": self.export_s, "validation": self.val_s,
-                "latency prediction": latency.seconds}
-
-    def _ort_accuracy(self, net: Any) -> float:
-        import onnxruntime as ort
-        import torch
-        from tightfit.export import onnx_bytes
-        data = self.run.recipe.data
-        t0 = time.perf_counter()
-        opts = ort.SessionOptions()
-        opts.intra_op_num_threads, opts.inter_op_num_threads, opts.log_severity_level = torch.get_num_threads(), 1, 3
-        session = ort.InferenceSession(onnx_bytes(net, data.channels, data.image_size), opts,
-                                       providers=["CPUExecutionProvider"])
-        t1 = time.perf_counter()
-        correct = sum(int((session.run(None, {"image": x.numpy()})[0].argmax(1) == y.numpy()).sum())
-                      for x, y in self.val)
-        self.export_s += t1 - t0
-        self.val_s += time.perf_counter() - t1
-        return 100.0 * correct / max(self.images, 1)
-
-    def __call__(self, subnet: Subnet) -> dict[str, Any]:
-        from tightfit.extract import extract_subnet
-        from tightfit.manifest import architecture_size
-        from tightfit.recalibrate import accuracy, preserved_bn_stats
-        sn, data = self.run.supernet, self.run.recipe.data
-        sn.set_subnet(subnet)
-        t0 = time.perf_counter()
-        with preserved_bn_stats(sn):
-            self.recalibrate()
-            self.recal_s += time.perf_counter() - t0
-            if self.backend == "torch":
-                t1 = time.perf_counter()
-                acc = accuracy(sn, self.val)
-                self.val_s += time.perf_counter() - t1
-            else:
-                net = extract_subnet(sn, subnet)
-        if self.backend != "torch":
-            acc = self._ort_accuracy(net)
-        params, macs = architecture_size(self.run.recipe.space, subnet, data.channels, data.image_size,
-                                         len(self.run.class_names))
-        return {"val_acc": round(acc, 4), "params": params, "macs": macs}
-
-
 def load_predictors(paths: list[str], recipe: Any) -> list[tuple[Any, Any]]:
     """(table, predictor of the table's budget percentile) per --table; tables measured for
     another space are refused by the latency module."""
@@ -361,7 +183,6 @@ def run_search(run_dir: str | Path, table_paths: list[str], budgets: list[str], 
                progress: bool = True, say: Callable[[str], None] = print) -> list[dict[str, Any]]:
     """Search, verify and export every (device, budget); returns the rows of picks.json written."""
     from tightfit.data.dataset import load_dataset
-    from tightfit.manifest import choose_and_export
     from tightfit.rundir import load_trained
     budget_ms = [parse_budget(b) for b in budgets]
     run_dir = Path(run_dir)
