@@ -229,16 +229,44 @@ def _search_device(ctx: _Context, table: Any, predictor: Any, budgets: list[floa
                              if verifiable else "another machine: picks by predicted latency, to be verified there"))
     for b in budgets:
         drop_logged(out / "candidates.jsonl", table.name, b)
-        before = compute.phases(latency)
-        result = search_budget(ctx.run.recipe.space, ctx.fitness, latency, b, table.name, ctx.settings,
-                               out / "candidates.jsonl", ctx.progress, limit_ms=b * (1 + slack))
-        say(time_report(result, {k: v - before[k] for k, v in compute.phases(latency).items()}))
-        seen += result.candidates
-        write_front(out / f"front-{safe_name(table.name)}.json", table.name, out / "candidates.jsonl")
-        picks.append(choose_and_export(ctx.run, ctx.ds, table, ranked_within(seen, b * (1 + slack)), b,
-                                       ctx.settings.top, ctx.run_dir, ctx.fitness, latency, say, verifiable))
+        limit = b * (1 + slack)
+        for attempt in range(2):
+            before = compute.phases(latency)
+            result = search_budget(ctx.run.recipe.space, ctx.fitness, latency, b, table.name, ctx.settings,
+                                   out / "candidates.jsonl", ctx.progress, limit_ms=limit)
+            say(time_report(result, {k: v - before[k] for k, v in compute.phases(latency).items()}))
+            seen += result.candidates
+            write_front(out / f"front-{safe_name(table.name)}.json", table.name, out / "candidates.jsonl")
+            row = choose_and_export(ctx.run, ctx.ds, table, ranked_within(seen, limit), b,
+                                    ctx.settings.top, ctx.run_dir, ctx.fitness, latency, say, verifiable)
+            wider = widened_limit(row, b, limit) if attempt == 0 else None
+            if wider is None:
+                break
+            say(f"  the pick uses {row_use(row):.0%} of the budget and measures "
+                f"{row['measured']['budget_stat_ms'] / row['predicted_ms']:.2f} x its prediction: "
+                f"searching again up to {wider:.4g} ms predicted")
+            limit = wider
+        picks.append(row)
         merge_picks(out / "picks.json", picks)
     return picks
+
+
+UNDER_USE = 0.85  # a verified pick below this share of its budget triggers one wider search
+
+
+def row_use(row: dict[str, Any]) -> float:
+    return row["measured"]["budget_stat_ms"] / row["budget_ms"]
+
+
+def widened_limit(row: dict[str, Any], budget_ms: float, limit_ms: float) -> Optional[float]:
+    """Where the predictor overestimates a verified pick so much that it uses less than
+    UNDER_USE of its budget, the predicted limit scaled by measured/predicted (else None):
+    the search may have left faster-than-predicted, more accurate subnets out."""
+    m = row.get("measured")
+    if not (m and row.get("fits") and row.get("predicted_ms")) or row_use(row) >= UNDER_USE:
+        return None
+    ratio = m["budget_stat_ms"] / row["predicted_ms"]
+    return limit_ms / ratio if ratio < 0.97 else None
 
 
 def merge_picks(path: Path, rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
