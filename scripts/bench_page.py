@@ -27,8 +27,8 @@ def plot(result: dict, path: Path) -> Path:
             label="tightfit picks (one supernet)")
     for r in result["budgets"]:
         ax.axvline(r["budget_ms"], color="tab:red", lw=0.8, ls=":")
-        ax.annotate(f"budget {r['budget_ms']:g} ms", (r["budget_ms"], ax.get_ylim()[0]), rotation=90, fontsize=7,
-                    color="tab:red", xytext=(-9, 4), textcoords="offset points", va="bottom")
+        ax.annotate(f"budget {r['budget_ms']:g} ms", (r["budget_ms"], 1.0), xycoords=("data", "axes fraction"),
+                    rotation=90, fontsize=7, color="tab:red", xytext=(-9, -4), textcoords="offset points", va="top")
     ax.set_xlabel("measured p90 latency, ms (ONNX Runtime, batch 1, 1 thread)")
     ax.set_ylabel("test accuracy, % (Fashion-MNIST test split)")
     ax.set_title("Fashion-MNIST: accuracy vs measured latency")
@@ -135,11 +135,16 @@ def page_text(result: dict, plot_name: str) -> str:
     return "\n".join(lines)
 
 
+NOTES = Path(__file__).resolve().parents[1] / "benchmarks" / "fashion-mnist-notes.md"
+
+
 def write_page(result: dict, docs: Path) -> Path:
+    """The generated page, then the hand-written reading of it (benchmarks/fashion-mnist-notes.md) if present."""
     from tightfit.atomic import write_text
     name = "benchmarks-fashion-mnist.png"
     plot(result, docs / name)
-    return write_text(docs / "benchmarks.md", page_text(result, name))
+    notes = "" if result["smoke"] or not NOTES.is_file() else "\n" + NOTES.read_text("utf-8")
+    return write_text(docs / "benchmarks.md", page_text(result, name) + notes)
 
 
 if __name__ == "__main__":
