@@ -444,7 +444,7 @@ def test_search_verify_export_end_to_end(tiny_run, monkeypatch, capsys):
     args = parser.parse_args(argv)
     assert args.func(args) == 0
     assert (tiny_run / "search" / "accuracy_cache.jsonl").read_text().splitlines() == cache
-    assert len((tiny_run / "search" / "candidates.jsonl").read_text().splitlines()) == 28
+    assert len((tiny_run / "search" / "candidates.jsonl").read_text().splitlines()) == len(rows)
 
 
 def test_widened_limit_only_for_a_verified_pick_far_under_budget():
