@@ -18,8 +18,8 @@ import torch
 from tightfit.errors import UserError
 from tightfit.manifest import Accuracy, build_manifest, latency_section, write_export
 from tightfit.search import SearchSettings, parse_budget, ranked_within, search_budget, write_front
-from tightfit.search_evolution import (AccuracyCache, CachedAccuracy, CachedLatency, EvolutionSettings, pareto_front,
-                                       random_search, regularized_evolution)
+from tightfit.search_evolution import (AccuracyCache, CachedAccuracy, CachedLatency, EvolutionSettings, band_floor,
+                                       pareto_front, random_search, regularized_evolution)
 from tightfit.space import SpaceSpec, StageSpec, Subnet
 
 # ----------------------------------------------------------------------------- budgets
@@ -106,6 +106,30 @@ def test_evolution_beats_random_at_equal_evaluations():
         gaps.append(best_evo - best_rnd)
     assert wins >= 5, gaps
     assert statistics.mean(gaps) > 1.0, gaps
+
+
+def test_band_draws_first_members_just_under_the_budget():
+    # Latency is cheap, accuracy is not: the first members come from [0.9 x budget, budget]
+    # when that band holds subnets, and the unbanded random baseline does not.
+    space = wide_space()
+    predictor = FakePredictor(space)
+    budget = 2.0
+    cfg = EvolutionSettings(population=12, evaluations=12, seed=3)
+    first = regularized_evolution(space, lambda s: 0.0, predictor.predict_ms, budget, cfg)
+    assert all(0.9 * budget <= c.latency_ms <= budget for c in first)
+    plain = random_search(space, lambda s: 0.0, predictor.predict_ms, budget, 40, seed=3)
+    assert any(c.latency_ms < 0.9 * budget for c in plain)
+    banded = random_search(space, lambda s: 0.0, predictor.predict_ms, budget, 12, seed=3, band=0.9)
+    assert all(0.9 * budget <= c.latency_ms <= budget for c in banded)
+
+
+def test_band_floor_is_relative_to_the_largest_when_everything_fits():
+    space = wide_space()
+    predictor = FakePredictor(space)
+    largest = predictor.predict_ms(space.largest())
+    assert band_floor(space, predictor.predict_ms, 10 * largest, 0.9) == pytest.approx(0.9 * largest)
+    assert band_floor(space, predictor.predict_ms, 1.0, 0.9) == pytest.approx(0.9)
+    assert band_floor(space, predictor.predict_ms, 1.0, 0.0) == 0.0
 
 
 def test_initial_population_respects_a_tight_budget():

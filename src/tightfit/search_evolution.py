@@ -8,7 +8,10 @@ Regularized (aging) evolution follows Real et al. 2019 (Sec. 2, Algorithm 1): ke
 queue of P models; each cycle samples S of them, mutates the best, appends the child
 and removes the OLDEST (not the worst). Here every member and every child satisfies the
 latency budget: the initial population is drawn within it and a mutation that would
-exceed it is drawn again.
+exceed it is drawn again. Latency is cheap and accuracy is not, so both prefer subnets in
+a band just under the budget (``band``; common practice: within a budget, the larger
+subnet is usually the more accurate), falling back to anything within the budget when the
+band is empty or hard to hit.
 
 Below the algorithms: the accuracy cache (one JSON line per evaluated subnet, so an
 interrupted or repeated search pays only for subnets it has not seen) and memoised latency.
@@ -40,6 +43,7 @@ class EvolutionSettings:
     seed: int = 0
     sample_tries: int = 300       # rejection-sampling attempts before shrinking random draws instead
     redraws: int = 100            # mutation attempts before giving up on a parent this cycle
+    band: float = 0.9             # prefer latency >= band * min(budget, largest's latency); 0 = off
 
 
 @dataclass(frozen=True)
@@ -87,14 +91,17 @@ def shrink(space: SpaceSpec, subnet: Subnet, rng: random.Random) -> Subnet:
 
 
 def sample_within(space: SpaceSpec, rng: random.Random, latency: Latency, budget_ms: float,
-                  tries: int = 300) -> Subnet:
-    """A subnet with latency <= budget: uniform rejection sampling, then (if the budget admits
-    only a sliver of the space) a uniform draw shrunk step by step until it fits.
+                  tries: int = 300, floor_ms: float = 0.0) -> Subnet:
+    """A subnet with floor <= latency <= budget: uniform rejection sampling; with no hit, the
+    floor is dropped, and then (if the budget admits only a sliver of the space) a uniform
+    draw is shrunk step by step until it fits.
     Call fastest_check first: shrinking ends at the smallest subnet, which must fit."""
     for _ in range(tries):
         s = space.sample(rng)
-        if latency(s) <= budget_ms:
+        if floor_ms <= latency(s) <= budget_ms:
             return s
+    if floor_ms > 0:
+        return sample_within(space, rng, latency, budget_ms, tries)
     s = space.sample(rng)
     while latency(s) > budget_ms:
         smaller = shrink(space, s, rng)
@@ -145,24 +152,36 @@ class _Ledger:
         return self.seen[key]
 
 
-def _fresh_within(space: SpaceSpec, rng: random.Random, ledger: _Ledger, budget_ms: float, tries: int) -> Subnet:
+def _fresh_within(space: SpaceSpec, rng: random.Random, ledger: _Ledger, budget_ms: float, tries: int,
+                  floor_ms: float = 0.0) -> Subnet:
     """A within-budget subnet not evaluated yet when one turns up in a few dozen draws."""
-    s = sample_within(space, rng, ledger.latency, budget_ms, tries)
+    s = sample_within(space, rng, ledger.latency, budget_ms, tries, floor_ms)
     for _ in range(50):
         if s.to_key() not in ledger.seen:
             break
-        s = sample_within(space, rng, ledger.latency, budget_ms, tries)
+        s = sample_within(space, rng, ledger.latency, budget_ms, tries, floor_ms)
     return s
 
 
+def band_floor(space: SpaceSpec, latency: Latency, budget_ms: float, band: float) -> float:
+    """Lower edge of the preferred band: band x the budget, or x the largest subnet's latency
+    when the whole space fits."""
+    return band * min(budget_ms, latency(space.largest())) if band > 0 else 0.0
+
+
 def _child(space: SpaceSpec, parent: Subnet, rng: random.Random, ledger: _Ledger, budget_ms: float,
-           cfg: EvolutionSettings) -> Subnet:
-    """Mutate until the child is new and within budget; else a fresh random subnet within budget."""
-    for _ in range(cfg.redraws):
+           cfg: EvolutionSettings, floor_ms: float = 0.0) -> Subnet:
+    """Mutate until the child is new and within budget (the first half of the attempts also
+    in the band); else a fresh random subnet within budget."""
+    fallback = None
+    for i in range(cfg.redraws):
         c = mutate(space, parent, rng, cfg.mutate_prob)
-        if c.to_key() not in ledger.seen and ledger.latency(c) <= budget_ms:
+        if c.to_key() in ledger.seen or ledger.latency(c) > budget_ms:
+            continue
+        if ledger.latency(c) >= floor_ms or i >= cfg.redraws // 2:
             return c
-    return _fresh_within(space, rng, ledger, budget_ms, cfg.sample_tries)
+        fallback = fallback or c
+    return fallback or _fresh_within(space, rng, ledger, budget_ms, cfg.sample_tries, floor_ms)
 
 
 def regularized_evolution(space: SpaceSpec, fitness: Fitness, latency: Latency, budget_ms: float,
@@ -172,15 +191,16 @@ def regularized_evolution(space: SpaceSpec, fitness: Fitness, latency: Latency, 
     fastest_check(space, latency, budget_ms, device)
     rng = random.Random(cfg.seed)
     ledger = _Ledger(fitness, latency, on_eval)
+    floor_ms = band_floor(space, latency, budget_ms, cfg.band)
     population: deque[Candidate] = deque()
     for _ in range(min(cfg.population, cfg.evaluations)):
-        population.append(ledger.evaluate(_fresh_within(space, rng, ledger, budget_ms, cfg.sample_tries), 0))
+        population.append(ledger.evaluate(_fresh_within(space, rng, ledger, budget_ms, cfg.sample_tries, floor_ms), 0))
     cycle, stalls = 0, 0
     while len(ledger.seen) < cfg.evaluations and stalls < 10 * cfg.evaluations:
         tournament = rng.sample(list(population), min(cfg.sample_size, len(population)))
         parent = max(tournament, key=lambda c: c.fitness)
         before = len(ledger.seen)
-        child = ledger.evaluate(_child(space, parent.subnet, rng, ledger, budget_ms, cfg),
+        child = ledger.evaluate(_child(space, parent.subnet, rng, ledger, budget_ms, cfg, floor_ms),
                                 1 + cycle // max(cfg.population, 1))
         stalls += len(ledger.seen) == before  # the budget admits too few subnets to find new ones
         population.append(child)
@@ -191,16 +211,18 @@ def regularized_evolution(space: SpaceSpec, fitness: Fitness, latency: Latency, 
 
 def random_search(space: SpaceSpec, fitness: Fitness, latency: Latency, budget_ms: float, evaluations: int,
                   seed: int = 0, on_eval: Optional[Callable[[Candidate], None]] = None,
-                  device: str = "device", sample_tries: int = 300) -> list[Candidate]:
+                  device: str = "device", sample_tries: int = 300, band: float = 0.0) -> list[Candidate]:
     """Baseline: ``evaluations`` distinct subnets drawn uniformly within the budget (rejection
-    sampling; where the budget admits only a sliver of the space, see sample_within)."""
+    sampling; where the budget admits only a sliver of the space, see sample_within), or
+    within the band under it when ``band`` > 0 (as the evolution draws its first members)."""
     fastest_check(space, latency, budget_ms, device)
     rng = random.Random(seed)
     ledger = _Ledger(fitness, latency, on_eval)
+    floor_ms = band_floor(space, latency, budget_ms, band)
     for _ in range(10 * evaluations):
         if len(ledger.seen) >= evaluations:
             break
-        ledger.evaluate(_fresh_within(space, rng, ledger, budget_ms, sample_tries), 0)
+        ledger.evaluate(_fresh_within(space, rng, ledger, budget_ms, sample_tries, floor_ms), 0)
     return list(ledger.seen.values())
 
 
