@@ -195,6 +195,23 @@ def test_predictor_sums_the_layers_a_subnet_runs(bundle, tmp_path):
         assert pred.adjusted_sum_ms(subnet) == pytest.approx(expected - overheads + overhead(3, 15, False), rel=1e-12)
 
 
+def test_layers_add_their_means_by_default(bundle, tmp_path):
+    """Skewed layer timings (mean > median): the default predictor adds the means, because the
+    mean of a sum is the sum of the means (linearity of expectation; a sum of medians is not
+    the median of the sum); layer_stat="p50_ms" adds the medians."""
+    recipe, _ = load_source(bundle.parent)
+    path = synthetic_table(bundle, tmp_path)
+    table = json.loads(path.read_text())
+    for e in table["entries"].values():
+        if e["kind"] == "layer":
+            e["mean_ms"] = 1.25 * e["p50_ms"]
+    path.write_text(json.dumps(table))
+    s = recipe.space.sample(random.Random(4))
+    means = LatencyPredictor(load_table(path), recipe.space, 3, 15)
+    medians = LatencyPredictor(load_table(path), recipe.space, 3, 15, layer_stat="p50_ms")
+    assert means.layer_sum_ms(s) == pytest.approx(1.25 * medians.layer_sum_ms(s), rel=1e-12)
+
+
 def test_calibration_recovers_a_known_affine_map(bundle, tmp_path):
     """Whole subnets that cost exactly 1.7 x adjusted sum + 0.2 ms: the fit finds that map."""
     recipe, _ = load_source(bundle.parent)

