@@ -65,12 +65,18 @@ def compare(args: argparse.Namespace) -> list[dict]:
         band = random_search(space, fitness, latency, budget, n, seed=seed, device=table.name, band=cfg.band)
         row = {"seed": seed, "evolution": max(c.fitness for c in evo), "random": max(c.fitness for c in rnd[:n]),
                "random_x": max(c.fitness for c in rnd), "random_band": max(c.fitness for c in band),
+               "spread": statistics.quantiles([c.fitness for c in rnd], n=10)[4::4],  # p50, p90 of the draws
                "evo_ms": max(evo, key=lambda c: c.fitness).latency_ms,
                "seconds": time.perf_counter() - t0, "fresh": fitness.fresh - fresh0}
         rows.append(row)
         print(f"seed {seed}: evolution {row['evolution']:.2f}  random {row['random']:.2f}  "
               f"random x{args.factor} {row['random_x']:.2f}  random in band {row['random_band']:.2f}  (evolution's pick predicts {row['evo_ms']:.4f} ms; "
               f"{row['fresh']} new evaluations in {row['seconds']:.0f} s)", flush=True)
+    p = statistics.mean(r["evolution"] for r in rows) / 100
+    se = 100 * (p * (1 - p) / compute.images) ** 0.5
+    print(f"noise: one accuracy on {compute.images} images has a binomial standard error of {se:.2f} points; "
+          f"within the budget, random subnets' accuracies have median "
+          f"{statistics.mean(r['spread'][0] for r in rows):.2f} and p90 {statistics.mean(r['spread'][1] for r in rows):.2f}")
     return rows
 
 
