@@ -147,5 +147,20 @@ def write_page(result: dict, docs: Path) -> Path:
     return write_text(docs / "benchmarks.md", page_text(result, name) + notes)
 
 
+def main(argv: list[str] | None = None) -> int:
+    import argparse
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("result", type=Path, help="benchmark result JSON (benchmarks/results/fashion-mnist.json)")
+    ap.add_argument("docs", type=Path, nargs="?", default=Path("docs"), help="folder for the page (default docs)")
+    args = ap.parse_args(argv)
+    try:
+        result = json.loads(args.result.read_text("utf-8"))
+    except (OSError, json.JSONDecodeError) as e:
+        print(f"error: cannot read {args.result}: {e}", file=sys.stderr)
+        return 2
+    print(write_page(result, args.docs))
+    return 0
+
+
 if __name__ == "__main__":
-    print(write_page(json.loads(Path(sys.argv[1]).read_text()), Path(sys.argv[2]) if len(sys.argv) > 2 else Path("docs")))
+    sys.exit(main())
