@@ -291,3 +291,8 @@ def test_profile_host_end_to_end(run_dir, tmp_path):
     assert result["subnets"] == 5 and not {r["key"] for r in result["rows"]} & set(pred.calibration_keys)
     assert -1 <= result["p50"]["kendall_tau"] <= 1 and result["p50"]["mape"] >= 0
     assert (run_dir / "latency" / "checks" / "testhost.json").is_file()
+    # taking the calibration subnets' drift out rescales every prediction by the same factor
+    drift = 1 + result["session_drift"]
+    rescaled = [abs(drift * r["predicted_p50_ms"] - r["measured_p50_ms"]) / r["measured_p50_ms"] for r in result["rows"]]
+    assert result["p50_drift_corrected"]["mape"] == pytest.approx(100 * sum(rescaled) / len(rescaled))
+    assert result["p50_drift_corrected"]["kendall_tau"] == pytest.approx(result["p50"]["kendall_tau"])

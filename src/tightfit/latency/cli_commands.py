@@ -38,7 +38,8 @@ def format_check(result: dict) -> str:
     lines += ["", f"device {result['device']}: {result['subnets']} held-out subnets, calibration "
                   f"{cal['kind']} (a={cal['a']:.3f}, b={cal['b']:.4f} ms, leave-one-out MAPE "
                   f"{cal['loo_mape'] if cal['loo_mape'] is not None else float('nan'):.2f} %)"]
-    for label, key in (("p50", "p50"), (f"p{pct}", "budget_stat"), ("raw layer sum vs p50", "uncalibrated_layer_sum")):
+    for label, key in (("p50", "p50"), (f"p{pct}", "budget_stat"), ("raw layer sum vs p50", "uncalibrated_layer_sum"),
+                       ("p50, drift taken out", "p50_drift_corrected")):
         e = result[key]
         lines.append(f"  {label:<22} MAPE {e['mape']:6.2f} %   max {e['max_ape']:6.2f} %   Kendall tau {e['kendall_tau']:.3f}")
     if drift is not None:

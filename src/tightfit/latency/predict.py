@@ -257,6 +257,7 @@ def check_predictor(run_dir, table_path, n: int = 30, seed: int = 1, protocol=No
                      **{f"predicted_{t}": p.predict_ms(s) for t, p in predictors.items()},
                      **{f"measured_{t}": m[t] for t in predictors}, "stable": m["stable"]})
     ref_ratio = [measured[p]["p50_ms"] / table.subnet_entries()[k]["p50_ms"] for k, p in zip(refs, paths[len(subnets):])]
+    drift = float(np.median(ref_ratio)) if ref_ratio else 1.0
     result = {
         "table": str(table.path), "device": table.name, "subnets": len(rows), "seed": seed,
         "protocol": protocol.to_dict(), "budget_percentile": protocol.percentile,
@@ -265,7 +266,9 @@ def check_predictor(run_dir, table_path, n: int = 30, seed: int = 1, protocol=No
         "budget_stat": _errors([r["predicted_budget_stat_ms"] for r in rows],
                                [r["measured_budget_stat_ms"] for r in rows]),
         "uncalibrated_layer_sum": _errors([r["layer_sum_ms"] for r in rows], [r["measured_p50_ms"] for r in rows]),
-        "session_drift": float(np.median(ref_ratio)) - 1.0 if ref_ratio else None,
+        # the machine's drift since profiling, as the calibration subnets show it, taken out
+        "p50_drift_corrected": _errors([drift * r["predicted_p50_ms"] for r in rows], [r["measured_p50_ms"] for r in rows]),
+        "session_drift": drift - 1.0 if ref_ratio else None,
         "load_average": {"before": list(load_before), "after": list(os.getloadavg())},
         "rows": rows,
     }
