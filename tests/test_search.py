@@ -110,7 +110,9 @@ def test_evolution_beats_random_at_equal_evaluations():
 
 def test_band_draws_first_members_just_under_the_budget():
     # Latency is cheap, accuracy is not: the first members come from [0.9 x budget, budget]
-    # when that band holds subnets, and the unbanded random baseline does not.
+    # when that band holds subnets, and the unbanded random baseline does not. (Common practice
+    # in latency-constrained search: within a budget the larger subnet is usually the more
+    # accurate, so evaluations are spent near the constraint's edge.)
     space = wide_space()
     predictor = FakePredictor(space)
     budget = 2.0
@@ -124,6 +126,8 @@ def test_band_draws_first_members_just_under_the_budget():
 
 
 def test_band_floor_is_relative_to_the_largest_when_everything_fits():
+    # A budget above the whole space must not make the band empty (then every draw would fall
+    # back to plain sampling): the band is taken from the largest subnet's latency instead.
     space = wide_space()
     predictor = FakePredictor(space)
     largest = predictor.predict_ms(space.largest())
