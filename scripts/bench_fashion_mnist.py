@@ -321,6 +321,7 @@ def main(argv: list[str] | None = None) -> int:
     run.mkdir(parents=True, exist_ok=True)
     state = State(run / "bench_state.json")
     t0 = time.perf_counter()
+    started_at = state.phase("record commit", git_commit)  # the code the run starts with; a resume keeps it
     state.phase("train supernet", lambda: train_supernet(recipe, run, recipe_path, args.smoke))
     table = run / "latency" / "this-host.json"
     state.phase("profile this machine", lambda: str(profile_host(run, name="this-host", quick=args.smoke,
@@ -341,7 +342,7 @@ def main(argv: list[str] | None = None) -> int:
                    "search_timing": {str(p["budget_ms"]): p["timing"] for p in picks},
                    "phases": {k: {"wall_s": round(v["wall_s"], 1), "cpu_s": round(v["cpu_s"], 1)} for k, v in state.data.items()},
                    "device": describe_device(), "software": software_versions(), "recipe": recipe.to_dict(),
-                   "recipe_hash": recipe.hash(), "smoke": args.smoke, "commit": git_commit(),
+                   "recipe_hash": recipe.hash(), "smoke": args.smoke, "commit": started_at, "commit_at_end": git_commit(),
                    "command": "python scripts/bench_fashion_mnist.py " + " ".join(argv if argv is not None else sys.argv[1:]),
                    "wall_s_this_invocation": round(time.perf_counter() - t0, 1)})
     from tightfit.atomic import write_json

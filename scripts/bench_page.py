@@ -10,6 +10,12 @@ import sys
 from pathlib import Path
 
 
+def _end_commit(result: dict) -> str:
+    """Names the commit at the end when the run was resumed or the tree changed while it ran."""
+    end = result.get("commit_at_end")
+    return f", finished at `{end}`" if end and end != result["commit"] else ""
+
+
 def plot(result: dict, path: Path) -> Path:
     import matplotlib
     matplotlib.use("Agg")
@@ -57,7 +63,8 @@ def page_text(result: dict, plot_name: str) -> str:
         "# Benchmark: one supernet vs a hand-scaled family (Fashion-MNIST, CPU)",
         "",
         "Written by `scripts/bench_fashion_mnist.py` from one run"
-        f" (commit `{result['commit']}`{', SMOKE setting: not a result' if result['smoke'] else ''}).",
+        f" (started at commit `{result['commit']}`{_end_commit(result)}"
+        f"{', SMOKE setting: not a result' if result['smoke'] else ''}).",
         f"Reproduce: `{result['command']}` (figures: `benchmarks/results/fashion-mnist.json`).",
         "",
         "Latency and accuracy here were measured on one machine under the conditions below; they are not a "

@@ -48,4 +48,8 @@ def test_benchmark_smoke(tmp_path):
                             "--run", str(tmp_path / "run"), "--out", str(out), "--docs", str(docs)],
                            capture_output=True, text=True, timeout=300)
     assert again.returncode == 0 and "done earlier" in again.stdout
-    assert json.loads(out.read_text())["budgets"] == result["budgets"]
+    resumed = json.loads(out.read_text())
+    assert resumed["budgets"] == result["budgets"]
+    # provenance: the commit the run started at is kept across a resume (common practice: a result
+    # names the code that produced it), and the commit at the end is recorded beside it
+    assert resumed["commit"] == result["commit"] and "commit_at_end" in resumed

@@ -128,17 +128,20 @@ class RunAccuracy:
     3-4x faster than eager torch here, same predictions (export parity <= 1e-4 is checked
     for every pick by tightfit.cut). Backend "torch" is tightfit.recalibrate.subnet_accuracy."""
 
-    def __init__(self, run: Any, ds: Any, val_images: int = 0, backend: str = "onnxruntime"):
+    def __init__(self, run: Any, ds: Any, val_images: int = 0, backend: str = "onnxruntime", skip: int = 0):
         from tightfit.data.dataset import calibration_batches, eval_batches
         if backend not in ("onnxruntime", "torch"):
             raise UserError(f"evaluation backend {backend!r} is unknown: use 'onnxruntime' or 'torch'")
         cfg = run.recipe
         self.run, self.backend = run, backend
         self.calib = calibration_batches(ds, cfg.train.batch_size, cfg.train.recalibration_batches, cfg.seed)
-        self.images = len(ds.val_y) if val_images <= 0 else min(val_images, len(ds.val_y))
-        # The validation split is a random carve, so its first N images are a uniform subsample.
-        self.val = list(eval_batches(ds.val_x[:self.images], ds.val_y[:self.images], ds,
-                                     max(cfg.train.eval_batch_size, 512)))
+        self.skip = skip
+        rest = len(ds.val_y) - skip
+        self.images = rest if val_images <= 0 else min(val_images, rest)
+        # The validation split is a random carve, so any run of N images in it is a uniform subsample;
+        # ``skip`` gives images the search did not see, to re-score its picks without selection bias.
+        part = slice(skip, skip + self.images)
+        self.val = list(eval_batches(ds.val_x[part], ds.val_y[part], ds, max(cfg.train.eval_batch_size, 512)))
         self.recal_s = self.export_s = self.val_s = 0.0
         self.recalibrate = Recalibrator(run.supernet, self.calib)
 
@@ -148,7 +151,8 @@ class RunAccuracy:
         from tightfit.rundir import checkpoint_path
         weights = hashlib.sha256(checkpoint_path(run_dir).read_bytes()).hexdigest()[:16]
         return {"recipe_hash": self.run.recipe.hash(), "weights": weights,
-                "recalibration_batches": len(self.calib), "images": self.images}
+                "recalibration_batches": len(self.calib), "images": self.images,
+                **({"skip": self.skip} if self.skip else {})}
 
     def phases(self, latency: CachedLatency) -> dict[str, float]:
         return {"BN recalibration": self.recal_s, "export": self.export_s, "validation": self.val_s,
