@@ -486,3 +486,23 @@ def test_widened_limit_only_for_a_verified_pick_far_under_budget():
     assert widened_limit({**row, "fits": False}, 1.0, 1.05) is None                # over budget: never widen
     assert widened_limit({**row, "predicted_ms": 0.77}, 1.0, 1.05) is None         # prediction was right: the
     #                                                                                space has nothing closer
+
+
+def test_held_out_accuracy_uses_the_images_the_search_did_not(tiny_run):
+    """RunAccuracy(skip=N) scores on validation images N.. only; scores on the two parts weigh up to
+    the score on the whole split (accuracy is a count over images: common practice), and the cache tag
+    tells the parts apart so a held-out figure is never served as a search figure."""
+    from tightfit.data.dataset import load_dataset
+    from tightfit.rundir import load_trained
+    from tightfit.search_fitness import RunAccuracy
+    run = load_trained(tiny_run)
+    ds = load_dataset(run.recipe.data, run.recipe.seed)
+    n_val = len(ds.val_y)
+    first = RunAccuracy(run, ds, val_images=n_val // 3)
+    rest = RunAccuracy(run, ds, skip=first.images)
+    whole = RunAccuracy(run, ds)
+    assert first.images + rest.images == whole.images == n_val
+    subnet = run.recipe.space.middle()
+    a, b, w = (r(subnet)["val_acc"] for r in (first, rest, whole))
+    assert (a * first.images + b * rest.images) / n_val == pytest.approx(w, abs=1e-3)  # figures kept to 4 decimals
+    assert rest.tag(tiny_run)["skip"] == first.images and "skip" not in first.tag(tiny_run)
