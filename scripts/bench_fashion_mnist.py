@@ -1,6 +1,6 @@
 """Benchmark: one supernet + search vs a hand-scaled family trained one by one (Fashion-MNIST, CPU).
 
-    .venv/bin/python scripts/bench_fashion_mnist.py                       # the full run (83 min on 2 cores, measured)
+    .venv/bin/python scripts/bench_fashion_mnist.py                       # the full run (83 and 102 min on 2 cores, measured)
     .venv/bin/python scripts/bench_fashion_mnist.py --smoke --run runs/bench-smoke --out /tmp/smoke.json
 
 Phases (each recorded in RUN/bench_state.json as it finishes, so an interrupted run resumes
