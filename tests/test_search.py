@@ -506,3 +506,8 @@ def test_held_out_accuracy_uses_the_images_the_search_did_not(tiny_run):
     a, b, w = (r(subnet)["val_acc"] for r in (first, rest, whole))
     assert (a * first.images + b * rest.images) / n_val == pytest.approx(w, abs=1e-3)  # figures kept to 4 decimals
     assert rest.tag(tiny_run)["skip"] == first.images and "skip" not in first.tag(tiny_run)
+    # a held-out figure in the cache file is not served to a search with the same image count
+    from tightfit.search_evolution import AccuracyCache
+    path = tiny_run / "held_out_cache.jsonl"
+    AccuracyCache(path, {**rest.tag(tiny_run), "images": 7}).put("k", {"val_acc": 1.0})
+    assert AccuracyCache(path, {**first.tag(tiny_run), "images": 7}).get("k") is None

@@ -270,8 +270,9 @@ class AccuracyCache:
 
     def __init__(self, path: Path, tag: dict[str, Any]):
         self.path, self.tag = Path(path), dict(tag)
-        self.entries = {r["key"]: r for r in read_jsonl(self.path)
-                        if "key" in r and all(r.get(k) == v for k, v in self.tag.items())}
+        self.entries = {r["key"]: r for r in read_jsonl(self.path)  # held-out scores (skip) never serve a search
+                        if "key" in r and all(r.get(k) == v for k, v in self.tag.items())
+                        and r.get("skip", 0) == self.tag.get("skip", 0)}
 
     def get(self, key: str) -> Optional[dict[str, Any]]:
         return self.entries.get(key)
