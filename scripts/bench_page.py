@@ -131,6 +131,7 @@ def page_text(result: dict, plot_name: str) -> str:
         "",
         *[f"- {k} ms: {' '.join(v)}" for k, v in result["search_timing"].items()],
         "",
+        *_drift_lines(result.get("session_drift") or {}),
         "## Machine and software",
         "",
         f"- CPU: {dev.get('cpu_model')}, {dev.get('logical_cores', dev.get('cores'))} logical cores; OS: {dev.get('os')}",
@@ -171,3 +172,12 @@ def main(argv: list[str] | None = None) -> int:
 
 if __name__ == "__main__":
     sys.exit(main())
+
+
+def _drift_lines(drift: dict) -> list[str]:
+    """The machine's speed before each budget's search against the profile (None: not checked)."""
+    if not drift:
+        return []
+    shown = ", ".join(f"{k} ms {'not checked' if v is None else f'{v:.3f} x'}" for k, v in drift.items())
+    return [f"Machine speed before each budget's search, as the table's calibration subnets measured "
+            f"(time now / time when profiled; beyond ±3 % the search limit is rescaled): {shown}.", ""]

@@ -296,3 +296,10 @@ def test_profile_host_end_to_end(run_dir, tmp_path):
     rescaled = [abs(drift * r["predicted_p50_ms"] - r["measured_p50_ms"]) / r["measured_p50_ms"] for r in result["rows"]]
     assert result["p50_drift_corrected"]["mape"] == pytest.approx(100 * sum(rescaled) / len(rescaled))
     assert result["p50_drift_corrected"]["kendall_tau"] == pytest.approx(result["p50"]["kendall_tau"])
+    # the search's drift check measures the table's calibration subnets again, in fresh processes: a ratio
+    # near 1 on the same machine minutes later (wide bounds: a shared CI machine's speed moves by tens of %)
+    from tightfit.latency.drift import measure_drift
+    now = measure_drift(load_source(run_dir)[1], pred.table, pred.calibration_keys, recipe.data.channels,
+                        recipe.data.image_size)
+    assert now is not None and 0.2 < now < 5
+    assert measure_drift(None, pred.table, [], recipe.data.channels, recipe.data.image_size) is None

@@ -480,12 +480,28 @@ def test_widened_limit_only_for_a_verified_pick_far_under_budget():
     # of correcting a biased predictor by the ratio observed on measured candidates).
     from tightfit.search import UNDER_USE, widened_limit
     row = {"fits": True, "budget_ms": 1.0, "predicted_ms": 0.95, "measured": {"budget_stat_ms": 0.76}}
-    assert widened_limit(row, 1.0, 1.05) == pytest.approx(1.05 / 0.8)   # 76 % use, measures 0.8 x prediction
-    assert widened_limit({**row, "measured": {"budget_stat_ms": UNDER_USE}}, 1.0, 1.05) is None  # uses enough
-    assert widened_limit({**row, "measured": None}, 1.0, 1.05) is None             # unverified (another device)
-    assert widened_limit({**row, "fits": False}, 1.0, 1.05) is None                # over budget: never widen
-    assert widened_limit({**row, "predicted_ms": 0.77}, 1.0, 1.05) is None         # prediction was right: the
-    #                                                                                space has nothing closer
+    assert widened_limit(row, 1.05, 1.05) == pytest.approx(1.05 / 0.8)  # 76 % use, measures 0.8 x prediction
+    assert widened_limit({**row, "measured": {"budget_stat_ms": UNDER_USE}}, 1.05, 1.05) is None  # uses enough
+    assert widened_limit({**row, "measured": None}, 1.05, 1.05) is None            # unverified (another device)
+    assert widened_limit({**row, "fits": False}, 1.05, 1.05) is None               # over budget: never widen
+    assert widened_limit({**row, "predicted_ms": 0.77}, 1.05, 1.05) is None        # prediction was right: the
+    #                                                                               space has nothing closer
+    # the drift check already searched up to base / 0.8: searching the same limit again would find nothing new
+    assert widened_limit(row, 1.05, 1.05 / 0.8) is None
+    assert widened_limit(row, 1.05, 1.05 / 0.9) == pytest.approx(1.05 / 0.8)  # it corrected only part of it
+
+
+def test_drifted_limit_follows_the_machine_and_ignores_noise():
+    """Predictions are in the table's time; a machine now 25 % slower allows predictions up to limit / 1.25
+    (a ratio of times: arithmetic). Within the 3 % dead band the limit stays put (this project's choice: the
+    spread of repeated medians on a quiet 2-core VM is a few percent, measured)."""
+    from tightfit.latency.drift import DEADBAND, drift_ratio, drifted_limit
+    assert drift_ratio([1.25, 2.5, 0.6], [1.0, 2.0, 0.6]) == pytest.approx(1.25)   # the median ratio, not the mean
+    assert drift_ratio([], []) is None
+    assert drifted_limit(1.0, 1.25) == pytest.approx(0.8)
+    assert drifted_limit(1.0, 0.8) == pytest.approx(1.25)
+    assert drifted_limit(1.0, 1.0 + DEADBAND / 2) == 1.0
+    assert drifted_limit(1.0, None) == 1.0
 
 
 def test_held_out_accuracy_uses_the_images_the_search_did_not(tiny_run):

@@ -18,6 +18,7 @@ from typing import Any, Callable, Optional
 
 from tightfit.atomic import write_json, write_text
 from tightfit.errors import UserError
+from tightfit.latency.drift import drifted_limit, measure_drift
 from tightfit.search_evolution import (AccuracyCache, CachedAccuracy, CachedLatency, Candidate, EvolutionSettings,
                                        append_jsonl, fastest_check, pareto_front, read_jsonl, regularized_evolution)
 from tightfit.search_fitness import RunAccuracy
@@ -59,6 +60,7 @@ class SearchSettings:
     backend: str = "onnxruntime"  # validation pass: "onnxruntime" (fast) or "torch"
     slack: Optional[float] = None # search up to budget x (1 + slack) when picks are measured here;
     #                               None: the predictor's leave-one-out error, clamped to 5-25 %
+    drift_check: bool = True      # re-measure the table's calibration subnets before each budget (this host only)
 
     def evolution(self) -> EvolutionSettings:
         n = self.evaluations or self.population * (self.generations + 1)
@@ -229,7 +231,12 @@ def _search_device(ctx: _Context, table: Any, predictor: Any, budgets: list[floa
                              if verifiable else "another machine: picks by predicted latency, to be verified there"))
     for b in budgets:
         drop_logged(out / "candidates.jsonl", table.name, b)
-        limit = b * (1 + slack)
+        drift = _drift(ctx, table, predictor) if verifiable and ctx.settings.drift_check else None
+        base = b * (1 + slack)
+        limit = drifted_limit(base, drift)
+        if limit != base:
+            say(f"  {budget_label(b)}: this machine now runs the table's calibration subnets at {drift:.2f} x their "
+                f"profiled time: searching up to {limit:.4g} ms predicted")
         for attempt in range(2):
             before = compute.phases(latency)
             result = search_budget(ctx.run.recipe.space, ctx.fitness, latency, b, table.name, ctx.settings,
@@ -239,7 +246,8 @@ def _search_device(ctx: _Context, table: Any, predictor: Any, budgets: list[floa
             write_front(out / f"front-{safe_name(table.name)}.json", table.name, out / "candidates.jsonl")
             row = choose_and_export(ctx.run, ctx.ds, table, ranked_within(seen, limit), b,
                                     ctx.settings.top, ctx.run_dir, ctx.fitness, latency, say, verifiable)
-            wider = widened_limit(row, b, limit) if attempt == 0 else None
+            row["session_drift"] = drift
+            wider = widened_limit(row, base, limit) if attempt == 0 else None
             if wider is None:
                 break
             say(f"  the pick uses {row_use(row):.0%} of the budget and measures "
@@ -251,6 +259,12 @@ def _search_device(ctx: _Context, table: Any, predictor: Any, budgets: list[floa
     return picks
 
 
+def _drift(ctx: _Context, table: Any, predictor: Any) -> Optional[float]:
+    """This machine's speed now against the table's, from its calibration subnets (None without them)."""
+    cfg = ctx.run.recipe
+    return measure_drift(ctx.run.supernet, table, getattr(predictor, "calibration_keys", []), cfg.data.channels, cfg.data.image_size)
+
+
 UNDER_USE = 0.85  # a verified pick below this share of its budget triggers one wider search
 
 
@@ -258,15 +272,16 @@ def row_use(row: dict[str, Any]) -> float:
     return row["measured"]["budget_stat_ms"] / row["budget_ms"]
 
 
-def widened_limit(row: dict[str, Any], budget_ms: float, limit_ms: float) -> Optional[float]:
+def widened_limit(row: dict[str, Any], base_ms: float, limit_ms: float) -> Optional[float]:
     """Where the predictor overestimates a verified pick so much that it uses less than
-    UNDER_USE of its budget, the predicted limit scaled by measured/predicted (else None):
-    the search may have left faster-than-predicted, more accurate subnets out."""
+    UNDER_USE of its budget, the uncorrected limit `base_ms` scaled by measured/predicted,
+    if that is wider than the `limit_ms` searched (else None): the search may have left
+    faster-than-predicted, more accurate subnets out."""
     m = row.get("measured")
     if not (m and row.get("fits") and row.get("predicted_ms")) or row_use(row) >= UNDER_USE:
         return None
-    ratio = m["budget_stat_ms"] / row["predicted_ms"]
-    return limit_ms / ratio if ratio < 0.97 else None
+    wider = base_ms / (m["budget_stat_ms"] / row["predicted_ms"])
+    return wider if wider > 1.03 * limit_ms else None
 
 
 def merge_picks(path: Path, rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
@@ -324,7 +339,8 @@ def _cmd_search(args: Any) -> int:
                               generations=_positive("generations", args.generations, 0),
                               evaluations=_positive("evaluations", args.evaluations, 0), seed=args.seed,
                               top=_positive("top", args.top), val_images=_positive("val-images", args.val_images, 0),
-                              backend=args.eval_backend, slack=_slack(args.slack))
+                              backend=args.eval_backend, slack=_slack(args.slack),
+                              drift_check=not args.no_drift_check)
     rows = run_search(args.run, args.table, args.budget, settings, progress=not args.quiet)
     print(format_picks(rows))
     print(f"picks: {Path(args.run) / 'search' / 'picks.json'}")
@@ -353,6 +369,9 @@ def add_search_parser(sub: Any) -> None:
     s.add_argument("--slack", type=float, default=None,
                    help="search up to this many percent over each budget (predicted) when picks are measured here "
                         "(default: the predictor's leave-one-out error, 5-25)")
+    s.add_argument("--no-drift-check", action="store_true",
+                   help="do not re-measure the table's calibration subnets before each budget (on this machine, "
+                        "a few seconds per budget) to correct for the machine's speed having changed since profiling")
     s.add_argument("--eval-backend", choices=("onnxruntime", "torch"), default="onnxruntime",
                    help="run the validation pass in ONNX Runtime (default, faster) or torch")
     s.add_argument("--threads", type=int, default=None, help="torch/ORT CPU threads for evaluation (default: all cores)")

@@ -220,12 +220,9 @@ def check_predictor(run_dir, table_path, n: int = 30, seed: int = 1, protocol=No
     import tempfile
     from pathlib import Path
 
-    from tqdm import tqdm
-
     from tightfit.atomic import write_json
-    from tightfit.export import onnx_bytes
-    from tightfit.extract import extract_subnet
-    from tightfit.latency.probe import load_source, single_thread
+    from tightfit.latency.drift import drift_ratio, write_subnet_onnx
+    from tightfit.latency.probe import load_source
     from tightfit.ondevice.measure_worker import stderr_progress
     from tightfit.ondevice.protocol import Protocol, measure_repeated
     if n < 5:
@@ -242,12 +239,8 @@ def check_predictor(run_dir, table_path, n: int = 30, seed: int = 1, protocol=No
                         "too few to check a predictor")
     load_before = os.getloadavg()
     with tempfile.TemporaryDirectory(prefix="tightfit-check-") as tmp:
-        paths = []
         todo = subnets + [Subnet.from_key(k) for k in refs]
-        with single_thread():
-            for i, s in enumerate(tqdm(todo, desc="export", unit="model", disable=not progress)):
-                paths.append(str(Path(tmp) / f"{i}.onnx"))
-                Path(paths[-1]).write_bytes(onnx_bytes(extract_subnet(supernet, s), chs, size))
+        paths = write_subnet_onnx(supernet, todo, Path(tmp), chs, size, progress)
         measured = measure_repeated(paths, protocol, int(table.protocol.get("chunk", 10)),
                                     progress=stderr_progress("check") if progress else None)
     rows = []
@@ -256,8 +249,10 @@ def check_predictor(run_dir, table_path, n: int = 30, seed: int = 1, protocol=No
         rows.append({"key": s.to_key(), "layer_sum_ms": predictors["p50_ms"].layer_sum_ms(s),
                      **{f"predicted_{t}": p.predict_ms(s) for t, p in predictors.items()},
                      **{f"measured_{t}": m[t] for t in predictors}, "stable": m["stable"]})
-    ref_ratio = [measured[p]["p50_ms"] / table.subnet_entries()[k]["p50_ms"] for k, p in zip(refs, paths[len(subnets):])]
-    drift = float(np.median(ref_ratio)) if ref_ratio else 1.0
+    ref_paths = paths[len(subnets):]
+    drift_or_none = drift_ratio([measured[p]["p50_ms"] for p in ref_paths],
+                                [float(table.subnet_entries()[k]["p50_ms"]) for k in refs])
+    drift = 1.0 if drift_or_none is None else drift_or_none
     result = {
         "table": str(table.path), "device": table.name, "subnets": len(rows), "seed": seed,
         "protocol": protocol.to_dict(), "budget_percentile": protocol.percentile,
@@ -268,7 +263,7 @@ def check_predictor(run_dir, table_path, n: int = 30, seed: int = 1, protocol=No
         "uncalibrated_layer_sum": _errors([r["layer_sum_ms"] for r in rows], [r["measured_p50_ms"] for r in rows]),
         # the machine's drift since profiling, as the calibration subnets show it, taken out
         "p50_drift_corrected": _errors([drift * r["predicted_p50_ms"] for r in rows], [r["measured_p50_ms"] for r in rows]),
-        "session_drift": drift - 1.0 if ref_ratio else None,
+        "session_drift": None if drift_or_none is None else drift - 1.0,
         "load_average": {"before": list(load_before), "after": list(os.getloadavg())},
         "rows": rows,
     }
