@@ -61,6 +61,7 @@ class SearchSettings:
     slack: Optional[float] = None # search up to budget x (1 + slack) when picks are measured here;
     #                               None: the predictor's leave-one-out error, clamped to 5-25 %
     drift_check: bool = True      # re-measure the table's calibration subnets before each budget (this host only)
+    guard: float = 0.05           # a measured pick must fit budget x (1 - guard): later sessions measure the tail slower
 
     def evolution(self) -> EvolutionSettings:
         n = self.evaluations or self.population * (self.generations + 1)
@@ -245,7 +246,8 @@ def _search_device(ctx: _Context, table: Any, predictor: Any, budgets: list[floa
             seen += result.candidates
             write_front(out / f"front-{safe_name(table.name)}.json", table.name, out / "candidates.jsonl")
             row = choose_and_export(ctx.run, ctx.ds, table, ranked_within(seen, limit), b,
-                                    ctx.settings.top, ctx.run_dir, ctx.fitness, latency, say, verifiable)
+                                    ctx.settings.top, ctx.run_dir, ctx.fitness, latency, say, verifiable,
+                                    guard=ctx.settings.guard)
             row["session_drift"] = drift
             wider = widened_limit(row, base, limit) if attempt == 0 else None
             if wider is None:
@@ -329,6 +331,12 @@ def _slack(percent: Optional[float]) -> Optional[float]:
     return None if percent is None else percent / 100
 
 
+def _guard(percent: float) -> float:
+    if not 0 <= percent < 50:
+        raise UserError(f"--guard {percent:g} must be a percentage from 0 to below 50")
+    return percent / 100
+
+
 def _cmd_search(args: Any) -> int:
     if args.threads:
         import torch
@@ -340,7 +348,7 @@ def _cmd_search(args: Any) -> int:
                               evaluations=_positive("evaluations", args.evaluations, 0), seed=args.seed,
                               top=_positive("top", args.top), val_images=_positive("val-images", args.val_images, 0),
                               backend=args.eval_backend, slack=_slack(args.slack),
-                              drift_check=not args.no_drift_check)
+                              drift_check=not args.no_drift_check, guard=_guard(args.guard))
     rows = run_search(args.run, args.table, args.budget, settings, progress=not args.quiet)
     print(format_picks(rows))
     print(f"picks: {Path(args.run) / 'search' / 'picks.json'}")
@@ -369,6 +377,9 @@ def add_search_parser(sub: Any) -> None:
     s.add_argument("--slack", type=float, default=None,
                    help="search up to this many percent over each budget (predicted) when picks are measured here "
                         "(default: the predictor's leave-one-out error, 5-25)")
+    s.add_argument("--guard", type=float, default=5.0,
+                   help="a pick measured here must fit this many percent under its budget (default 5): the same "
+                        "machine measured the tail 8-12 %% slower in a later session on a busy day")
     s.add_argument("--no-drift-check", action="store_true",
                    help="do not re-measure the table's calibration subnets before each budget (on this machine, "
                         "a few seconds per budget) to correct for the machine's speed having changed since profiling")
