@@ -233,7 +233,8 @@ def _search_device(ctx: _Context, table: Any, predictor: Any, budgets: list[floa
     for b in budgets:
         drop_logged(out / "candidates.jsonl", table.name, b)
         drift = _drift(ctx, table, predictor) if verifiable and ctx.settings.drift_check else None
-        base = b * (1 + slack)
+        # picks measured here must fit budget x (1 - guard): search around that, not the budget itself
+        base = b * (1 - (ctx.settings.guard if verifiable else 0.0)) * (1 + slack)
         limit = drifted_limit(base, drift)
         if limit != base:
             say(f"  {budget_label(b)}: this machine now runs the table's calibration subnets at {drift:.2f} x their "
