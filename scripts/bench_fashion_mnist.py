@@ -131,7 +131,8 @@ def search(run: Path, table: Path, budgets: list[float], smoke: bool) -> list[di
     print(format_picks(picks))
     return [{"budget_ms": p["budget_ms"], "key": p["key"], "export_dir": p["export_dir"], "val_acc": p["val_acc"],
              "fits": p["fits"], "search_s": t[str(p["budget_ms"])], "session_drift": p.get("session_drift"),
-             "timing": [ln.strip() for ln in said.get(str(p["budget_ms"]), []) if "evaluations/s" in ln]} for p in picks]
+             "timing": [ln.strip() for ln in said.get(str(p["budget_ms"]), [])
+                        if any(w in ln for w in ("evaluations/s", "drift check", "after the search"))]} for p in picks]
 
 
 def train_member(recipe, member, family_dir: Path, smoke: bool) -> dict:

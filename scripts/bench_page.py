@@ -129,7 +129,7 @@ def page_text(result: dict, plot_name: str) -> str:
         "",
         "Search timing per budget (from `tightfit search`):",
         "",
-        *[f"- {k} ms: {' '.join(v)}" for k, v in result["search_timing"].items()],
+        *[f"- {k} ms: {'; '.join(v)}" for k, v in result["search_timing"].items()],
         "",
         *_drift_lines(result.get("session_drift") or {}),
         "## Machine and software",

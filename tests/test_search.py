@@ -458,6 +458,17 @@ def test_search_verify_export_end_to_end(tiny_run, monkeypatch, capsys):
         assert m["sha256"] == hashlib.sha256((folder / "model.onnx").read_bytes()).hexdigest()
         assert m["architecture"]["key"] == p["key"] and m["budget"]["device"] == p["device"]
         assert m["accuracy"]["test"]["images"] > 0 and (folder / "state_dict.pt").is_file()
+    # The manifest scores the shipped file in ONNX Runtime; eager torch on the same recalibrated
+    # static net (tightfit.cut, validate=True) must agree, give or take one image whose top two
+    # logits are within the export's parity tolerance (onnxruntime vs torch, reference libraries).
+    from tightfit.cut import cut_one
+    from tightfit.data.dataset import load_dataset
+    run = load_trained(tiny_run)
+    ds = load_dataset(run.recipe.data, run.recipe.seed)
+    torch_cut, _ = cut_one(run, ds, "check", space.parse_key(mine["key"]), tiny_run / "check")
+    shipped = json.loads((Path(mine["export_dir"]) / "manifest.json").read_text())["accuracy"]["validation"]
+    assert shipped["images"] == len(ds.val_y)
+    assert abs(shipped["top1"] - torch_cut.val_acc) <= 100.0 / len(ds.val_y) + 1e-9
     rows = [json.loads(line) for line in (tiny_run / "search" / "candidates.jsonl").read_text().splitlines()]
     assert all(r["predicted_ms"] <= r["limit_ms"] for r in rows)
     here_rows = [r for r in rows if r["device"] == "this-host"]

@@ -27,7 +27,7 @@ class CutResult:
     key: str
     params: int
     macs: int
-    val_acc: float
+    val_acc: float | None         # None when cut without the validation pass (search candidates)
     onnx_path: Path
     parity: float                 # max |ORT - torch| over batch 1 and 7
     p50_ms: float | None = None
@@ -42,15 +42,18 @@ def resolve_subnet(run: TrainedRun, spec: str) -> tuple[str, Subnet]:
     return spec, space.parse_key(spec)
 
 
-def cut_one(run: TrainedRun, ds: Dataset, name: str, subnet: Subnet, out_dir: Path) -> tuple[CutResult, StaticNet]:
-    """Recalibrated static network for ``subnet``, its ONNX file in out_dir/name, and its figures."""
+def cut_one(run: TrainedRun, ds: Dataset, name: str, subnet: Subnet, out_dir: Path,
+            validate: bool = True) -> tuple[CutResult, StaticNet]:
+    """Recalibrated static network for ``subnet``, its ONNX file in out_dir/name, and its figures.
+    ``validate=False`` skips the full validation pass: the search cuts several candidates to
+    measure them and scores only the one it picks (on the ONNX file it ships)."""
     cfg, sn = run.recipe, run.supernet
     calib = calibration_batches(ds, cfg.train.batch_size, cfg.train.recalibration_batches, cfg.seed)
     sn.set_subnet(subnet)
     with preserved_bn_stats(sn):
         recalibrate_bn(sn, calib)
         net = extract_subnet(sn, subnet)
-    val = accuracy(net, eval_batches(ds.val_x, ds.val_y, ds, cfg.train.eval_batch_size))
+    val = accuracy(net, eval_batches(ds.val_x, ds.val_y, ds, cfg.train.eval_batch_size)) if validate else None
     folder = out_dir / name
     data = export_onnx(net, folder / "model.onnx", cfg.data.channels, cfg.data.image_size)
     parity = max_parity_error(net, data, cfg.data.channels, cfg.data.image_size)

@@ -232,13 +232,15 @@ def _search_device(ctx: _Context, table: Any, predictor: Any, budgets: list[floa
                              if verifiable else "another machine: picks by predicted latency, to be verified there"))
     for b in budgets:
         drop_logged(out / "candidates.jsonl", table.name, b)
+        t0 = time.perf_counter()
         drift = _drift(ctx, table, predictor) if verifiable and ctx.settings.drift_check else None
         # picks measured here must fit budget x (1 - guard): search around that, not the budget itself
         base = b * (1 - (ctx.settings.guard if verifiable else 0.0)) * (1 + slack)
         limit = drifted_limit(base, drift)
-        if limit != base:
+        if drift is not None:
             say(f"  {budget_label(b)}: this machine now runs the table's calibration subnets at {drift:.2f} x their "
-                f"profiled time: searching up to {limit:.4g} ms predicted")
+                f"profiled time (drift check {time.perf_counter() - t0:.1f} s)"
+                + (f": searching up to {limit:.4g} ms predicted" if limit != base else ""))
         for attempt in range(2):
             before = compute.phases(latency)
             result = search_budget(ctx.run.recipe.space, ctx.fitness, latency, b, table.name, ctx.settings,

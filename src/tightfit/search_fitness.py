@@ -159,21 +159,16 @@ class RunAccuracy:
                 "latency prediction": latency.seconds}
 
     def _ort_accuracy(self, net: Any) -> float:
-        import onnxruntime as ort
         import torch
-        from tightfit.export import onnx_bytes
+        from tightfit.export import onnx_bytes, ort_session, ort_top1
         data = self.run.recipe.data
         t0 = time.perf_counter()
-        opts = ort.SessionOptions()
-        opts.intra_op_num_threads, opts.inter_op_num_threads, opts.log_severity_level = torch.get_num_threads(), 1, 3
-        session = ort.InferenceSession(onnx_bytes(net, data.channels, data.image_size), opts,
-                                       providers=["CPUExecutionProvider"])
+        session = ort_session(onnx_bytes(net, data.channels, data.image_size), torch.get_num_threads())
         t1 = time.perf_counter()
-        correct = sum(int((session.run(None, {"image": x.numpy()})[0].argmax(1) == y.numpy()).sum())
-                      for x, y in self.val)
+        acc, _ = ort_top1(session, self.val)
         self.export_s += t1 - t0
         self.val_s += time.perf_counter() - t1
-        return 100.0 * correct / max(self.images, 1)
+        return acc
 
     def __call__(self, subnet: Subnet) -> dict[str, Any]:
         from tightfit.extract import extract_subnet
