@@ -116,7 +116,8 @@ def budgets_across(run: Path, table: Path, fractions=(0.2, 0.5, 0.85)) -> list[f
 
 
 def search(run: Path, table: Path, budgets: list[float], smoke: bool) -> list[dict]:
-    from tightfit.search import SearchSettings, format_picks, run_search
+    from tightfit.search import SearchSettings, run_search
+    from tightfit.search_cli import format_picks
     settings = (SearchSettings(population=4, generations=1, top=1, val_images=200) if smoke
                 else SearchSettings(population=16, generations=4, top=4, val_images=3000))
     t, said, picks = {}, {}, []

@@ -1,5 +1,7 @@
-"""Small builders shared by the tests: tiny recipes and perturbed supernets."""
+"""Small builders shared by the tests: tiny recipes (as dicts and as TOML text) and perturbed supernets."""
 from __future__ import annotations
+
+import json
 
 import torch
 
@@ -36,3 +38,46 @@ def perturb(model: torch.nn.Module, seed: int = 0) -> None:
             t.add_(0.1 * torch.randn(t.shape, generator=gen))
         else:
             t.copy_(0.3 * torch.randn(t.shape, generator=gen))
+
+
+def toml_value(v) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(map(toml_value, v)) + "]"
+    return json.dumps(v) if isinstance(v, str) else repr(v)
+
+
+def recipe_toml(doc: dict) -> str:
+    """TOML text of a recipe dict: scalars, [tables] and [[table.key]] arrays of tables."""
+    def is_array_of_tables(v) -> bool:
+        return isinstance(v, list) and bool(v) and all(isinstance(x, dict) for x in v)
+    lines = [f"{k} = {toml_value(v)}" for k, v in doc.items() if not isinstance(v, dict)]
+    for section, table in ((k, v) for k, v in doc.items() if isinstance(v, dict)):
+        lines.append(f"[{section}]")
+        lines += [f"{k} = {toml_value(v)}" for k, v in table.items() if not is_array_of_tables(v)]
+        for key, items in ((k, v) for k, v in table.items() if is_array_of_tables(v)):
+            for item in items:
+                lines += [f"[[{section}.{key}]]"] + [f"{k} = {toml_value(v)}" for k, v in item.items()]
+    return "\n".join(lines) + "\n"
+
+
+def torch_shadowed_env(tmp_path, src: str):
+    """Environment in which `import torch` fails (a fake package first on PYTHONPATH) and leaves a
+    marker file, so a test can prove the on-device path never tries; returns (env, marker).
+    Checks that the fake really shadows torch before handing it out."""
+    import os
+    import subprocess
+    import sys
+    fake = tmp_path / "fake"
+    (fake / "torch").mkdir(parents=True)
+    marker = tmp_path / "torch-was-imported"
+    (fake / "torch" / "__init__.py").write_text(
+        "import os, pathlib\n"
+        "pathlib.Path(os.environ['TORCH_MARKER']).write_text('imported')\n"
+        "raise ImportError('torch is not available on this device')\n")
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(fake), src]), TORCH_MARKER=str(marker))
+    probe = subprocess.run([sys.executable, "-c", "import torch"], env=env, capture_output=True)
+    assert probe.returncode != 0 and marker.exists()
+    marker.unlink()
+    return env, marker

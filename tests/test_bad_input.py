@@ -26,7 +26,7 @@ import pytest
 import torch
 from PIL import Image
 
-from helpers import TINY
+from helpers import TINY, recipe_toml
 
 SRC = Path(__file__).resolve().parents[1] / "src"
 DELETE = object()
@@ -49,28 +49,6 @@ NO_SEARCH = "'tightfit search' is not wired into tightfit.cli.build_parser yet"
 
 
 # ---- building inputs ---------------------------------------------------------------------
-
-def toml_value(v) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, (list, tuple)):
-        return "[" + ", ".join(map(toml_value, v)) + "]"
-    return json.dumps(v) if isinstance(v, str) else repr(v)
-
-
-def recipe_toml(doc: dict) -> str:
-    """TOML text of a recipe dict: scalars, [tables] and [[table.key]] arrays of tables."""
-    def is_array_of_tables(v) -> bool:
-        return isinstance(v, list) and bool(v) and all(isinstance(x, dict) for x in v)
-    lines = [f"{k} = {toml_value(v)}" for k, v in doc.items() if not isinstance(v, dict)]
-    for section, table in ((k, v) for k, v in doc.items() if isinstance(v, dict)):
-        lines.append(f"[{section}]")
-        lines += [f"{k} = {toml_value(v)}" for k, v in table.items() if not is_array_of_tables(v)]
-        for key, items in ((k, v) for k, v in table.items() if is_array_of_tables(v)):
-            for item in items:
-                lines += [f"[[{section}.{key}]]"] + [f"{k} = {toml_value(v)}" for k, v in item.items()]
-    return "\n".join(lines) + "\n"
-
 
 def edited(doc: dict, changes: dict) -> dict:
     """A copy of doc with {("space", "stage", 1, "kernels"): value} changes applied (DELETE removes)."""

@@ -23,7 +23,7 @@ from pathlib import Path
 import pytest
 import torch
 
-from helpers import TINY
+from helpers import TINY, recipe_toml
 from tightfit.checkpoint import load_checkpoint
 
 RECIPE = copy.deepcopy(TINY)
@@ -33,25 +33,6 @@ TOTAL_STEPS = 36
 STEP = re.compile(rb"(\d+)/(\d+) \[")                            # tqdm's "n/total [" counter
 LEFTOVER = ".checkpoint.pt.*.tmp"                                # tightfit.atomic's temporary names
 PLANTED = ".checkpoint.pt.planted.tmp"                           # a fake half-written one, planted by the test
-
-
-def toml_value(v) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, (list, tuple)):
-        return "[" + ", ".join(map(toml_value, v)) + "]"
-    return json.dumps(v) if isinstance(v, str) else repr(v)
-
-
-def recipe_toml(doc: dict) -> str:
-    """TOML text of a recipe dict: scalars, [tables] and [[space.stage]] arrays of tables."""
-    lines = [f"{k} = {toml_value(v)}" for k, v in doc.items() if not isinstance(v, dict)]
-    for section, table in ((k, v) for k, v in doc.items() if isinstance(v, dict)):
-        lines.append(f"[{section}]")
-        lines += [f"{k} = {toml_value(v)}" for k, v in table.items() if k != "stage"]
-        for item in table.get("stage", []):
-            lines += [f"[[{section}.stage]]"] + [f"{k} = {toml_value(v)}" for k, v in item.items()]
-    return "\n".join(lines) + "\n"
 
 
 class Training:

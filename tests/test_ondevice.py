@@ -15,6 +15,7 @@ import onnx
 import pytest
 from onnx import TensorProto, helper, numpy_helper
 
+from helpers import torch_shadowed_env
 from tightfit.ondevice import runner
 from tightfit.ondevice.protocol import (Protocol, combine_repeats, make_session, measure_interleaved,
                                         measure_one, measure_repeated, random_input, summarize)
@@ -233,17 +234,7 @@ def test_runner_help_explains_itself():
 
 
 def test_runner_works_with_torch_unimportable(tmp_path, models):
-    fake = tmp_path / "fake"
-    (fake / "torch").mkdir(parents=True)
-    marker = tmp_path / "torch-was-imported"
-    (fake / "torch" / "__init__.py").write_text(
-        "import os, pathlib\n"
-        "pathlib.Path(os.environ['TORCH_MARKER']).write_text('imported')\n"
-        "raise ImportError('torch is not available on this device')\n")
-    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(fake), SRC]), TORCH_MARKER=str(marker))
-    probe = subprocess.run([sys.executable, "-c", "import torch"], env=env, capture_output=True)
-    assert probe.returncode != 0 and marker.exists()  # the fake really shadows torch
-    marker.unlink()
+    env, marker = torch_shadowed_env(tmp_path, SRC)
     bundle, out = make_bundle(tmp_path / "bundle", models), tmp_path / "table.json"
     proc = run_cli([str(bundle), "--out", str(out), *TINY_FLAGS, "--repeats", "2"], env=env, cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr

@@ -421,6 +421,7 @@ def tiny_run(tmp_path_factory) -> Path:
 def test_search_verify_export_end_to_end(tiny_run, monkeypatch, capsys):
     import argparse
     import tightfit.search as search
+    import tightfit.search_cli as search_cli
     from tightfit.ondevice.device import describe_device
     from tightfit.rundir import load_trained
     space = load_trained(tiny_run).recipe.space
@@ -429,7 +430,7 @@ def test_search_verify_export_end_to_end(tiny_run, monkeypatch, capsys):
     tables = {"here.json": (here, MacsPredictor(space, 1.0)), "away.json": (away, MacsPredictor(space, 1.2))}
     monkeypatch.setattr(search, "load_predictors", lambda paths, recipe: [tables[p] for p in paths])
     parser = argparse.ArgumentParser()
-    search.add_search_parser(parser.add_subparsers())
+    search_cli.add_search_parser(parser.add_subparsers())
 
     # Bad input: one UserError, nothing written (product contract, "Errors and safety").
     for budget, needle in (("fast", "'fast'"), ("0.001ms", "fastest subnet")):

@@ -7,7 +7,6 @@ import ast
 import hashlib
 import io
 import json
-import os
 import subprocess
 import sys
 import warnings
@@ -19,6 +18,7 @@ import torch
 from PIL import Image
 from torch import nn
 
+from helpers import torch_shadowed_env
 from tightfit import verify
 from tightfit.ondevice.device import describe_device
 from tightfit.ondevice.protocol import Protocol
@@ -180,17 +180,7 @@ def test_threads_override_is_recorded_and_warned(tmp_path, model_bytes, capsys):
 
 
 def test_runs_with_torch_unimportable(tmp_path, model_bytes):
-    fake = tmp_path / "fake"
-    (fake / "torch").mkdir(parents=True)
-    marker = tmp_path / "torch-was-imported"
-    (fake / "torch" / "__init__.py").write_text(
-        "import os, pathlib\n"
-        "pathlib.Path(os.environ['TORCH_MARKER']).write_text('imported')\n"
-        "raise ImportError('torch is not available on this device')\n")
-    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(fake), SRC]), TORCH_MARKER=str(marker))
-    probe = subprocess.run([sys.executable, "-c", "import torch"], env=env, capture_output=True)
-    assert probe.returncode != 0 and marker.exists()  # the fake really shadows torch
-    marker.unlink()
+    env, marker = torch_shadowed_env(tmp_path, SRC)
     folder = make_export(tmp_path / "e", model_bytes)
     proc = subprocess.run([sys.executable, "-m", "tightfit.verify", str(folder), "--repeats", "2",
                            "--out", str(tmp_path / "v.json")], env=env, capture_output=True, text=True,

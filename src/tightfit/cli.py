@@ -105,7 +105,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     from tightfit.latency.cli_commands import add_latency_check_parser, add_probe_parser, add_profile_parser
     from tightfit.report import add_report_parser
-    from tightfit.search import add_search_parser
+    from tightfit.search_cli import add_search_parser
     from tightfit.verify import add_verify_parser
     add_probe_parser(sub)
     add_profile_parser(sub)
