@@ -224,6 +224,20 @@ class Tried:
     measured: Optional[dict[str, Any]] = None
 
 
+@dataclass
+class Choice:
+    pick: Tried
+    fits: bool
+    note: str
+    tried: list[Tried]
+
+    def ratio(self) -> Optional[float]:
+        """Median measured/predicted over every candidate measured: how far off the predictor is now."""
+        import numpy as np
+        r = [t.measured["budget_stat_ms"] / t.cand.latency_ms for t in self.tried if t.measured and t.cand.latency_ms > 0]
+        return float(np.median(r)) if r else None
+
+
 def _cut_all(run: Any, ds: Any, cands: list[Candidate], staging: Path, start: int) -> list[Tried]:
     from tightfit.cut import cut_one
     return [Tried(c, *cut_one(run, ds, f"candidate{start + i}", c.subnet, staging, validate=False))
@@ -233,7 +247,7 @@ def _cut_all(run: Any, ds: Any, cands: list[Candidate], staging: Path, start: in
 def measure_and_choose(run: Any, ds: Any, ranked: list[Candidate], budget_ms: float, protocol: Any,
                        staging: Path, top: int, fallback: Callable[[], Candidate],
                        say: Callable[[str], None], rounds: int = 3, guard: float = 0.0,
-                       clock: Optional[dict[str, float]] = None) -> tuple[Tried, bool, str]:
+                       clock: Optional[dict[str, float]] = None) -> Choice:
     """Measure the first ``top`` candidates (front first) interleaved; the most accurate whose measured
     percentile fits within budget x (1 - guard) wins: a later session on the same machine can measure
     the tail a few percent slower, and QA re-measures. If none does, rescale predictions by
@@ -265,15 +279,16 @@ def measure_and_choose(run: Any, ds: Any, ranked: list[Candidate], budget_ms: fl
         fitting = [t for t in tried if t.measured["budget_stat_ms"] <= target]
         if fitting:
             note = "" if attempt == 0 else "the most accurate candidates measured over budget: fell back to faster ones"
-            return _most_accurate(fitting), True, note
+            return Choice(_most_accurate(fitting), True, note, tried)
         ratio = float(np.median([t.measured["budget_stat_ms"] / t.cand.latency_ms for t in tried]))
         say(f"  none of {len(tried)} measured candidates fits {target:.4g} ms (the budget less its {100 * guard:g} % "
             f"guard; measured = {ratio:.2f} x predicted): trying faster ones")
     within = [t for t in tried if t.measured["budget_stat_ms"] <= budget_ms]
     if within:
-        return _most_accurate(within), True, f"no candidate left the {100 * guard:g} % guard margin; this one fits the budget"
-    return (min(tried, key=lambda t: t.measured["budget_stat_ms"]), False,
-            "no candidate measured within the budget: this is the fastest one tried")
+        return Choice(_most_accurate(within), True,
+                      f"no candidate left the {100 * guard:g} % guard margin; this one fits the budget", tried)
+    return Choice(min(tried, key=lambda t: t.measured["budget_stat_ms"]), False,
+                  "no candidate measured within the budget: this is the fastest one tried", tried)
 
 
 def _most_accurate(tried: list[Tried]) -> Tried:
@@ -304,12 +319,13 @@ def choose_and_export(run: Any, ds: Any, table: Any, ranked: list[Candidate], bu
     clock: dict[str, float] = {}
     if verifiable:
         say(f"  measuring the top {min(top, len(ranked))} candidates directly ({protocol.repeats} repeats)")
-        pick, fits, note = measure_and_choose(run, ds, front_first(ranked), budget_ms, protocol, staging, top,
-                                              fallback, say, guard=guard, clock=clock)
-        device = describe_device()
+        choice = measure_and_choose(run, ds, front_first(ranked), budget_ms, protocol, staging, top,
+                                    fallback, say, guard=guard, clock=clock)
+        pick, fits, note, ratio, device = choice.pick, choice.fits, choice.note, choice.ratio(), describe_device()
     else:
         within = [c for c in ranked if c.latency_ms <= budget_ms] or [fallback()]
-        pick, fits, note, device = _cut_all(run, ds, within[:1], staging, 0)[0], True, UNVERIFIED, table.device
+        pick, fits, note, ratio = _cut_all(run, ds, within[:1], staging, 0)[0], True, UNVERIFIED, None
+        device = table.device
     export_dir = run_dir / "exports" / label
     t0 = time.perf_counter()
     manifest = export_pick(run, ds, subnet=pick.cand.subnet, cut=pick.cut, net=pick.net, export_dir=export_dir,
@@ -327,4 +343,5 @@ def choose_and_export(run: Any, ds: Any, table: Any, ranked: list[Candidate], bu
     return {"device": table.name, "budget_ms": budget_ms, "percentile": protocol.percentile, "key": pick.cand.key,
             "val_acc": pick.cand.fitness, "predicted_ms": round(pick.cand.latency_ms, 5), "measured": pick.measured,
             "export_dir": str(export_dir), "fits": fits, "verified": pick.measured is not None, "note": note,
+            "measured_over_predicted": None if ratio is None else round(ratio, 4),
             "test_acc": manifest["accuracy"]["test"]["top1"]}

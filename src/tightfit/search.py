@@ -252,13 +252,12 @@ def _search_device(ctx: _Context, table: Any, predictor: Any, budgets: list[floa
                                     ctx.settings.top, ctx.run_dir, ctx.fitness, latency, say, verifiable,
                                     guard=ctx.settings.guard)
             row["session_drift"] = drift
-            wider = widened_limit(row, base, limit) if attempt == 0 else None
-            if wider is None:
+            again = corrected_limit(row, base, limit) if attempt == 0 else None
+            if again is None:
                 break
-            say(f"  the pick uses {row_use(row):.0%} of the budget and measures "
-                f"{row['measured']['budget_stat_ms'] / row['predicted_ms']:.2f} x its prediction: "
-                f"searching again up to {wider:.4g} ms predicted")
-            limit = wider
+            say(f"  the pick uses {row_use(row):.0%} of the budget and the measured candidates ran "
+                f"{row['measured_over_predicted']:.2f} x their predictions: searching again up to {again:.4g} ms predicted")
+            limit = again
         picks.append(row)
         merge_picks(out / "picks.json", picks)
     return picks
@@ -270,23 +269,25 @@ def _drift(ctx: _Context, table: Any, predictor: Any) -> Optional[float]:
     return measure_drift(ctx.run.supernet, table, getattr(predictor, "calibration_keys", []), cfg.data.channels, cfg.data.image_size)
 
 
-UNDER_USE = 0.85  # a verified pick below this share of its budget triggers one wider search
+UNDER_USE = 0.85  # a verified pick below this share of its budget triggers one corrected search
 
 
 def row_use(row: dict[str, Any]) -> float:
     return row["measured"]["budget_stat_ms"] / row["budget_ms"]
 
 
-def widened_limit(row: dict[str, Any], base_ms: float, limit_ms: float) -> Optional[float]:
-    """Where the predictor overestimates a verified pick so much that it uses less than
-    UNDER_USE of its budget, the uncorrected limit `base_ms` scaled by measured/predicted,
-    if that is wider than the `limit_ms` searched (else None): the search may have left
-    faster-than-predicted, more accurate subnets out."""
-    m = row.get("measured")
-    if not (m and row.get("fits") and row.get("predicted_ms")) or row_use(row) >= UNDER_USE:
+def corrected_limit(row: dict[str, Any], base_ms: float, limit_ms: float) -> Optional[float]:
+    """Where a verified pick uses less than UNDER_USE of its budget, the uncorrected limit
+    `base_ms` divided by measured/predicted over the measured candidates, if that differs from
+    the `limit_ms` searched by more than 3 % (else None). Below 1 the predictor overestimated:
+    a wider search brings in faster-than-predicted, more accurate subnets. Above 1 every top
+    candidate measured over and the pick fell back far below them (the search's candidates all
+    sit in a band just under its limit): a narrower search looks where subnets now fit."""
+    ratio = row.get("measured_over_predicted")
+    if not (row.get("measured") and row.get("fits") and ratio) or row_use(row) >= UNDER_USE:
         return None
-    wider = base_ms / (m["budget_stat_ms"] / row["predicted_ms"])
-    return wider if wider > 1.03 * limit_ms else None
+    new = base_ms / ratio
+    return new if abs(new / limit_ms - 1) > 0.03 else None
 
 
 def merge_picks(path: Path, rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
