@@ -132,6 +132,7 @@ def search(run: Path, table: Path, budgets: list[float], smoke: bool) -> list[di
     print(format_picks(picks))
     return [{"budget_ms": p["budget_ms"], "key": p["key"], "export_dir": p["export_dir"], "val_acc": p["val_acc"],
              "fits": p["fits"], "search_s": t[str(p["budget_ms"])], "session_drift": p.get("session_drift"),
+             "measured_over_predicted": p.get("measured_over_predicted"),
              "timing": [ln.strip() for ln in said.get(str(p["budget_ms"]), [])
                         if any(w in ln for w in ("evaluations/s", "drift check", "after the search"))]} for p in picks]
 
@@ -343,6 +344,7 @@ def main(argv: list[str] | None = None) -> int:
                    "picks_search_s": {str(p["budget_ms"]): p["search_s"] for p in picks},
                    "search_timing": {str(p["budget_ms"]): p["timing"] for p in picks},
                    "session_drift": {str(p["budget_ms"]): p["session_drift"] for p in picks},
+                   "measured_over_predicted": {str(p["budget_ms"]): p.get("measured_over_predicted") for p in picks},
                    "phases": {k: {"wall_s": round(v["wall_s"], 1), "cpu_s": round(v["cpu_s"], 1)} for k, v in state.data.items()},
                    "device": describe_device(), "software": software_versions(), "recipe": recipe.to_dict(),
                    "recipe_hash": recipe.hash(), "smoke": args.smoke, "commit": started_at, "commit_at_end": git_commit(),

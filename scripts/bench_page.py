@@ -131,7 +131,7 @@ def page_text(result: dict, plot_name: str) -> str:
         "",
         *[f"- {k} ms: {'; '.join(v)}" for k, v in result["search_timing"].items()],
         "",
-        *_drift_lines(result.get("session_drift") or {}),
+        *_drift_lines(result.get("session_drift") or {}, result.get("measured_over_predicted") or {}),
         "## Machine and software",
         "",
         f"- CPU: {dev.get('cpu_model')}, {dev.get('logical_cores', dev.get('cores'))} logical cores; OS: {dev.get('os')}",
@@ -141,6 +141,21 @@ def page_text(result: dict, plot_name: str) -> str:
         "",
     ]
     return "\n".join(lines)
+
+
+def _drift_lines(drift: dict, ratio: dict) -> list[str]:
+    """How far the machine had moved from its latency table: the drift check's reading before each
+    budget's search (when on) and what the measured top candidates showed (measured / predicted p90)."""
+    out = []
+    if any(v is not None for v in drift.values()):
+        shown = ", ".join(f"{k} ms {'not checked' if v is None else f'{v:.3f} x'}" for k, v in drift.items())
+        out += [f"Drift check before each budget's search (the table's calibration subnets, time now / time when "
+                f"profiled; beyond ±3 % the search limit is rescaled): {shown}.", ""]
+    if any(v is not None for v in ratio.values()):
+        shown = ", ".join(f"{k} ms {'-' if v is None else f'{v:.3f} x'}" for k, v in ratio.items())
+        out += [f"The measured top candidates against their predictions (median measured / predicted p90, "
+                f"last search of each budget): {shown}.", ""]
+    return out
 
 
 NOTES = Path(__file__).resolve().parents[1] / "benchmarks" / "fashion-mnist-notes.md"
@@ -172,12 +187,3 @@ def main(argv: list[str] | None = None) -> int:
 
 if __name__ == "__main__":
     sys.exit(main())
-
-
-def _drift_lines(drift: dict) -> list[str]:
-    """The machine's speed before each budget's search against the profile (None: not checked)."""
-    if not drift:
-        return []
-    shown = ", ".join(f"{k} ms {'not checked' if v is None else f'{v:.3f} x'}" for k, v in drift.items())
-    return [f"Machine speed before each budget's search, as the table's calibration subnets measured "
-            f"(time now / time when profiled; beyond ±3 % the search limit is rescaled): {shown}.", ""]

@@ -66,8 +66,8 @@ def run_demo(run_dir: str | Path | None = None, recipe_path: str | Path | None =
     _stage("4. search each budget, verify the top candidates by direct measurement, export", t0)
     from tightfit.search import SearchSettings, run_search
     from tightfit.search_cli import format_picks
-    # sized for a few minutes; the table was profiled a moment ago, so no drift check (~25 s a budget)
-    settings = SearchSettings(population=8, generations=2, top=2, val_images=600, drift_check=False)
+    # sized for a few minutes
+    settings = SearchSettings(population=8, generations=2, top=2, val_images=600)
     picks = run_search(run_dir, [str(table)], budgets, settings)
     print(format_picks(picks))
 
