@@ -67,7 +67,9 @@ def add_search_parser(sub: Any) -> None:
                                    "space under the table's predicted latency, fitness = validation accuracy after "
                                    "BN recalibration (cached in RUN_DIR/search). The top candidates are exported and "
                                    "measured directly when the table is for this machine; the most accurate whose "
-                                   "measured percentile fits is exported to RUN_DIR/exports/DEVICE-BUDGETms.")
+                                   "measured percentile fits the budget less --guard is exported to "
+                                   "RUN_DIR/exports/DEVICE-BUDGETms. A pick that uses under 85 %% of its budget "
+                                   "triggers one shorter search with the limit rescaled by measured/predicted.")
     s.add_argument("run", help="run directory written by 'tightfit train'")
     s.add_argument("--table", action="append", required=True, help="latency table JSON; repeatable (one per device)")
     s.add_argument("--budget", action="append", required=True, help="latency budget such as 0.3ms, 300us; repeatable")
