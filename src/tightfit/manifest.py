@@ -232,10 +232,14 @@ class Choice:
     tried: list[Tried]
 
     def ratio(self) -> Optional[float]:
-        """Median measured/predicted over every candidate measured: how far off the predictor is now."""
-        import numpy as np
-        r = [t.measured["budget_stat_ms"] / t.cand.latency_ms for t in self.tried if t.measured and t.cand.latency_ms > 0]
-        return float(np.median(r)) if r else None
+        return measured_ratio(self.tried)
+
+
+def measured_ratio(tried: list[Tried]) -> Optional[float]:
+    """Median measured/predicted over every candidate measured: how far off the predictor is now."""
+    import numpy as np
+    r = [t.measured["budget_stat_ms"] / t.cand.latency_ms for t in tried if t.measured and t.cand.latency_ms > 0]
+    return float(np.median(r)) if r else None
 
 
 def _cut_all(run: Any, ds: Any, cands: list[Candidate], staging: Path, start: int) -> list[Tried]:
@@ -253,7 +257,6 @@ def measure_and_choose(run: Any, ds: Any, ranked: list[Candidate], budget_ms: fl
     the tail a few percent slower, and QA re-measures. If none does, rescale predictions by
     measured/predicted and try the most accurate of those that should then fit (the smallest subnet
     last); if still none, the most accurate that fits the budget itself."""
-    import numpy as np
     from tightfit.ondevice.protocol import measure_repeated
     tried: list[Tried] = []
     ratio: Optional[float] = None
@@ -280,7 +283,7 @@ def measure_and_choose(run: Any, ds: Any, ranked: list[Candidate], budget_ms: fl
         if fitting:
             note = "" if attempt == 0 else "the most accurate candidates measured over budget: fell back to faster ones"
             return Choice(_most_accurate(fitting), True, note, tried)
-        ratio = float(np.median([t.measured["budget_stat_ms"] / t.cand.latency_ms for t in tried]))
+        ratio = measured_ratio(tried)
         say(f"  none of {len(tried)} measured candidates fits {target:.4g} ms (the budget less its {100 * guard:g} % "
             f"guard; measured = {ratio:.2f} x predicted): trying faster ones")
     within = [t for t in tried if t.measured["budget_stat_ms"] <= budget_ms]
