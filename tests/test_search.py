@@ -514,11 +514,15 @@ def test_choice_ratio_is_the_median_over_measured_candidates():
     # Median, not mean: one candidate caught by a hiccup must not move the correction (common practice).
     from tightfit.manifest import Choice, Tried
     from tightfit.search_evolution import Candidate
-    tried = [Tried(Candidate(k, None, 90.0, pred, 0), None, None, {"budget_stat_ms": meas})
-             for k, pred, meas in (("a", 1.0, 1.1), ("b", 2.0, 2.2), ("c", 1.0, 3.0), ("d", 1.0, None))
-             if meas is not None] + [Tried(Candidate("d", None, 80.0, 1.0, 0), None, None, None)]
-    assert Choice(tried[0], True, "", tried).ratio() == pytest.approx(1.1)
-    assert Choice(tried[-1], True, "", tried[-1:]).ratio() is None    # nothing measured (another device)
+
+    def tried(key, predicted, measured):
+        return Tried(Candidate(key, None, 90.0, predicted, 0), None, None,
+                     None if measured is None else {"budget_stat_ms": measured})
+    measured = [tried("a", 1.0, 1.1), tried("b", 2.0, 2.2), tried("c", 1.0, 3.0)]   # ratios 1.1, 1.1, 3.0
+    assert Choice(measured[0], True, "", measured).ratio() == pytest.approx(1.1)     # the mean would be 1.73
+    unmeasured = [tried("d", 1.0, None)]                                             # another device
+    assert Choice(unmeasured[0], True, "", unmeasured).ratio() is None
+    assert Choice(measured[0], True, "", measured + unmeasured).ratio() == pytest.approx(1.1)
 
 
 def test_drifted_limit_follows_the_machine_and_ignores_noise():
