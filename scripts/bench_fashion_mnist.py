@@ -62,7 +62,7 @@ class State:
         t0, c0 = time.perf_counter(), cpu_seconds()
         result = fn()
         self.data[name] = {"wall_s": time.perf_counter() - t0, "cpu_s": cpu_seconds() - c0, "result": result}
-        from tightfit.atomic import write_json
+        from tightfit.ondevice.files import write_json
         write_json(self.path, self.data)
         print(f"   {name}: {self.data[name]['wall_s']:.0f} s wall, {self.data[name]['cpu_s']:.0f} CPU-s")
         return result
@@ -92,8 +92,8 @@ def smoke_data(recipe, smoke: bool):
 
 
 def train_supernet(recipe, run: Path, recipe_path: Path, smoke: bool) -> dict:
-    from tightfit.rundir import checkpoint_path
-    from tightfit.train import train
+    from tightfit.train.rundir import checkpoint_path
+    from tightfit.train.loop import train
     train(recipe, run, resume=checkpoint_path(run).exists(), recipe_path=recipe_path, ds=smoke_data(recipe, smoke))
     return {"throughput": throughput(run)}
 
@@ -108,7 +108,7 @@ def throughput(run: Path) -> dict:
 
 def budgets_across(run: Path, table: Path, fractions=(0.2, 0.5, 0.85)) -> list[float]:
     from tightfit.latency.predict import load_predictor
-    from tightfit.rundir import load_trained
+    from tightfit.train.rundir import load_trained
     recipe = load_trained(run).recipe
     pred = load_predictor(recipe, str(table), target="budget_stat_ms")
     lo, hi = pred.predict_ms(recipe.space.smallest()), pred.predict_ms(recipe.space.largest())
@@ -116,10 +116,11 @@ def budgets_across(run: Path, table: Path, fractions=(0.2, 0.5, 0.85)) -> list[f
 
 
 def search(run: Path, table: Path, budgets: list[float], smoke: bool) -> list[dict]:
-    from tightfit.search import SearchSettings, run_search
-    from tightfit.search_cli import format_picks
-    settings = (SearchSettings(population=4, generations=1, top=1, val_images=200) if smoke
-                else SearchSettings(population=16, generations=4, top=4, val_images=3000))
+    from tightfit.search.driver import run_search
+    from tightfit.search.settings import SearchSettings
+    from tightfit.search.commands import format_picks
+    settings = (SearchSettings(population=4, evaluations=8, top=1, val_images=200) if smoke
+                else SearchSettings(population=16, evaluations=80, top=4, val_images=3000))
     t, said, picks = {}, {}, []
 
     def say(line: str) -> None:
@@ -138,9 +139,9 @@ def search(run: Path, table: Path, budgets: list[float], smoke: bool) -> list[di
 
 
 def train_member(recipe, member, family_dir: Path, smoke: bool) -> dict:
-    from tightfit.baseline import member_recipe
-    from tightfit.rundir import checkpoint_path
-    from tightfit.train import train
+    from tightfit.train.baselines import member_recipe
+    from tightfit.train.rundir import checkpoint_path
+    from tightfit.train.loop import train
     r = member_recipe(recipe, member)
     run = family_dir / member.name
     train(r, run, resume=checkpoint_path(run).exists(), ds=smoke_data(recipe, smoke))
@@ -150,9 +151,9 @@ def train_member(recipe, member, family_dir: Path, smoke: bool) -> dict:
 
 def export_member(run: Path) -> tuple[Path, int, int]:
     """The trained member as a static net (its own running BN statistics) → ONNX."""
-    from tightfit.export import export_onnx
-    from tightfit.extract import count_macs, count_params, extract_subnet
-    from tightfit.rundir import load_trained
+    from tightfit.export.onnx import export_onnx
+    from tightfit.model.extract import count_macs, count_params, extract_subnet
+    from tightfit.train.rundir import load_trained
     t = load_trained(run)
     net = extract_subnet(t.supernet, t.recipe.space.largest()).eval()
     path = run / "model.onnx"
@@ -175,7 +176,7 @@ def ort_accuracy(onnx_path: Path, ds, split: str = "test") -> float:
 
 def write_baselines(run: Path, models: list[dict], recipe) -> Path:
     """RUN/baselines.json for `tightfit report`: the family on the validation split, like the candidates."""
-    from tightfit.atomic import write_json
+    from tightfit.ondevice.files import write_json
     from tightfit.data.dataset import load_dataset
     ds = load_dataset(recipe.data, recipe.seed)
     rows = [{"name": m["name"], "key": m["key"], "val_acc": round(ort_accuracy(Path(m["onnx"]), ds, "val"), 2),
@@ -186,7 +187,8 @@ def write_baselines(run: Path, models: list[dict], recipe) -> Path:
 
 def measure_all(picks: list[dict], members: list[dict], run: Path, recipe, smoke: bool) -> dict:
     from tightfit.data.dataset import load_dataset
-    from tightfit.ondevice.protocol import Protocol, measure_repeated
+    from tightfit.ondevice.repeats import measure_repeated
+    from tightfit.ondevice.timing import Protocol
     ds = load_dataset(recipe.data, recipe.seed)
     if smoke:
         ds = replace(ds, test_x=ds.test_x[:1000], test_y=ds.test_y[:1000])
@@ -202,7 +204,7 @@ def measure_all(picks: list[dict], members: list[dict], run: Path, recipe, smoke
                        "params": params, "macs": macs, "describe": mem["describe"]})
     for m in models:
         m["test_acc"] = round(ort_accuracy(Path(m["onnx"]), ds), 2)
-    proto = Protocol(repeats=1, min_runs=20, min_seconds=0.1, warmup_min_runs=5) if smoke else Protocol()
+    proto = Protocol(repeats=1, timed_runs=20, timed_seconds=0.1, warmup_runs=5) if smoke else Protocol()
     figures = measure_repeated([m["onnx"] for m in models], proto)
     for m in models:
         f = figures[m["onnx"]]
@@ -214,8 +216,8 @@ def machinery(recipe, smoke: bool) -> dict:
     """Elastic overhead (train step and inference) and where a training step's time goes."""
     import torch
     import torch.nn.functional as F
-    from tightfit.extract import extract_subnet
-    from tightfit.train import build_supernet
+    from tightfit.model.extract import extract_subnet
+    from tightfit.model.supernet import build_supernet
     torch.manual_seed(0)
     sn = build_supernet(recipe, 10).to(memory_format=torch.channels_last)
     x = torch.randn(recipe.train.batch_size, recipe.data.channels, recipe.data.image_size,
@@ -311,10 +313,10 @@ def main(argv: list[str] | None = None) -> int:
     if args.threads:
         import torch
         torch.set_num_threads(args.threads)
-    from tightfit.baseline import DEFAULT_FAMILY
+    from tightfit.train.baselines import DEFAULT_FAMILY
     from tightfit.latency.table import profile_host
-    from tightfit.manifest import software_versions
-    from tightfit.ondevice.device import describe_device
+    from tightfit.export.manifest import software_versions
+    from tightfit.ondevice.hardware import describe_hardware
     from tightfit.recipe import load_recipe
     recipe_path = Path(args.recipe)
     recipe = load_recipe(recipe_path)
@@ -346,11 +348,11 @@ def main(argv: list[str] | None = None) -> int:
                    "session_drift": {str(p["budget_ms"]): p["session_drift"] for p in picks},
                    "measured_over_predicted": {str(p["budget_ms"]): p.get("measured_over_predicted") for p in picks},
                    "phases": {k: {"wall_s": round(v["wall_s"], 1), "cpu_s": round(v["cpu_s"], 1)} for k, v in state.data.items()},
-                   "device": describe_device(), "software": software_versions(), "recipe": recipe.to_dict(),
+                   "device": describe_hardware(), "software": software_versions(), "recipe": recipe.to_dict(),
                    "recipe_hash": recipe.hash(), "smoke": args.smoke, "commit": started_at, "commit_at_end": git_commit(),
                    "command": "python scripts/bench_fashion_mnist.py " + " ".join(argv if argv is not None else sys.argv[1:]),
                    "wall_s_this_invocation": round(time.perf_counter() - t0, 1)})
-    from tightfit.atomic import write_json
+    from tightfit.ondevice.files import write_json
     out = write_json(Path(args.out), result)
     from bench_page import write_page  # scripts/bench_page.py: the human page and the plot
     page = write_page(result, Path(args.docs))

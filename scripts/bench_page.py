@@ -163,7 +163,7 @@ NOTES = Path(__file__).resolve().parents[1] / "benchmarks" / "fashion-mnist-note
 
 def write_page(result: dict, docs: Path) -> Path:
     """The generated page, then the hand-written reading of it (benchmarks/fashion-mnist-notes.md) if present."""
-    from tightfit.atomic import write_text
+    from tightfit.ondevice.files import write_text
     name = "benchmarks-fashion-mnist.png"
     plot(result, docs / name)
     notes = "" if result["smoke"] or not NOTES.is_file() else "\n" + NOTES.read_text("utf-8")

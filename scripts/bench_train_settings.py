@@ -3,7 +3,7 @@
 Trains the recipe once as written and once per --variant, then reports validation accuracy
 after BN recalibration for smallest, middle, largest and a fixed set of random subnets, and
 training time. With --alone, the largest subnet is also trained by itself (a one-subnet
-space, tightfit.baseline) under the same schedule: the gap between it and the supernet's
+space, tightfit.train.baselines) under the same schedule: the gap between it and the supernet's
 largest is what weight sharing costs at that many epochs.
 
     python scripts/bench_train_settings.py recipes/demo.toml --variant kernel_mode=transform
@@ -20,12 +20,12 @@ import sys
 import time
 from pathlib import Path
 
-from tightfit.baseline import Member, member_recipe
+from tightfit.train.baselines import Member, member_recipe
 from tightfit.data.dataset import calibration_batches, eval_batches, load_dataset
-from tightfit.recalibrate import subnet_accuracy
+from tightfit.model.recalibrate import subnet_accuracy
 from tightfit.recipe import Recipe, TrainConfig, load_recipe
-from tightfit.rundir import load_trained
-from tightfit.train import train
+from tightfit.train.rundir import load_trained
+from tightfit.train.loop import train
 
 
 def parse_variant(text: str) -> dict:

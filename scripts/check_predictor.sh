@@ -17,7 +17,7 @@ for recipe in "$@"; do
   echo "== $recipe (run directory $run); $(uptime)"
   "$PY" - "$run" <<'PY'
 import sys
-from tightfit.latency.cli_commands import format_check
+from tightfit.latency.commands import format_check
 from tightfit.latency.predict import check_predictor
 from tightfit.latency.table import profile_host
 

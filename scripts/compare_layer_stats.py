@@ -23,7 +23,7 @@ def main(argv: list[str] | None = None) -> int:
     from tightfit.latency.predict import LatencyPredictor, kendall_tau
     from tightfit.latency.table import load_table
     from tightfit.recipe import load_recipe
-    from tightfit.space import Subnet, space_hash
+    from tightfit.model.space import Subnet, space_hash
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("run", type=Path, help="run directory holding recipe.toml")
     ap.add_argument("--table", type=Path, required=True, help="the latency table the checks were made against")

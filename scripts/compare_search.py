@@ -41,11 +41,13 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
 
 def compare(args: argparse.Namespace) -> list[dict]:
     from tightfit.data.dataset import load_dataset
-    from tightfit.rundir import load_trained
-    from tightfit.search import SearchSettings, load_predictors, parse_budget
-    from tightfit.search_fitness import RunAccuracy
-    from tightfit.search_evolution import (AccuracyCache, CachedAccuracy, CachedLatency, random_search,
-                                           regularized_evolution)
+    from tightfit.train.rundir import load_trained
+    from tightfit.search.budgets import parse_budget
+    from tightfit.search.cache import AccuracyCache, CachedAccuracy, CachedLatency
+    from tightfit.search.driver import load_predictors
+    from tightfit.search.evolution import random_search, regularized_evolution
+    from tightfit.search.fitness import RunAccuracy
+    from tightfit.search.settings import SearchSettings
     budget = parse_budget(args.budget)
     run = load_trained(args.run)
     (table, predictor), = load_predictors([args.table], run.recipe)

@@ -1,4 +1,5 @@
 import random
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -14,3 +15,13 @@ def _restore_rng():
     torch.set_rng_state(torch_state)
     np.random.set_state(np_state)
     random.setstate(py_state)
+
+
+@pytest.fixture(scope="session")
+def tiny_run(tmp_path_factory) -> Path:
+    """A briefly trained tiny run, shared by the search tests (read-only for them except search/ and exports/)."""
+    from helpers import tiny_recipe
+    from tightfit.train.loop import train
+    run = tmp_path_factory.mktemp("run")
+    train(tiny_recipe(epochs=0.3, recalibration_batches=2, eval_batch_size=256), run, progress=False)
+    return run

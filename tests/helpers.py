@@ -2,9 +2,11 @@
 from __future__ import annotations
 
 import json
+import random
 
 import torch
 
+from tightfit.model.space import SpaceSpec, StageSpec, Subnet
 from tightfit.recipe import parse_recipe
 
 TINY = {
@@ -81,3 +83,52 @@ def torch_shadowed_env(tmp_path, src: str):
     assert probe.returncode != 0 and marker.exists()
     marker.unlink()
     return env, marker
+
+
+# ----------------------------------------------------------------------------- search on synthetic functions
+
+def wide_space() -> SpaceSpec:
+    """Five stages, depths 1-4, three expansions, three kernels: about 10^15 subnets."""
+    stages = tuple(StageSpec(out_chs=16 * (i + 1), stride=2 if i % 2 == 0 else 1, depths=(1, 2, 3, 4),
+                             exp_ratios=(3, 4, 6), kernels=(3, 5, 7)) for i in range(5))
+    return SpaceSpec(stem_chs=16, stem_stride=1, stages=stages)
+
+
+class FakePredictor:
+    """Latency of a subnet: a sum of per-block costs growing with expansion and kernel area (the
+    shape of a depthwise-separable block's multiply-adds, Howard et al. 2017, Sec. 3.1)."""
+
+    def __init__(self, space: SpaceSpec):
+        self.space, self.calls = space, 0
+
+    def predict_ms(self, subnet: Subnet) -> float:
+        self.calls += 1
+        total = 0.02
+        for i, blocks in enumerate(subnet.stages):
+            for e, k in blocks:
+                total += 0.004 * (1 + 0.5 * i) * e * (1 + k * k / 25)
+        return total
+
+
+def synthetic_fitness(seed: int):
+    """A known but rugged function of the architecture: each (stage, block, choice) has its own
+    random value, and deeper stages pay off only with matching kernels. Not monotone in latency,
+    so a search must find the right combination, not just the biggest subnet that fits."""
+    rng = random.Random(seed)
+    table = {(i, j, e, k): rng.gauss(0, 1) for i in range(5) for j in range(4) for e in (3, 4, 6) for k in (3, 5, 7)}
+
+    def fitness(subnet: Subnet) -> float:
+        score = 0.0
+        for i, blocks in enumerate(subnet.stages):
+            for j, (e, k) in enumerate(blocks):
+                score += table[(i, j, e, k)] + (0.5 if k == blocks[0][1] else -0.3)
+        return score
+    return fitness
+
+
+BUDGET = 1.25  # about the 15th percentile of this space's predicted latency
+
+
+def dominated(p, others) -> bool:
+    """Pareto dominance (Deb et al. 2002, Sec. II): no worse in both objectives, better in one."""
+    return any(q[1] >= p[1] and q[2] <= p[2] and (q[1] > p[1] or q[2] < p[2]) for q in others)

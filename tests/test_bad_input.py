@@ -116,35 +116,35 @@ class Shared:
             self._table = self.root / "table.json"
             self._table.write_text(json.dumps({
                 "format": "tightfit-latency-table", "version": 1, "space_hash": index["space_hash"],
-                "device": {"hostname": "synthetic"}, "protocol": {"percentile": 90.0}, "entries": entries}))
+                "hardware": {"hostname": "synthetic"}, "protocol": {"percentile": 90.0}, "entries": entries}))
             load_predictor(load_recipe(self.run / "recipe.toml"), self._table)  # control: accepted as is
         return self._table
 
 
 def build_manifest_for(run, cut, net, onnx_data: bytes) -> dict:
-    """The export manifest as tightfit.manifest writes it (the contract's fields)."""
-    from tightfit.manifest import Accuracy, build_manifest, latency_section
-    from tightfit.ondevice.device import describe_device
-    from tightfit.ondevice.protocol import Protocol
+    """The export manifest as tightfit.export.manifest writes it (the contract's fields)."""
+    from tightfit.export.manifest import Accuracy, build_manifest, latency_section
+    from tightfit.ondevice.hardware import describe_hardware
+    from tightfit.ondevice.timing import Protocol
     r = run.recipe
     return build_manifest(
         space=r.space, subnet=r.space.smallest(), params=cut.params, macs=cut.macs, onnx_data=onnx_data,
         channels=r.data.channels, image_size=r.data.image_size, class_names=run.class_names, mean=run.mean,
         std=run.std, validation=Accuracy(cut.val_acc, 10, "validation"), test=Accuracy(cut.val_acc, 10, "test"),
-        latency=latency_section(None, describe_device(), Protocol().to_dict(), 0.1), budget_ms=1.0,
-        percentile=90.0, device_name="host", recipe_name=r.name, recipe_hash=r.hash())
+        latency=latency_section(None, describe_hardware(), Protocol().to_dict(), 0.1), budget_ms=1.0,
+        percentile=90.0, device="host", recipe_name=r.name, recipe_hash=r.hash())
 
 
 @pytest.fixture(scope="module")
 def shared(tmp_path_factory) -> Shared:
     """One tiny trained run and one export of its smallest subnet (checked valid, so the cases that
     break them show the break, not a fixture that was never good)."""
-    from tightfit.cut import cut_one
+    from tightfit.export.cut import cut_one
     from tightfit.data.dataset import load_dataset
     from tightfit.recipe import load_recipe
-    from tightfit.rundir import load_trained
-    from tightfit.train import train
-    from tightfit.verify import load_export
+    from tightfit.train.rundir import load_trained
+    from tightfit.train.loop import train
+    from tightfit.ondevice.verify import load_export
     root = tmp_path_factory.mktemp("bad-input")
     (root / "tiny.toml").write_text(recipe_toml(RECIPE))
     threads = torch.get_num_threads()
@@ -186,7 +186,7 @@ class Env:
 
     def table(self, **fields) -> Path:
         doc = {"format": "tightfit-latency-table", "version": 1, "space_hash": "0123456789abcdef",
-               "device": {"hostname": "elsewhere"}, "protocol": {"percentile": 90.0},
+               "hardware": {"hostname": "elsewhere"}, "protocol": {"percentile": 90.0},
                "entries": {"stem": {"kind": "layer", "meta": {}, **dict.fromkeys(
                    ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "budget_stat_ms"), 0.1)}}}
         path = self.tmp / "table.json"

@@ -12,9 +12,11 @@ import pytest
 import torch
 
 from tightfit.data.dataset import load_dataset, steps_per_epoch, train_batches
-from tightfit.distributed import Ranks, backend_for, local_rows, pack, rank_device, ranks_from_env, unpack
+from tightfit.train.distributed import Ranks, backend_for, local_rows, pack, rank_device, ranks_from_env, unpack
 from tightfit.errors import Interrupted, UserError
-from tightfit.train import build_supernet, lr_at, make_optimizer, sandwich, sandwich_backward, train
+from tightfit.model.supernet import build_supernet
+from tightfit.train.loop import train
+from tightfit.train.sandwich import lr_at, make_optimizer, sandwich, sandwich_backward
 
 sys.path.insert(0, str(Path(__file__).parent))
 from helpers import tiny_recipe  # noqa: E402

@@ -4,13 +4,13 @@ from pathlib import Path
 
 import pytest
 
-from tightfit.cut import cut_one
+from tightfit.export.cut import cut_one
 from tightfit.data.dataset import eval_batches, load_dataset
 from tightfit.data.fashion_mnist import DEFAULT_DIR
-from tightfit.recalibrate import accuracy
+from tightfit.model.recalibrate import accuracy
 from tightfit.recipe import parse_recipe
-from tightfit.rundir import load_trained
-from tightfit.train import train
+from tightfit.train.rundir import load_trained
+from tightfit.train.loop import train
 
 pytestmark = pytest.mark.skipif(not Path(DEFAULT_DIR).is_dir(),
                                 reason="apt-get install dataset-fashion-mnist (scripts/test.sh does this)")

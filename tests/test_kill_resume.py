@@ -24,14 +24,14 @@ import pytest
 import torch
 
 from helpers import TINY, recipe_toml
-from tightfit.checkpoint import load_checkpoint
+from tightfit.train.checkpoint import load_checkpoint
 
 RECIPE = copy.deepcopy(TINY)
 RECIPE["data"]["samples"] = 400                                 # 306 training images: 9 steps of 32 per epoch
 RECIPE["train"].update(epochs=4, checkpoint_every=3)            # 36 steps, a checkpoint every 3
 TOTAL_STEPS = 36
 STEP = re.compile(rb"(\d+)/(\d+) \[")                            # tqdm's "n/total [" counter
-LEFTOVER = ".checkpoint.pt.*.tmp"                                # tightfit.atomic's temporary names
+LEFTOVER = ".checkpoint.pt.*.tmp"                                # tightfit.ondevice.files's temporary names
 PLANTED = ".checkpoint.pt.planted.tmp"                           # a fake half-written one, planted by the test
 
 
@@ -78,7 +78,7 @@ def recipe_file(tmp_path_factory) -> Path:
 def reference(recipe_file) -> Path:
     """The uninterrupted run, trained in this process on one thread like the subprocesses."""
     from tightfit.recipe import load_recipe
-    from tightfit.train import train
+    from tightfit.train.loop import train
     run = recipe_file.parent / "reference"
     threads = torch.get_num_threads()
     torch.set_num_threads(1)
@@ -187,12 +187,12 @@ def test_sigint_sigterm_write_a_checkpoint_and_say_how_to_resume(tmp_path, recip
 def test_sigkill_while_writing_keeps_the_previous_checkpoint(tmp_path):
     """A kill in the middle of a checkpoint write (the writer blocks after half the bytes) leaves
     the previous checkpoint.pt whole; the half-written file exists only under a temporary name."""
-    from tightfit.checkpoint import save_checkpoint
+    from tightfit.train.checkpoint import save_checkpoint
     path = tmp_path / "checkpoint.pt"
     save_checkpoint(path, {"model": {"w": torch.arange(1000.0)}, "recipe": {}, "step": 3})
     writer = (
         "import sys, time\n"
-        "from tightfit.atomic import atomic_write\n"
+        "from tightfit.ondevice.files import atomic_write\n"
         "def half(tmp):\n"
         "    with open(tmp, 'wb') as f:\n"
         "        f.write(open(sys.argv[1], 'rb').read()[:500]); f.flush()\n"
@@ -210,7 +210,7 @@ def test_sigkill_while_writing_keeps_the_previous_checkpoint(tmp_path):
 
 def _resume_in_process(run: Path, recipe_file: Path) -> None:
     from tightfit.recipe import load_recipe
-    from tightfit.train import train
+    from tightfit.train.loop import train
     train(load_recipe(recipe_file), run, resume=True, progress=False)
 
 

@@ -14,15 +14,16 @@ import pytest
 import torch
 
 from tightfit.errors import UserError
-from tightfit.latency.predict import (LatencyPredictor, calibrate, check_predictor, kendall_tau,
-                                      load_predictor)
-from tightfit.latency.probe import (conv_out, layer_configs, layer_module, load_source, overhead_id,
-                                    subnet_layer_ids, write_bundle)
+from tightfit.latency.check import check_predictor
+from tightfit.latency.layers import layer_configs, overhead_id, subnet_layer_ids
+from tightfit.latency.predict import LatencyPredictor, calibrate, kendall_tau, load_predictor
+from tightfit.latency.probe import layer_module, load_source, write_bundle
+from tightfit.model.arithmetic import conv_out
 from tightfit.latency.table import load_table, profile_host
 from tightfit.ondevice import runner
-from tightfit.extract import extract_subnet
-from tightfit.ondevice.protocol import Protocol
-from tightfit.space import space_hash
+from tightfit.model.extract import extract_subnet
+from tightfit.ondevice.timing import Protocol
+from tightfit.model.space import space_hash
 
 STAGES = """
 [[space.stage]]
@@ -154,7 +155,7 @@ def synthetic_table(bundle: Path, tmp: Path, fit=lambda x: x, **overrides) -> Pa
             entries[e["id"]] = {"kind": "layer", "meta": e["meta"], **dict.fromkeys(
                 ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "budget_stat_ms"), v)}
     table = {"format": "tightfit-latency-table", "version": 1, "space_hash": index["space_hash"],
-             "device": {"hostname": "synthetic"}, "protocol": Protocol().to_dict(), "entries": entries}
+             "hardware": {"hostname": "synthetic"}, "protocol": Protocol().to_dict(), "entries": entries}
     table.update(overrides)
     path = tmp / "synthetic.json"
     path.write_text(json.dumps(table))

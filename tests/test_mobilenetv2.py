@@ -5,9 +5,9 @@ import pytest
 import torch
 from torch.utils.flop_counter import FlopCounterMode
 
-from tightfit.extract import count_macs, count_params, extract_subnet
+from tightfit.model.extract import count_macs, count_params, extract_subnet
 from tightfit.recipe import load_recipe
-from tightfit.supernet import Supernet
+from tightfit.model.supernet import Supernet
 
 torchvision = pytest.importorskip("torchvision")
 RECIPE = load_recipe(Path(__file__).parents[1] / "recipes" / "mobilenetv2-224.toml")

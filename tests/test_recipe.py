@@ -7,7 +7,7 @@ from hypothesis import given, settings, strategies as st
 
 from tightfit.errors import UserError
 from tightfit.recipe import load_recipe, parse_recipe, recipe_from_dict
-from tightfit.supernet import Supernet
+from tightfit.model.supernet import Supernet
 from helpers import TINY
 
 RECIPES = sorted((Path(__file__).parents[1] / "recipes").glob("*.toml"))

@@ -9,8 +9,9 @@ from pathlib import Path
 
 import pytest
 
-from tightfit import report
-from tightfit.report_data import pareto_front
+from tightfit.report import page as report
+from tightfit.report.commands import add_report_parser
+from tightfit.report.data import front_points
 from tightfit.errors import UserError
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), file signature
@@ -91,7 +92,7 @@ def fake_run(root: Path, search: bool = True) -> Path:
     (root / "exports").mkdir()
     (root / "exports" / "verdict.json").write_text(json.dumps(verdict))
     (root / "latency").mkdir()
-    (root / "latency" / "host.json").write_text(json.dumps({"device": {"cpu_model": "Test CPU", "logical_cores": 2}}))
+    (root / "latency" / "host.json").write_text(json.dumps({"hardware": {"cpu_model": "Test CPU", "logical_cores": 2}}))
     return root
 
 
@@ -122,7 +123,7 @@ def test_plotted_front_is_the_non_dominated_set(tmp_path):
 
 def test_pareto_front_keeps_one_of_equal_points():
     # Equal points do not dominate each other (Deb et al. 2002 definition); the plot needs one copy.
-    assert pareto_front([(1.0, 50.0), (1.0, 50.0), (2.0, 40.0), (0.5, 30.0)]) == [(0.5, 30.0), (1.0, 50.0)]
+    assert front_points([(1.0, 50.0), (1.0, 50.0), (2.0, 40.0), (0.5, 30.0)]) == [(0.5, 30.0), (1.0, 50.0)]
 
 
 def test_without_search_the_report_still_renders_and_says_so(tmp_path):
@@ -146,7 +147,7 @@ def test_not_a_run_folder_is_bad_input(tmp_path, case):
 def test_report_subcommand_plugs_into_a_parser(tmp_path, capsys):
     run = fake_run(tmp_path / "run", search=False)
     parser = argparse.ArgumentParser()
-    report.add_report_parser(parser.add_subparsers())  # the way cli.py plugs it in
+    add_report_parser(parser.add_subparsers())  # the way cli.py plugs it in
     args = parser.parse_args(["report", str(run)])
     assert args.func(args) == 0
     assert str(run / "report" / "report.html") in capsys.readouterr().out

@@ -7,7 +7,7 @@ import pytest
 from hypothesis import given, settings, strategies as st
 
 from tightfit.errors import UserError
-from tightfit.space import Subnet
+from tightfit.model.space import Subnet
 from helpers import tiny_recipe
 
 SPACE = tiny_recipe().space

@@ -3,10 +3,10 @@
 import pytest
 import torch
 
-from tightfit.checkpoint import load_checkpoint, save_checkpoint
+from tightfit.train.checkpoint import load_checkpoint, save_checkpoint
 from tightfit.data.dataset import load_dataset
 from tightfit.errors import Interrupted, UserError
-from tightfit.train import lr_at, sandwich, train
+from tightfit.train.loop import lr_at, sandwich, train
 from helpers import tiny_recipe
 
 

@@ -19,12 +19,13 @@ from PIL import Image
 from torch import nn
 
 from helpers import torch_shadowed_env
-from tightfit import verify
-from tightfit.ondevice.device import describe_device
-from tightfit.ondevice.protocol import Protocol
+from tightfit.ondevice import verify
+from tightfit.ondevice.files import MANIFEST_FORMAT, MANIFEST_VERSION
+from tightfit.ondevice.hardware import describe_hardware
+from tightfit.ondevice.timing import Protocol
 
 SRC = str(Path(__file__).resolve().parents[1] / "src")
-TINY = Protocol(warmup_min_runs=5, settle_window=5, warmup_max_runs=40, min_runs=30, min_seconds=0.05, repeats=1)
+TINY = Protocol(warmup_runs=5, settle_window=5, warmup_limit=40, timed_runs=30, timed_seconds=0.05, repeats=1)
 CLASSES = ["bolt", "nut", "washer"]
 SIZE = 12
 MEAN, STD = [0.5, 0.4, 0.3], [0.25, 0.2, 0.3]
@@ -49,7 +50,7 @@ def onnx_bytes(net: nn.Module) -> bytes:
 def manifest(data: bytes, budget_ms: float, protocol: Protocol = TINY) -> dict:
     """Every field of the export manifest contract, with the hash from hashlib (Python stdlib)."""
     return {
-        "format": "tightfit-export-manifest", "version": 1, "model_file": "model.onnx",
+        "format": MANIFEST_FORMAT, "version": MANIFEST_VERSION, "model_file": "model.onnx",
         "sha256": hashlib.sha256(data).hexdigest(),
         "architecture": {"key": "e1k3", "depths": [1], "params": 100, "macs": 1000, "description": []},
         "input": {"name": "image", "layout": "NCHW", "dtype": "float32", "shape": [None, 3, SIZE, SIZE],
@@ -58,7 +59,7 @@ def manifest(data: bytes, budget_ms: float, protocol: Protocol = TINY) -> dict:
         "output": {"name": "logits", "classes": CLASSES},
         "accuracy": {"validation": {"top1": 61.0, "images": 100, "split": "validation"},
                      "test": {"top1": 60.0, "images": 150, "split": "test"}},
-        "latency": {"device": describe_device(), "protocol": protocol.to_dict(), "p50_ms": 0.1, "p90_ms": 0.12,
+        "latency": {"hardware": describe_hardware(), "protocol": protocol.to_dict(), "p50_ms": 0.1, "p90_ms": 0.12,
                     "p99_ms": 0.2, "mean_ms": 0.1, "cv": 0.1, "iqr_over_median": 0.05, "repeat_spread": None,
                     "stable": False, "note": "only one repeat"},
         "budget": {"ms": budget_ms, "percentile": 90.0, "device": "host"},
@@ -182,7 +183,7 @@ def test_threads_override_is_recorded_and_warned(tmp_path, model_bytes, capsys):
 def test_runs_with_torch_unimportable(tmp_path, model_bytes):
     env, marker = torch_shadowed_env(tmp_path, SRC)
     folder = make_export(tmp_path / "e", model_bytes)
-    proc = subprocess.run([sys.executable, "-m", "tightfit.verify", str(folder), "--repeats", "2",
+    proc = subprocess.run([sys.executable, "-m", "tightfit.ondevice.verify", str(folder), "--repeats", "2",
                            "--out", str(tmp_path / "v.json")], env=env, capture_output=True, text=True,
                           cwd=tmp_path, timeout=120)
     assert proc.returncode == 0, proc.stderr

@@ -9,12 +9,12 @@ import time
 from datetime import datetime
 from pathlib import Path
 
-from tightfit.cut import cut_one, format_table, measure_latency
+from tightfit.export.cut import cut_one, format_table, measure_latency
 from tightfit.data.dataset import load_dataset
 from tightfit.errors import UserError
 from tightfit.recipe import load_recipe
-from tightfit.rundir import load_trained
-from tightfit.train import train
+from tightfit.train.rundir import load_trained
+from tightfit.train.loop import train
 
 
 def default_recipe() -> Path:
@@ -64,20 +64,21 @@ def run_demo(run_dir: str | Path | None = None, recipe_path: str | Path | None =
     print(f"latency table: {table}  (budgets chosen inside the space's range: {', '.join(budgets)})")
 
     _stage("4. search each budget, verify the top candidates by direct measurement, export", t0)
-    from tightfit.search import SearchSettings, run_search
-    from tightfit.search_cli import format_picks
+    from tightfit.search.driver import run_search
+    from tightfit.search.settings import SearchSettings
+    from tightfit.search.commands import format_picks
     # sized for a few minutes
-    settings = SearchSettings(population=8, generations=2, top=2, val_images=600)
+    settings = SearchSettings(population=8, evaluations=24, top=2, val_images=600)
     picks = run_search(run_dir, [str(table)], budgets, settings)
     print(format_picks(picks))
 
     _stage("5. QA: re-measure every export against its manifest (tightfit verify)", t0)
-    from tightfit import verify
+    from tightfit.ondevice import verify
     exports = [p["export_dir"] for p in picks]
     code = verify.main(exports + ["--out", str(run_dir / "verdict.json")])
 
     _stage("6. report", t0)
-    from tightfit.report import write_report
+    from tightfit.report.page import write_report
     page = write_report(run_dir)
     print(f"\nsummary: {len(picks)} picks exported under {run_dir / 'exports'}; "
           f"verify {'passed' if code == 0 else 'found a miss' if code == 1 else 'failed'}; "

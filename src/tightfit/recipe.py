@@ -13,7 +13,7 @@ from pathlib import Path
 from typing import Any
 
 from tightfit.errors import UserError
-from tightfit.space import ACTIVATIONS, SpaceSpec, StageSpec
+from tightfit.model.space import ACTIVATIONS, SpaceSpec, StageSpec
 
 DATA_SOURCES = ("builtin", "folder", "fashion-mnist")
 OPTIMIZERS = ("sgd", "adamw")

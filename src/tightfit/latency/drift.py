@@ -16,21 +16,24 @@ from pathlib import Path
 from typing import Any, Optional, Sequence
 
 import numpy as np
+from tqdm import tqdm
 
-from tightfit.space import Subnet
+from tightfit.export.onnx import onnx_bytes
+from tightfit.latency.probe import single_thread
+from tightfit.latency.table import LatencyTable
+from tightfit.model.extract import extract_subnet
+from tightfit.model.space import Subnet
+from tightfit.model.supernet import Supernet
+from tightfit.ondevice.repeats import measure_repeated
+from tightfit.ondevice.timing import Protocol
 
 DEADBAND = 0.03  # ratios within 3 % of 1 are measurement noise: the limit is left alone
 STAT = "p50_ms"  # the steadiest statistic: the speed change, not the tail's noise
 
 
-def write_subnet_onnx(supernet: Any, subnets: Sequence[Subnet], folder: Path, in_chs: int,
+def write_subnet_onnx(supernet: Supernet, subnets: Sequence[Subnet], folder: Path, in_chs: int,
                       image_size: int, progress: bool = False) -> list[str]:
     """Each subnet extracted and exported to folder/<i>.onnx (weights do not change latency)."""
-    from tqdm import tqdm
-
-    from tightfit.export import onnx_bytes
-    from tightfit.extract import extract_subnet
-    from tightfit.latency.probe import single_thread
     paths = []
     with single_thread():
         for i, s in enumerate(tqdm(subnets, desc="export", unit="model", disable=not progress)):
@@ -39,11 +42,10 @@ def write_subnet_onnx(supernet: Any, subnets: Sequence[Subnet], folder: Path, in
     return paths
 
 
-def drift_protocol(table_protocol: dict[str, Any]) -> Any:
+def drift_protocol(table_protocol: dict[str, Any]) -> Protocol:
     """The table's protocol, shortened: two fresh processes, a second per model per repeat."""
-    from tightfit.ondevice.protocol import Protocol
     p = Protocol.from_dict(table_protocol)
-    return replace(p, repeats=min(p.repeats, 2), min_seconds=min(p.min_seconds, 1.0), min_runs=min(p.min_runs, 100))
+    return replace(p, repeats=min(p.repeats, 2), timed_seconds=min(p.timed_seconds, 1.0), timed_runs=min(p.timed_runs, 100))
 
 
 def drift_ratio(now_ms: Sequence[float], then_ms: Sequence[float]) -> Optional[float]:
@@ -52,9 +54,8 @@ def drift_ratio(now_ms: Sequence[float], then_ms: Sequence[float]) -> Optional[f
     return float(np.median(ratios)) if ratios else None
 
 
-def measure_drift(supernet: Any, table: Any, keys: Sequence[str], in_chs: int, image_size: int) -> Optional[float]:
+def measure_drift(supernet: Supernet, table: LatencyTable, keys: Sequence[str], in_chs: int, image_size: int) -> Optional[float]:
     """Measure the table's calibration subnets `keys` now; the ratio now/then (None without keys)."""
-    from tightfit.ondevice.protocol import measure_repeated
     if not keys:
         return None
     protocol = drift_protocol(table.protocol)

@@ -1,111 +1,29 @@
-"""Probe bundles: one small ONNX model per distinct layer configuration, plus a few whole subnets.
-
-A block's input resolution and input channels depend only on its stage and on whether
-it is the stage's first block, so the distinct blocks are, per stage, the first-block
-(expansion, kernel) choices and, when the stage can be deeper than one, the later-block
-choices. Stem and head (head conv + pool + classifier) are one entry each. The whole
-subnets let the predictor calibrate the sum of isolated layers against real networks.
+"""Probe bundles: one small ONNX model per distinct layer configuration (layers.py), plus a few
+whole subnets that let the predictor calibrate the sum of isolated layers against real networks.
 The bundle layout is the one ``tightfit.ondevice.runner`` reads.
 """
 from __future__ import annotations
 
-import random
 import shutil
 import tempfile
 import zipfile
 from contextlib import contextmanager
-from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Iterator
 
 import torch
 from torch import nn
 
-from tightfit.atomic import write_bytes, write_json
 from tightfit.errors import UserError
-from tightfit.export import onnx_bytes
-from tightfit.extract import _block, extract_subnet
-from tightfit.recipe import Recipe
-from tightfit.space import SpaceSpec, Subnet, space_hash
-from tightfit.supernet import Supernet, hidden_chs
-
-BUNDLE_FORMAT = "tightfit-probe-bundle"
-OVERHEAD_ID = "overhead"
-
-
-@dataclass(frozen=True)
-class LayerConfig:
-    """One distinct layer the space can produce, with the shapes it runs at."""
-    id: str
-    role: str                  # "stem" | "block" | "head" | "overhead"
-    in_chs: int
-    out_chs: int
-    resolution: int            # input height = width
-    stage: int = -1
-    first: bool = False
-    exp_ratio: float = 0
-    kernel: int = 0
-    hidden_chs: int = 0
-    stride: int = 1
-    act: str = ""
-    se: bool = False
-    skip: bool = False
-    copies: int = 0            # overhead probes: chained passthrough convs
-
-    def shape(self) -> str:
-        """Readable one-liner, e.g. '24x16x16 -> e4 (96) k5 s2 hswish +SE -> 40x8x8'."""
-        out_res = conv_out(self.resolution, self.stride)
-        io = (f"{self.in_chs}x{self.resolution}x{self.resolution}", f"{self.out_chs}x{out_res}x{out_res}")
-        if self.role == "overhead":
-            return f"passthrough x{self.copies}{' +skip' if self.skip else ''}: {io[0]} -> {io[0]}"
-        if self.role != "block":
-            return f"{self.role}: {io[0]} -> {io[1] if self.role == 'stem' else 'logits'}"
-        extras = " +SE" if self.se else ""
-        extras += " +skip" if self.skip else ""
-        return (f"{io[0]} -> e{self.exp_ratio:g} ({self.hidden_chs}) k{self.kernel} s{self.stride} "
-                f"{self.act}{extras} -> {io[1]}")
-
-    def meta(self) -> dict:
-        return {**asdict(self), "shape": self.shape()}
-
-
-def conv_out(size: int, stride: int) -> int:
-    """Output size of a conv with odd kernel k, padding k // 2 and this stride."""
-    return (size - 1) // stride + 1
-
-
-def block_id(stage: int, first: bool, exp_ratio: float, kernel: int) -> str:
-    return f"block-s{stage}-{'first' if first else 'later'}-e{exp_ratio:g}-k{kernel}"
-
-
-def layer_configs(space: SpaceSpec, in_chs: int, image_size: int) -> list[LayerConfig]:
-    """Every distinct layer configuration of the space, in network order."""
-    res = image_size
-    out = [LayerConfig("stem", "stem", in_chs, space.stem_chs, res, stride=space.stem_stride, act=space.stem_act)]
-    res = conv_out(res, space.stem_stride)
-    for i, st in enumerate(space.stages):
-        positions = [(True, space.stage_in_chs(i), st.stride, res)]
-        res = conv_out(res, st.stride)
-        if max(st.depths) > 1:
-            positions.append((False, st.out_chs, 1, res))
-        for first, chs, stride, r in positions:
-            skip = stride == 1 and chs == st.out_chs
-            for e in st.exp_ratios:
-                for k in st.kernels:
-                    out.append(LayerConfig(block_id(i, first, e, k), "block", chs, st.out_chs, r, i, first, e, k,
-                                           hidden_chs(chs, e), stride, st.act, st.se, skip))
-    last = space.stages[-1].out_chs
-    out.append(LayerConfig("head", "head", last, space.head_chs or last, res, act=space.head_act))
-    return out
-
-
-def subnet_layer_ids(subnet: Subnet) -> list[str]:
-    """The layer entries whose latencies add up to this subnet's."""
-    ids = ["stem"]
-    for i, blocks in enumerate(subnet.stages):
-        ids += [block_id(i, j == 0, e, k) for j, (e, k) in enumerate(blocks)]
-    return ids + ["head"]
-
+from tightfit.export.onnx import onnx_bytes
+from tightfit.latency.layers import LayerConfig, calibration_subnets, layer_configs, overhead_configs
+from tightfit.model.extract import extract_block, extract_subnet
+from tightfit.model.space import space_hash
+from tightfit.model.supernet import Supernet, build_supernet
+from tightfit.ondevice.files import BUNDLE_FORMAT, atomic_write, write_bytes, write_json
+from tightfit.recipe import Recipe, load_recipe
+from tightfit.train.checkpoint import CHECKPOINT_NAME
+from tightfit.train.rundir import load_trained
 
 class _Head(nn.Module):
     """Head conv (if any) → global average pool → classifier, exactly as StaticNet ends."""
@@ -142,39 +60,13 @@ def layer_module(supernet: Supernet, cfg: LayerConfig) -> nn.Module:
     """The static torch module for one layer configuration (eval mode, fp32, CPU)."""
     space = supernet.space
     if cfg.role == "block":
-        return _block(supernet.stages[cfg.stage][0 if cfg.first else 1], cfg.exp_ratio, cfg.kernel).eval()
+        return extract_block(supernet.stages[cfg.stage][0 if cfg.first else 1], cfg.exp_ratio, cfg.kernel).eval()
     if cfg.role == "overhead":
         return _Passthrough(cfg.in_chs, cfg.copies, cfg.skip).eval()
     net = extract_subnet(supernet, space.smallest())
     if cfg.role == "stem":
         return net.features[0]
     return _Head(net, bool(space.head_chs)).eval()
-
-
-def overhead_id(chs: int, res: int, skip: bool, copies: int) -> str:
-    return f"{OVERHEAD_ID}-{chs}x{res}x{res}{'-skip' if skip else ''}-x{copies}"
-
-
-def overhead_configs(layers: list[LayerConfig]) -> list[LayerConfig]:
-    """Passthrough probes, once and twice, for every distinct (input shape, skip) of the layers."""
-    shapes = dict.fromkeys((c.in_chs, c.resolution, c.skip) for c in layers)
-    return [LayerConfig(overhead_id(chs, res, skip, n), "overhead", chs, chs, res, skip=skip, copies=n)
-            for chs, res, skip in shapes for n in (1, 2)]
-
-
-def calibration_subnets(space: SpaceSpec, n: int, seed: int = 0) -> list[tuple[str, Subnet]]:
-    """Smallest, largest, middle, then distinct random subnets: n in all (fewer if the space is tiny)."""
-    picks = {"smallest": space.smallest(), "largest": space.largest(), "middle": space.middle()}
-    out: dict[str, tuple[str, Subnet]] = {}
-    for name, s in picks.items():
-        out.setdefault(s.to_key(), (name, s))
-    rng = random.Random(seed)
-    for _ in range(50 * n):
-        if len(out) >= n:
-            break
-        s = space.sample(rng)
-        out.setdefault(s.to_key(), (f"random{len(out)}", s))
-    return list(out.values())[:n]
 
 
 def _class_count(recipe: Recipe) -> int:
@@ -198,9 +90,6 @@ def load_source(source: str | Path) -> tuple[Recipe, Supernet]:
     Weights do not change latency, but the modules (BatchNorm included) must be the real
     ones, so that ONNX Runtime fuses each probe exactly as it fuses the whole network.
     """
-    from tightfit.checkpoint import CHECKPOINT_NAME
-    from tightfit.recipe import load_recipe
-    from tightfit.rundir import load_trained
     source = Path(source)
     if not source.exists():
         raise UserError(f"{source} not found: pass a run directory (or a recipe file)")
@@ -213,7 +102,7 @@ def load_source(source: str | Path) -> tuple[Recipe, Supernet]:
         source = source / "recipe.toml"
     recipe = load_recipe(source)
     torch.manual_seed(recipe.seed)
-    return recipe, Supernet(recipe.space, recipe.data.channels, _class_count(recipe)).eval()
+    return recipe, build_supernet(recipe, _class_count(recipe)).eval()
 
 
 @contextmanager
@@ -261,7 +150,6 @@ def _zip_folder(folder: Path, dest: Path) -> Path:
             for f in sorted(folder.rglob("*")):
                 if f.is_file():
                     zf.write(f, Path(folder.name) / f.relative_to(folder))
-    from tightfit.atomic import atomic_write
     return atomic_write(dest, write)
 
 

@@ -10,7 +10,6 @@ import json
 import math
 import os
 import re
-import socket
 import subprocess
 import sys
 import tempfile
@@ -20,8 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from tightfit.errors import UserError
-
-TABLE_FORMAT = "tightfit-latency-table"
+from tightfit.ondevice.files import TABLE_FORMAT, device_name
 STATS = ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "budget_stat_ms")
 _PACKAGE_ROOT = str(Path(__file__).resolve().parents[2])  # folder that holds tightfit/
 
@@ -32,7 +30,7 @@ class LatencyTable:
     path: Path
     name: str                      # the device name: the file stem
     space_hash: str
-    device: dict[str, Any]
+    hardware: dict[str, Any]       # describe_hardware() of the machine it was measured on
     protocol: dict[str, Any]
     entries: dict[str, dict[str, Any]] = field(repr=False)
 
@@ -76,7 +74,7 @@ def load_table(path: str | Path, expected_space_hash: str | None = None) -> Late
         raise _bad(path, f"has format {got!r}, not {TABLE_FORMAT!r}")
     if data.get("version") != 1:
         raise _bad(path, f"has version {data.get('version')!r}; this tightfit reads version 1")
-    for key, kind in (("space_hash", str), ("entries", dict), ("device", dict), ("protocol", dict)):
+    for key, kind in (("space_hash", str), ("entries", dict), ("hardware", dict), ("protocol", dict)):
         if not isinstance(data.get(key), kind):
             raise _bad(path, f"has no valid '{key}'")
     if not data["entries"]:
@@ -87,13 +85,7 @@ def load_table(path: str | Path, expected_space_hash: str | None = None) -> Late
                         f"'tightfit probe RUN_DIR'")
     for eid, entry in data["entries"].items():
         _check_entry(path, eid, entry)
-    return LatencyTable(path, path.stem, data["space_hash"], data["device"], data["protocol"], data["entries"])
-
-
-def default_device_name() -> str:
-    """This host's name, reduced to characters safe in a file name."""
-    name = re.sub(r"[^A-Za-z0-9._-]+", "-", socket.gethostname()).strip("-.")
-    return name or "host"
+    return LatencyTable(path, path.stem, data["space_hash"], data["hardware"], data["protocol"], data["entries"])
 
 
 def check_device_name(name: str) -> str:
@@ -130,7 +122,7 @@ def profile_host(run_dir: str | Path, name: str | None = None, threads: int = 1,
         raise UserError(f"run directory not found: {run_dir}")
     if threads < 1:
         raise UserError(f"--threads {threads} must be at least 1")
-    out = run_dir / "latency" / f"{check_device_name(name or default_device_name())}.json"
+    out = run_dir / "latency" / f"{check_device_name(name or device_name())}.json"
     from tightfit.latency.probe import write_bundle  # torch: only once the arguments are known good
     with tempfile.TemporaryDirectory(prefix="tightfit-probe-") as tmp:
         bundle = write_bundle(run_dir, Path(tmp) / "probe", n_subnets=n_subnets, progress=progress)

@@ -10,7 +10,7 @@ inside its single top-level folder), holding ONNX files and index.json:
 Latency table (written atomically to --out):
 
   {"format": "tightfit-latency-table", "version": 1, "space_hash": "<from bundle>",
-   "device": {cpu, cores, OS, versions, ...}, "protocol": {...}, "created": "<ISO time>",
+   "hardware": {cpu, cores, OS, versions, ...}, "protocol": {...}, "created": "<ISO time>",
    "bundle": "<path>", "entries": {"<id>": {"kind", "file", "meta", "p50_ms", "p90_ms",
    "p99_ms", "mean_ms", "min_ms", "budget_stat_ms", "budget_percentile", "cv",
    "iqr_over_median", "drift", "repeat_spread", "runs", "stable", "note", "repeats": [...]}}}
@@ -19,7 +19,7 @@ Protocol: onnxruntime CPU provider, batch 1, 1 intra-op and 1 inter-op thread,
 sequential execution, ORT_ENABLE_ALL; warm-up until the running median settles
 (>= 50 runs); then >= 200 timed runs and >= 2 s per subnet. Single-layer probes
 (kind "layer") are many and tiny, so they get their own smaller budget
-(--layer-min-runs, --layer-min-seconds). All entries are timed interleaved in
+(--layer-timed-runs, --layer-timed-seconds). All entries are timed interleaved in
 round-robin chunks (layers in one session, whole subnets in another), and each
 session is repeated in fresh processes;
 headline figures are medians over repeats. A budget is met when the
@@ -31,7 +31,6 @@ from __future__ import annotations
 import argparse
 import dataclasses
 import json
-import os
 import sys
 import tempfile
 import zipfile
@@ -42,15 +41,14 @@ from typing import Any, NoReturn
 
 import onnxruntime as ort
 
-from .device import describe_device
-from .measure_worker import stderr_progress
-from .protocol import Protocol, make_session, measure_repeated, random_input, write_json_atomic
+from tightfit.ondevice.files import BUNDLE_FORMAT, TABLE_FORMAT, check_writable, write_json
+from tightfit.ondevice.hardware import describe_hardware
+from tightfit.ondevice.repeats import measure_repeated
+from tightfit.ondevice.timing import Protocol, make_session, random_input, stderr_progress
 
-BUNDLE_FORMAT = "tightfit-probe-bundle"
-TABLE_FORMAT = "tightfit-latency-table"
 KINDS = ("layer", "subnet")
-QUICK = dict(repeats=1, warmup_min_runs=10, settle_window=5, warmup_max_runs=100, min_runs=50,
-             min_seconds=0.25, layer_min_runs=20, layer_min_seconds=0.05)
+QUICK = dict(repeats=1, warmup_runs=10, settle_window=5, warmup_limit=100, timed_runs=50,
+             timed_seconds=0.25, layer_timed_runs=20, layer_timed_seconds=0.05)
 
 
 class BundleError(Exception):
@@ -158,7 +156,7 @@ def measure_bundle(bundle: Bundle, protocol: Protocol, chunk: int, source: str) 
     """Measure every entry interleaved and assemble the latency table."""
     layers = [e.path for e in bundle.entries if e.kind == "layer"]
     n_sub = len(bundle.entries) - len(layers)
-    floor_s = max(protocol.repeats, 1) * (len(layers) * protocol.layer_min_seconds + n_sub * protocol.min_seconds)
+    floor_s = max(protocol.repeats, 1) * (len(layers) * protocol.layer_timed_seconds + n_sub * protocol.timed_seconds)
     print(f"measuring {len(bundle.entries)} entries ({len(layers)} layer, {n_sub} subnet), "
           f"{max(protocol.repeats, 1)} repeat(s), at least {floor_s:.1f} s of timed runs", file=sys.stderr)
     # Layers and whole subnets are timed in separate sessions of fresh processes: a subnet
@@ -171,7 +169,7 @@ def measure_bundle(bundle: Bundle, protocol: Protocol, chunk: int, source: str) 
         results.update(measure_repeated(subnets, protocol, chunk, (), stderr_progress("measure subnets")))
     return {
         "format": TABLE_FORMAT, "version": 1, "space_hash": bundle.space_hash,
-        "device": describe_device(), "protocol": {**protocol.to_dict(), "chunk": chunk},
+        "hardware": describe_hardware(), "protocol": {**protocol.to_dict(), "chunk": chunk},
         "created": datetime.now(timezone.utc).isoformat(timespec="seconds"), "bundle": source,
         "entries": {e.id: {"kind": e.kind, "file": e.file, "meta": e.meta, **results[e.path]}
                     for e in bundle.entries},
@@ -195,12 +193,12 @@ def _parser() -> argparse.ArgumentParser:
     for flag, typ, help_ in [
         ("--threads", int, "intra-op threads (default 1)"),
         ("--repeats", int, "fresh-process repeats (default 3; 0 or 1 = one in-process run)"),
-        ("--min-runs", int, "timed runs per subnet per repeat (default 200)"),
-        ("--min-seconds", float, "timed seconds per subnet per repeat (default 2.0)"),
-        ("--layer-min-runs", int, "timed runs per layer probe per repeat (default 100)"),
-        ("--layer-min-seconds", float, "timed seconds per layer probe per repeat (default 0.2)"),
-        ("--warmup-min-runs", int, "least warm-up runs (default 50)"),
-        ("--warmup-max-runs", int, "most warm-up runs if the median never settles (default 500)"),
+        ("--timed-runs", int, "timed runs per subnet per repeat (default 200)"),
+        ("--timed-seconds", float, "timed seconds per subnet per repeat (default 2.0)"),
+        ("--layer-timed-runs", int, "timed runs per layer probe per repeat (default 100)"),
+        ("--layer-timed-seconds", float, "timed seconds per layer probe per repeat (default 0.2)"),
+        ("--warmup-runs", int, "least warm-up runs (default 50)"),
+        ("--warmup-limit", int, "most warm-up runs if the median never settles (default 500)"),
         ("--percentile", float, "percentile compared with a budget (default 90)"),
     ]:
         p.add_argument(flag, type=typ, default=None, help=help_)
@@ -211,11 +209,11 @@ def _parser() -> argparse.ArgumentParser:
 def protocol_from_args(args: argparse.Namespace) -> Protocol:
     """Defaults, then --quick, then explicit flags; rejects nonsense values."""
     protocol = Protocol(**QUICK) if args.quick else Protocol()
-    names = ["threads", "repeats", "min_runs", "min_seconds", "layer_min_runs", "layer_min_seconds",
-             "warmup_min_runs", "warmup_max_runs", "percentile"]
+    names = ["threads", "repeats", "timed_runs", "timed_seconds", "layer_timed_runs", "layer_timed_seconds",
+             "warmup_runs", "warmup_limit", "percentile"]
     overrides = {n: getattr(args, n) for n in names if getattr(args, n) is not None}
     for name, value in overrides.items():
-        low = 1 if name in ("threads", "warmup_max_runs") else 0
+        low = 1 if name in ("threads", "warmup_limit") else 0
         if value < low or (name == "percentile" and value > 100):
             raise BundleError(f"--{name.replace('_', '-')} {value} is out of range (must be >= {low}"
                               + (" and <= 100)" if name == "percentile" else ")"))
@@ -224,31 +222,18 @@ def protocol_from_args(args: argparse.Namespace) -> Protocol:
     return dataclasses.replace(protocol, **overrides)
 
 
-def check_writable(out: Path) -> None:
-    """Fail before measuring, not after, when the table cannot be written."""
-    if out.is_dir():
-        raise BundleError(f"--out {out} is a folder; give a file path such as table.json")
-    try:
-        out.parent.mkdir(parents=True, exist_ok=True)
-        fd, probe = tempfile.mkstemp(prefix=f".{out.name}.", suffix=".probe", dir=out.parent)
-        os.close(fd)
-        os.unlink(probe)
-    except OSError as exc:
-        raise BundleError(f"cannot write {out} ({exc.strerror}); choose a writable --out path") from None
-
-
 def main(argv: list[str] | None = None) -> int:
     """CLI entry: 0 on success, 2 on bad input (one `error:` line), 1 if measuring fails."""
     args = _parser().parse_args(argv)
     try:
         protocol = protocol_from_args(args)
-        check_writable(args.out)
+        check_writable(args.out, BundleError, "table.json")
         with tempfile.TemporaryDirectory(prefix="tightfit-bundle-") as tmp:
             bundle = open_bundle(args.bundle, Path(tmp))
             check_loadable(bundle, protocol)
             table = measure_bundle(bundle, protocol, args.chunk, str(args.bundle))
         try:
-            write_json_atomic(args.out, table)
+            write_json(args.out, table)
         except OSError as exc:
             raise BundleError(f"cannot write {args.out} ({exc.strerror}); choose a writable --out path") from None
     except BundleError as exc:

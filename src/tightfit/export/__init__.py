@@ -1,0 +1,1 @@
+"""Export: ONNX files, the cut path every exported model takes, and manifests."""

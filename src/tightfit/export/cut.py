@@ -1,0 +1,103 @@
+"""Cut subnets out of a trained run: recalibrate BN, extract, export ONNX, measure.
+
+This is the path every exported model takes, whether chosen by hand (`tightfit cut`),
+by the demo, or by the search.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+
+from tightfit.ondevice.files import write_bytes
+from tightfit.data.dataset import Dataset, calibration_batches, eval_batches, load_dataset
+from tightfit.errors import UserError
+from tightfit.export.onnx import export_onnx, max_parity_error
+from tightfit.model.extract import StaticNet, count_macs, count_params, extract_subnet
+from tightfit.model.recalibrate import accuracy, preserved_bn_stats, recalibrate_bn
+from tightfit.train.rundir import TrainedRun, load_trained
+from tightfit.model.space import Subnet
+
+PARITY_TOL = 1e-4
+
+
+@dataclass
+class CutResult:
+    name: str
+    key: str
+    params: int
+    macs: int
+    val_acc: float | None         # None when cut without the validation pass (search candidates)
+    onnx_path: Path
+    parity: float                 # max |ORT - torch| over batch 1 and 7
+    p50_ms: float | None = None
+    p90_ms: float | None = None
+
+
+def resolve_subnet(run: TrainedRun, spec: str) -> tuple[str, Subnet]:
+    space = run.recipe.space
+    named = {"largest": space.largest, "smallest": space.smallest, "middle": space.middle}
+    if spec in named:
+        return spec, named[spec]()
+    return spec, space.parse_key(spec)
+
+
+def cut_one(run: TrainedRun, ds: Dataset, name: str, subnet: Subnet, out_dir: Path,
+            validate: bool = True) -> tuple[CutResult, StaticNet]:
+    """Recalibrated static network for ``subnet``, its ONNX file in out_dir/name, and its figures.
+    ``validate=False`` skips the full validation pass: the search cuts several candidates to
+    measure them and scores only the one it picks (on the ONNX file it ships)."""
+    cfg, sn = run.recipe, run.supernet
+    calib = calibration_batches(ds, cfg.train.batch_size, cfg.train.recalibration_batches, cfg.seed)
+    sn.set_subnet(subnet)
+    with preserved_bn_stats(sn):
+        recalibrate_bn(sn, calib)
+        net = extract_subnet(sn, subnet)
+    val = accuracy(net, eval_batches(ds.val_x, ds.val_y, ds, cfg.train.eval_batch_size)) if validate else None
+    folder = out_dir / name
+    data = export_onnx(net, folder / "model.onnx", cfg.data.channels, cfg.data.image_size)
+    parity = max_parity_error(net, data, cfg.data.channels, cfg.data.image_size)
+    if parity > PARITY_TOL:
+        raise RuntimeError(f"ONNX Runtime output differs from torch by {parity:.2e} for {subnet.to_key()}")
+    write_bytes(folder / "subnet.txt", (subnet.to_key() + "\n").encode())
+    result = CutResult(name, subnet.to_key(), count_params(net), count_macs(net, cfg.data.channels, cfg.data.image_size),
+                       val, folder / "model.onnx", parity)
+    return result, net
+
+
+def measure_latency(results: list[CutResult], repeats: int = 1, timed_seconds: float = 1.0) -> None:
+    """Batch-1 ONNX Runtime latency, 1 thread, all models interleaved (tightfit.ondevice protocol)."""
+    from tightfit.ondevice.repeats import measure_repeated
+    from tightfit.ondevice.timing import Protocol
+    proto = Protocol(repeats=repeats, timed_seconds=timed_seconds)
+    figures = measure_repeated([str(r.onnx_path) for r in results], proto)
+    for r in results:
+        r.p50_ms, r.p90_ms = figures[str(r.onnx_path)]["p50_ms"], figures[str(r.onnx_path)]["p90_ms"]
+
+
+def cut_subnets(run_dir: str | Path, specs: list[str], out: str | Path | None = None) -> list[CutResult]:
+    run = load_trained(run_dir)
+    picked = [resolve_subnet(run, spec) for spec in specs]  # a bad key fails before anything is written
+    ds = load_dataset(run.recipe.data, run.recipe.seed)
+    if ds.class_names != run.class_names:
+        raise UserError(f"the data the recipe points at has classes {ds.class_names}, the run was trained on {run.class_names}")
+    out_dir = Path(out) if out else Path(run_dir) / "exports"
+    try:
+        out_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise UserError(f"cannot create the export folder {out_dir} ({e.strerror}); choose another --out") from None
+    results = []
+    for (name, subnet), spec in zip(picked, specs):
+        results.append(cut_one(run, ds, name if name != spec or len(name) < 24 else f"subnet{len(results)}",
+                               subnet, out_dir)[0])
+    measure_latency(results)
+    return results
+
+
+def format_table(rows: list[CutResult]) -> str:
+    head = f"{'subnet':<10} {'params':>9} {'MACs':>11} {'val acc %':>9} {'p50 ms':>8} {'p90 ms':>8}  key"
+    lines = [head, "-" * len(head)]
+    for r in rows:
+        lines.append(f"{r.name:<10} {r.params:>9,} {r.macs:>11,} {r.val_acc:>9.2f} "
+                     f"{r.p50_ms or float('nan'):>8.3f} {r.p90_ms or float('nan'):>8.3f}  {r.key}")
+    return "\n".join(lines)

@@ -1,0 +1,139 @@
+"""The manifest and the export folder: model.onnx, state_dict.pt, then manifest.json.
+
+The manifest is what a deployer and `tightfit verify` rely on: how to feed the model,
+what it predicts, how accurate it is on which split, how fast it measured under which
+protocol on which device, the budget it was chosen for, and the file's SHA-256 so a
+swapped or damaged file is caught. manifest.json is written last, so a folder with a
+manifest is always complete.
+"""
+from __future__ import annotations
+
+import hashlib
+import io
+import platform
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Optional
+
+import torch
+from torch import nn
+
+from tightfit.data.dataset import Dataset, eval_batches
+from tightfit.export.cut import CutResult
+from tightfit.export.onnx import ort_session, ort_top1
+from tightfit.model.arithmetic import describe_architecture
+from tightfit.model.space import SpaceSpec, Subnet
+from tightfit.ondevice.files import MANIFEST_FORMAT, MANIFEST_VERSION, write_bytes, write_json
+from tightfit.train.rundir import TrainedRun
+LATENCY_KEYS = ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "cv", "iqr_over_median", "repeat_spread", "stable", "note")
+
+
+@dataclass(frozen=True)
+class Accuracy:
+    top1: float
+    images: int
+    split: str                     # "validation" or "test"
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"top1": round(self.top1, 4), "images": self.images, "split": self.split}
+
+
+def sha256_hex(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
+
+
+def software_versions() -> dict[str, str]:
+    import numpy
+    import onnx
+    import onnxruntime
+
+    from tightfit import __version__
+    return {"tightfit": __version__, "torch": torch.__version__, "onnx": onnx.__version__,
+            "onnxruntime": onnxruntime.__version__, "numpy": numpy.__version__,
+            "python": platform.python_version()}
+
+
+def latency_section(summary: Optional[dict[str, Any]], hardware: dict[str, Any], protocol: dict[str, Any],
+                    predicted_ms: float, note: str = "") -> dict[str, Any]:
+    """Measured figures (median over repeats) with how and where; None figures when not measured."""
+    out: dict[str, Any] = {"hardware": hardware, "protocol": protocol}
+    for k in LATENCY_KEYS:
+        out[k] = summary.get(k) if summary else None
+    if summary is None:
+        out["stable"] = False
+        out["note"] = note or "not measured"
+    elif note:
+        out["note"] = f"{out['note']}; {note}" if out.get("note") not in (None, "", "ok") else note
+    out["predicted_ms"] = round(predicted_ms, 4)
+    out["measured"] = summary is not None
+    return out
+
+
+def build_manifest(*, space: SpaceSpec, subnet: Subnet, params: int, macs: int, onnx_data: bytes,
+                   channels: int, image_size: int, class_names: tuple[str, ...], mean: tuple[float, ...],
+                   std: tuple[float, ...], validation: Accuracy, test: Accuracy, latency: dict[str, Any],
+                   budget_ms: float, percentile: float, device: str, recipe_name: str,
+                   recipe_hash: str) -> dict[str, Any]:
+    """The manifest dict (see the project contract for the fields)."""
+    return {
+        "format": MANIFEST_FORMAT, "version": MANIFEST_VERSION, "model_file": "model.onnx",
+        "sha256": sha256_hex(onnx_data),
+        "architecture": {"key": subnet.to_key(), "depths": list(subnet.depths), "params": params, "macs": macs,
+                         "description": describe_architecture(space, subnet, channels, image_size,
+                                                              len(class_names))},
+        "input": {"name": "image", "layout": "NCHW", "dtype": "float32", "shape": [None, channels, image_size, image_size],
+                  "channels": channels, "image_size": image_size, "color": "RGB" if channels == 3 else "grey",
+                  "scale": "divide by 255, then (x-mean)/std", "mean": list(mean), "std": list(std),
+                  "resize": f"shorter side to {image_size}, centre crop"},
+        "output": {"name": "logits", "classes": list(class_names)},
+        "accuracy": {"validation": validation.to_dict(), "test": test.to_dict()},
+        "latency": latency,
+        "budget": {"ms": float(budget_ms), "percentile": float(percentile), "device": device},
+        "software": software_versions(),
+        "recipe": {"name": recipe_name, "hash": recipe_hash},
+        "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+    }
+
+
+def state_dict_bytes(net: nn.Module) -> bytes:
+    buf = io.BytesIO()
+    torch.save(net.state_dict(), buf)
+    return buf.getvalue()
+
+
+def write_export(export_dir: str | Path, onnx_data: bytes, net: nn.Module, manifest: dict[str, Any]) -> Path:
+    """Write model.onnx, state_dict.pt, then manifest.json (each atomically); returns the folder."""
+    export_dir = Path(export_dir)
+    if manifest["sha256"] != sha256_hex(onnx_data):
+        raise ValueError("manifest sha256 does not match the ONNX bytes being written")
+    (export_dir / "manifest.json").unlink(missing_ok=True)  # an old manifest must never describe new files
+    write_bytes(export_dir / "model.onnx", onnx_data)
+    write_bytes(export_dir / "state_dict.pt", state_dict_bytes(net))
+    write_json(export_dir / "manifest.json", manifest)
+    return export_dir
+
+
+def shipped_accuracy(onnx_data: bytes, ds: Dataset, split: str, batch_size: int = 512) -> Accuracy:
+    """Top-1 of the exported file itself (ONNX Runtime) on a whole split: what the manifest
+    claims is what the deployer gets; 2-3x faster than the same pass in eager torch."""
+    x, y = getattr(ds, f"{split}_x"), getattr(ds, f"{split}_y")
+    top1, n = ort_top1(ort_session(onnx_data, torch.get_num_threads()), eval_batches(x, y, ds, batch_size))
+    return Accuracy(top1, n, "validation" if split == "val" else split)
+
+
+def export_pick(run: TrainedRun, ds: Dataset, *, subnet: Subnet, cut: CutResult, net: nn.Module, export_dir: str | Path,
+                latency: dict[str, Any], budget_ms: float, percentile: float, device: str) -> dict[str, Any]:
+    """Score the exported file on the whole validation and test splits (for the manifest only:
+    nothing is chosen on them here), then write the export folder.
+    ``cut`` is the candidate's cut (its ONNX file)."""
+    cfg = run.recipe
+    data = Path(cut.onnx_path).read_bytes()
+    manifest = build_manifest(
+        space=cfg.space, subnet=subnet, params=cut.params, macs=cut.macs, onnx_data=data,
+        channels=cfg.data.channels, image_size=cfg.data.image_size, class_names=run.class_names,
+        mean=run.mean, std=run.std, validation=shipped_accuracy(data, ds, "val"),
+        test=shipped_accuracy(data, ds, "test"), latency=latency, budget_ms=budget_ms,
+        percentile=percentile, device=device, recipe_name=cfg.name, recipe_hash=cfg.hash())
+    write_export(export_dir, data, net, manifest)
+    return manifest

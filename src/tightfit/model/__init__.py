@@ -1,0 +1,4 @@
+"""The model: search space, elastic layers, supernet, static extraction, BN recalibration.
+
+space.py and arithmetic.py are torch-free; this package root imports nothing.
+"""

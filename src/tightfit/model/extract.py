@@ -1,0 +1,125 @@
+"""Cut one subnet out of the supernet as a standalone network of plain torch.nn layers.
+
+The static network holds copies of the sliced (and kernel-transformed) weights and the
+BatchNorm statistics currently in the supernet, so recalibrate first (recalibrate.py).
+Its layer order mirrors torchvision's MobileNetV2, so state_dicts line up one to one.
+"""
+from __future__ import annotations
+
+import torch
+from torch import nn
+from torch.utils.flop_counter import FlopCounterMode
+
+from tightfit.model.arithmetic import hidden_chs, squeeze_chs
+from tightfit.model.elastic import ElasticSqueezeExcite
+from tightfit.model.space import Subnet
+from tightfit.model.supernet import ElasticInvertedResidual, Supernet, act_layer
+
+
+class SqueezeExcite(nn.Module):
+    def __init__(self, chs: int, sq_chs: int):
+        super().__init__()
+        self.pool = nn.AdaptiveAvgPool2d(1)
+        self.reduce = nn.Conv2d(chs, sq_chs, 1)
+        self.act = nn.ReLU()
+        self.expand = nn.Conv2d(sq_chs, chs, 1)
+        self.gate = nn.Hardsigmoid()
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return x * self.gate(self.expand(self.act(self.reduce(self.pool(x)))))
+
+
+class InvertedResidual(nn.Module):
+    def __init__(self, layers: nn.Sequential, use_skip: bool):
+        super().__init__()
+        self.conv = layers
+        self.use_skip = use_skip
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return x + self.conv(x) if self.use_skip else self.conv(x)
+
+
+class StaticNet(nn.Module):
+    """features (stem, blocks, head) → global average pool → classifier, like torchvision's MobileNetV2."""
+
+    def __init__(self, features: nn.Sequential, classifier: nn.Sequential):
+        super().__init__()
+        self.features = features
+        self.pool = nn.AdaptiveAvgPool2d(1)
+        self.classifier = classifier
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return self.classifier(self.pool(self.features(x)).flatten(1))
+
+
+def _conv(weight: torch.Tensor, stride: int = 1, groups: int = 1) -> nn.Conv2d:
+    out_chs, in_per_group, k, _ = weight.shape
+    conv = nn.Conv2d(in_per_group * groups, out_chs, k, stride, k // 2, groups=groups, bias=False)
+    conv.weight.data.copy_(weight)
+    return conv
+
+
+def _bn(src: nn.BatchNorm2d, chs: int) -> nn.BatchNorm2d:
+    bn = nn.BatchNorm2d(chs, eps=src.eps, momentum=src.momentum if src.momentum is not None else 0.1)
+    bn.weight.data.copy_(src.weight[:chs])
+    bn.bias.data.copy_(src.bias[:chs])
+    bn.running_mean.copy_(src.running_mean[:chs])
+    bn.running_var.copy_(src.running_var[:chs])
+    bn.num_batches_tracked.copy_(src.num_batches_tracked)
+    return bn
+
+
+def _squeeze_excite(src: ElasticSqueezeExcite, chs: int) -> SqueezeExcite:
+    sq = squeeze_chs(chs)
+    se = SqueezeExcite(chs, sq)
+    se.reduce.weight.data.copy_(src.reduce.weight[:sq, :chs])
+    se.reduce.bias.data.copy_(src.reduce.bias[:sq])
+    se.expand.weight.data.copy_(src.expand.weight[:chs, :sq])
+    se.expand.bias.data.copy_(src.expand.bias[:chs])
+    return se
+
+
+def extract_block(b: ElasticInvertedResidual, exp_ratio: float, kernel: int) -> InvertedResidual:
+    mid = hidden_chs(b.in_chs, exp_ratio)
+    act = type(b.act)
+    layers: list[nn.Module] = []
+    if b.has_expand:
+        layers += [nn.Sequential(_conv(b.expand.active_weight(b.in_chs, mid)), _bn(b.bn1, mid), act())]
+    layers += [nn.Sequential(_conv(b.dw.active_weight(mid, kernel), b.stride, groups=mid), _bn(b.bn2, mid), act())]
+    if b.se is not None:
+        layers.append(_squeeze_excite(b.se, mid))
+    layers += [_conv(b.project.active_weight(mid, b.out_chs)), _bn(b.bn3, b.out_chs)]
+    return InvertedResidual(nn.Sequential(*layers), b.use_skip)
+
+
+@torch.no_grad()
+def extract_subnet(supernet: Supernet, subnet: Subnet) -> StaticNet:
+    """Return the static network for ``subnet`` (eval mode, on the CPU, fp32)."""
+    stem_conv, stem_bn, _ = supernet.stem
+    features: list[nn.Module] = [nn.Sequential(_conv(stem_conv.weight, stem_conv.stride[0]),
+                                               _bn(stem_bn, stem_bn.num_features), act_layer(supernet.space.stem_act)())]
+    for blocks, choice in zip(supernet.stages, subnet.stages):
+        features += [extract_block(b, e, k) for b, (e, k) in zip(blocks, choice)]
+    if isinstance(supernet.head, nn.Sequential):
+        conv, bn, _ = supernet.head
+        features.append(nn.Sequential(_conv(conv.weight), _bn(bn, bn.num_features), act_layer(supernet.space.head_act)()))
+    lin = nn.Linear(supernet.classifier.in_features, supernet.classifier.out_features)
+    lin.weight.data.copy_(supernet.classifier.weight)
+    lin.bias.data.copy_(supernet.classifier.bias)
+    net = StaticNet(nn.Sequential(*features), nn.Sequential(nn.Dropout(supernet.space.dropout), lin))
+    return net.float().cpu().eval()
+
+
+def count_params(model: nn.Module) -> int:
+    return sum(p.numel() for p in model.parameters())
+
+
+@torch.no_grad()
+def count_macs(model: nn.Module, in_chs: int, image_size: int) -> int:
+    """Multiply-accumulates of one forward pass at batch 1: torch's forward FLOP count / 2."""
+    was_training = model.training
+    model.eval()
+    with FlopCounterMode(display=False) as counter:
+        model(torch.zeros(1, in_chs, image_size, image_size))
+    model.train(was_training)
+    return counter.get_total_flops() // 2

@@ -1,0 +1,1 @@
+"""Report: read a run folder, draw its plots, write one HTML page."""

@@ -1,0 +1,1 @@
+"""Search: evolution under predicted latency, accuracy cache and fitness, measuring and choosing picks."""

@@ -1,0 +1,205 @@
+"""The last step of a search: measure the top candidates directly, choose the pick, export it.
+
+Predictions only rank candidates; on the machine a table describes, the measured percentile
+decides. The pick is exported with its manifest to RUN_DIR/exports/<device>-<budget>ms/.
+"""
+from __future__ import annotations
+
+import shutil
+import time
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Any, Callable, Optional
+
+import numpy as np
+
+from tightfit.data.dataset import Dataset
+from tightfit.export.cut import CutResult, cut_one
+from tightfit.export.manifest import export_pick, latency_section
+from tightfit.latency.table import LatencyTable
+from tightfit.model.extract import StaticNet
+from tightfit.ondevice.files import device_name
+from tightfit.ondevice.hardware import describe_hardware
+from tightfit.ondevice.repeats import measure_repeated
+from tightfit.ondevice.timing import Protocol
+from tightfit.search.budgets import budget_label
+from tightfit.search.cache import CachedAccuracy, CachedLatency
+from tightfit.search.evolution import Candidate, pareto_front
+from tightfit.search.fitness import RunAccuracy
+from tightfit.search.settings import SearchSettings
+from tightfit.train.rundir import TrainedRun
+
+@dataclass
+class SearchContext:
+    """The trained run, its data and the shared accuracy cache, for every (device, budget)."""
+    run_dir: Path
+    run: TrainedRun
+    ds: Dataset
+    settings: SearchSettings
+    fitness: CachedAccuracy
+    compute: RunAccuracy
+    progress: bool
+    say: Callable[[str], None]
+
+
+UNVERIFIED = "unverified: measure on the device with tightfit verify"
+
+
+def same_host(table_hardware: dict[str, Any]) -> bool:
+    """Direct measurement only means something on the machine the table describes."""
+    here = describe_hardware()
+    return all(table_hardware.get(k) == here.get(k) for k in ("cpu_model", "logical_cores", "hostname"))
+
+
+def verification_protocol(table_protocol: dict[str, Any]) -> Protocol:
+    """The table's protocol, with at least 2 fresh-process repeats and the full per-model timing."""
+    p, full = Protocol.from_dict(table_protocol), Protocol()
+    return replace(p, repeats=max(2, p.repeats), timed_seconds=max(p.timed_seconds, full.timed_seconds),
+                   timed_runs=max(p.timed_runs, full.timed_runs))
+
+
+@dataclass
+class Tried:
+    cand: Candidate
+    cut: Optional[CutResult]
+    net: Optional[StaticNet]
+    measured: Optional[dict[str, Any]] = None
+
+
+@dataclass
+class Choice:
+    pick: Tried
+    fits: bool
+    note: str
+    tried: list[Tried]
+
+    def ratio(self) -> Optional[float]:
+        return measured_ratio(self.tried)
+
+
+Measure = Callable[[list[Candidate], int], list[Tried]]
+"""(candidates, how many were tried before) -> the candidates cut and measured (``Tried.measured`` set)."""
+
+
+def measured_ratio(tried: list[Tried]) -> Optional[float]:
+    """Median measured/predicted over every candidate measured: how far off the predictor is now."""
+    r = [t.measured["budget_stat_ms"] / t.cand.latency_ms for t in tried if t.measured and t.cand.latency_ms > 0]
+    return float(np.median(r)) if r else None
+
+
+def _most_accurate(tried: list[Tried]) -> Tried:
+    return max(tried, key=lambda t: (t.cand.fitness, -t.measured["budget_stat_ms"]))
+
+
+def measure_and_choose(ranked: list[Candidate], budget_ms: float, measure: Measure, top: int,
+                       fallback: Callable[[], Candidate], say: Callable[[str], None], guard: float = 0.0,
+                       rounds: int = 3) -> Choice:
+    """Measure the first ``top`` candidates (front first) interleaved; the most accurate whose measured
+    percentile fits within budget x (1 - guard) wins: a later session on the same machine can measure
+    the tail a few percent slower, and QA re-measures. If none does, rescale predictions by
+    measured/predicted and try the most accurate of those that should then fit (the smallest subnet
+    last); if still none, the most accurate that fits the budget itself."""
+    tried: list[Tried] = []
+    ratio: Optional[float] = None
+    target = budget_ms * (1.0 - guard)
+    for attempt in range(rounds):
+        done = {t.cand.key for t in tried}
+        pool = [c for c in ranked if c.key not in done and (ratio is None or c.latency_ms * ratio <= target)]
+        if not pool:
+            last = fallback()
+            pool = [] if last.key in done else [last]
+        if not pool:
+            break
+        tried += measure(pool[:top], len(tried))
+        fitting = [t for t in tried if t.measured["budget_stat_ms"] <= target]
+        if fitting:
+            note = "" if attempt == 0 else "the most accurate candidates measured over budget: fell back to faster ones"
+            return Choice(_most_accurate(fitting), True, note, tried)
+        ratio = measured_ratio(tried)
+        say(f"  none of {len(tried)} measured candidates fits {target:.4g} ms (the budget less its {100 * guard:g} % "
+            f"guard; measured = {ratio:.2f} x predicted): trying faster ones")
+    within = [t for t in tried if t.measured["budget_stat_ms"] <= budget_ms]
+    if within:
+        return Choice(_most_accurate(within), True,
+                      f"no candidate left the {100 * guard:g} % guard margin; this one fits the budget", tried)
+    return Choice(min(tried, key=lambda t: t.measured["budget_stat_ms"]), False,
+                  "no candidate measured within the budget: this is the fastest one tried", tried)
+
+
+def front_first(ranked: list[Candidate]) -> list[Candidate]:
+    """Pareto-front candidates first, most accurate first: each is faster than the one before,
+    so the measured set spans latencies even when the most accurate few are alike."""
+    front = {k for k, _, _ in pareto_front([(c.key, c.fitness, c.latency_ms) for c in ranked])}
+    return [c for c in ranked if c.key in front] + [c for c in ranked if c.key not in front]
+
+
+class _Measurer:
+    """Cuts candidates into ``staging`` and measures them whole, interleaved; keeps the time spent."""
+
+    def __init__(self, ctx: SearchContext, staging: Path, protocol: Protocol):
+        self.ctx, self.staging, self.protocol = ctx, staging, protocol
+        self.clock: dict[str, float] = {}
+
+    def cut(self, cands: list[Candidate], start: int) -> list[Tried]:
+        t0 = time.perf_counter()
+        out = [Tried(c, *cut_one(self.ctx.run, self.ctx.ds, f"candidate{start + i}", c.subnet, self.staging,
+                                 validate=False)) for i, c in enumerate(cands)]
+        self.clock["cut"] = self.clock.get("cut", 0.0) + time.perf_counter() - t0
+        return out
+
+    def __call__(self, cands: list[Candidate], start: int) -> list[Tried]:
+        batch = self.cut(cands, start)
+        t0 = time.perf_counter()
+        figures = measure_repeated([str(t.cut.onnx_path) for t in batch], self.protocol)
+        self.clock["measure"] = self.clock.get("measure", 0.0) + time.perf_counter() - t0
+        for t in batch:
+            t.measured = figures[str(t.cut.onnx_path)]
+        return batch
+
+
+def choose_and_export(ctx: SearchContext, table: LatencyTable, ranked: list[Candidate], budget_ms: float,
+                      latency: CachedLatency, verifiable: bool) -> dict[str, Any]:
+    """Verify (when the table is for this host), export the pick, and return its picks.json row."""
+    label = f"{device_name(table.name)}-{budget_label(budget_ms)}"
+    staging = ctx.run_dir / "search" / "staging" / label
+    shutil.rmtree(staging, ignore_errors=True)
+    protocol = verification_protocol(table.protocol)
+    measurer = _Measurer(ctx, staging, protocol)
+    smallest = ctx.run.recipe.space.smallest()
+
+    def fallback() -> Candidate:
+        return Candidate(smallest.to_key(), smallest, ctx.fitness(smallest), latency(smallest), -1)
+
+    if verifiable:
+        top = ctx.settings.top
+        ctx.say(f"  measuring the top {min(top, len(ranked))} candidates directly ({protocol.repeats} repeats)")
+        choice = measure_and_choose(front_first(ranked), budget_ms, measurer, top, fallback, ctx.say,
+                                    guard=ctx.settings.guard)
+        pick, fits, note, ratio, hardware = choice.pick, choice.fits, choice.note, choice.ratio(), describe_hardware()
+    else:
+        within = [c for c in ranked if c.latency_ms <= budget_ms] or [fallback()]
+        pick, fits, note, ratio, hardware = measurer.cut(within[:1], 0)[0], True, UNVERIFIED, None, table.hardware
+    export_dir = ctx.run_dir / "exports" / label
+    t0 = time.perf_counter()
+    manifest = export_pick(ctx.run, ctx.ds, subnet=pick.cand.subnet, cut=pick.cut, net=pick.net, export_dir=export_dir,
+                           latency=latency_section(pick.measured, hardware, protocol.to_dict(), pick.cand.latency_ms,
+                                                   note),
+                           budget_ms=budget_ms, percentile=protocol.percentile, device=table.name)
+    measurer.clock["score and export the pick"] = time.perf_counter() - t0
+    ctx.say("  after the search: " + ", ".join(f"{k} {v:.1f} s" for k, v in measurer.clock.items()))
+    _remove_staging(staging)
+    if note:
+        ctx.say(f"  {note}")
+    return {"device": table.name, "budget_ms": budget_ms, "percentile": protocol.percentile, "key": pick.cand.key,
+            "val_acc": pick.cand.fitness, "predicted_ms": round(pick.cand.latency_ms, 5), "measured": pick.measured,
+            "export_dir": str(export_dir), "fits": fits, "verified": pick.measured is not None, "note": note,
+            "measured_over_predicted": None if ratio is None else round(ratio, 4),
+            "test_acc": manifest["accuracy"]["test"]["top1"]}
+
+
+def _remove_staging(staging: Path) -> None:
+    shutil.rmtree(staging, ignore_errors=True)
+    try:
+        staging.parent.rmdir()  # the staging folder goes once no budget uses it
+    except OSError:
+        pass

@@ -1,0 +1,98 @@
+"""Command line of `tightfit search` and its table of picks (the search itself is tightfit.search.driver)."""
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any, Optional
+
+from tightfit.errors import UserError
+from tightfit.search.budgets import parse_budget
+from tightfit.search.settings import SearchSettings
+
+
+def format_picks(rows: list[dict[str, Any]]) -> str:
+    head = (f"{'device':<16} {'budget':>8} {'val %':>6} {'test %':>6} {'pred ms':>8} {'meas ms':>8} "
+            f"{'margin':>7} {'use':>6}  key")
+    lines = [head, "-" * len(head)]
+    for r in rows:
+        m = r["measured"]["budget_stat_ms"] if r["measured"] else None
+        used = m if m is not None else r["predicted_ms"]
+        lines.append(f"{r['device'][:16]:<16} {r['budget_ms']:>6.4g}ms {r['val_acc']:>6.2f} {r['test_acc']:>6.2f} "
+                     f"{r['predicted_ms']:>8.4f} {m if m is not None else float('nan'):>8.4f} "
+                     f"{100 * (r['budget_ms'] - used) / r['budget_ms']:>6.1f}% {100 * used / r['budget_ms']:>5.1f}%  "
+                     f"{r['key']}{'' if r['fits'] else '  (DOES NOT FIT)'}{'' if r['verified'] else '  (unverified)'}")
+    pct = rows[0]["percentile"] if rows else 90.0
+    lines.append(f"meas ms = measured p{pct:g} (median over repeats); margin and use are against the budget "
+                 "(predicted where unverified)")
+    return "\n".join(lines)
+
+
+def _positive(name: str, value: int, minimum: int = 1) -> int:
+    if value < minimum:
+        raise UserError(f"--{name} {value} is too small: use at least {minimum}")
+    return value
+
+
+def _slack(percent: Optional[float]) -> Optional[float]:
+    if percent is not None and not 0 <= percent <= 100:
+        raise UserError(f"--slack {percent:g} must be a percentage between 0 and 100")
+    return None if percent is None else percent / 100
+
+
+def _guard(percent: float) -> float:
+    if not 0 <= percent < 50:
+        raise UserError(f"--guard {percent:g} must be a percentage from 0 to below 50")
+    return percent / 100
+
+
+def _cmd_search(args: Any) -> int:
+    if args.threads:
+        import torch
+        torch.set_num_threads(args.threads)
+    for b in args.budget:
+        parse_budget(b)
+    settings = SearchSettings(population=_positive("population", args.population, 2),
+                              evaluations=_positive("evaluations", args.evaluations), seed=args.seed,
+                              top=_positive("top", args.top), val_images=_positive("val-images", args.val_images, 0),
+                              backend=args.eval_backend, slack=_slack(args.slack),
+                              drift_check=args.drift_check, guard=_guard(args.guard))
+    from tightfit.search.driver import run_search  # torch: only once the arguments are known good
+    rows = run_search(args.run, args.table, args.budget, settings, progress=not args.quiet)
+    print(format_picks(rows))
+    print(f"picks: {Path(args.run) / 'search' / 'picks.json'}")
+    return 0
+
+
+def add_search_parser(sub: Any) -> None:
+    s = sub.add_parser("search", help="find the most accurate subnet within each latency budget, verify, export",
+                       description="For each latency table (device) and budget: regularized evolution over the "
+                                   "space under the table's predicted latency, fitness = validation accuracy after "
+                                   "BN recalibration (cached in RUN/search). The top candidates are exported and "
+                                   "measured directly when the table is for this machine; the most accurate whose "
+                                   "measured percentile fits the budget less --guard is exported to "
+                                   "RUN/exports/DEVICE-BUDGETms. A pick that uses under 85 % of its budget "
+                                   "triggers one shorter search with the limit rescaled by measured/predicted.")
+    s.add_argument("run", help="run directory written by 'tightfit train'")
+    s.add_argument("--table", action="append", required=True, help="latency table JSON; repeatable (one per device)")
+    s.add_argument("--budget", action="append", required=True, help="latency budget such as 0.3ms, 300us; repeatable")
+    s.add_argument("--population", type=int, default=16, help="aging-evolution population (default 16)")
+    s.add_argument("--evaluations", type=int, default=96,
+                   help="distinct candidates evaluated per budget, first population included (default 96)")
+    s.add_argument("--seed", type=int, default=0, help="seed of the evolution's random draws (default 0)")
+    s.add_argument("--top", type=int, default=4, help="candidates measured directly per budget (default 4)")
+    s.add_argument("--val-images", type=int, default=0,
+                   help="validation images per accuracy evaluation (default 0 = the whole validation split)")
+    s.add_argument("--slack", type=float, default=None,
+                   help="search up to this many percent over each budget (predicted) when picks are measured here "
+                        "(default: the predictor's leave-one-out error, 5-25)")
+    s.add_argument("--guard", type=float, default=5.0,
+                   help="a pick measured here must fit this many percent under its budget (default 5): the same "
+                        "machine measured the tail 8-12 %% slower in a later session on a busy day")
+    s.add_argument("--drift-check", action="store_true",
+                   help="before each budget, re-measure the table's calibration subnets on this machine (about 20 s) "
+                        "and rescale the search limit by their time now/then (off by default: on a shared VM the "
+                        "reading was noise; a pick far under its budget triggers a corrected second search anyway)")
+    s.add_argument("--eval-backend", choices=("onnxruntime", "torch"), default="onnxruntime",
+                   help="run the validation pass in ONNX Runtime (default, faster) or torch")
+    s.add_argument("--threads", type=int, default=None, help="torch/ORT CPU threads for evaluation (default: all cores)")
+    s.add_argument("--quiet", action="store_true", help="no progress bar")
+    s.set_defaults(func=_cmd_search)

@@ -1,0 +1,252 @@
+"""`tightfit search`: for each latency table and budget, the most accurate subnet that fits.
+
+Per (device, budget): regularized evolution under the predicted latency (evolution.py),
+fitness = validation accuracy with inherited weights after BN recalibration (never the
+test split), cached per subnet in RUN_DIR/search/accuracy_cache.jsonl so re-runs and
+other budgets reuse it. Then the top candidates are exported whole and measured directly
+(interleaved, fresh processes) and only the measured percentile decides the pick
+(choose.py). Each pick is exported with a manifest to RUN_DIR/exports/<device>-<budget>ms/.
+"""
+from __future__ import annotations
+
+import json
+import time
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Any, Callable, Optional
+
+from tqdm import tqdm
+
+from tightfit.data.dataset import load_dataset
+from tightfit.errors import UserError
+from tightfit.latency.drift import drifted_limit, measure_drift
+from tightfit.latency.predict import LatencyPredictor, load_predictor
+from tightfit.latency.table import LatencyTable
+from tightfit.model.space import SpaceSpec
+from tightfit.ondevice.files import append_jsonl, device_name, read_jsonl, write_json, write_text
+from tightfit.recipe import Recipe
+from tightfit.search.budgets import budget_label, parse_budget
+from tightfit.search.cache import AccuracyCache, CachedAccuracy, CachedLatency
+from tightfit.search.choose import SearchContext, choose_and_export, same_host
+from tightfit.search.evolution import Candidate, fastest_check, pareto_front, regularized_evolution
+from tightfit.search.fitness import RunAccuracy
+from tightfit.search.settings import SearchSettings
+from tightfit.train.rundir import load_trained
+
+# ----------------------------------------------------------------------------- one (device, budget)
+
+@dataclass
+class BudgetResult:
+    device: str
+    budget_ms: float
+    candidates: list[Candidate]
+    seconds: float
+    fresh: int
+    cached: int
+
+
+def search_slack(settings: SearchSettings, predictor: LatencyPredictor, verifiable: bool) -> float:
+    """How far above the budget (predicted) the search may go. Direct measurement decides the
+    pick, so where it is possible, a predictor that overestimates must not hide subnets that
+    fit; where it is not (another device), predictions are all there is: no slack."""
+    if not verifiable:
+        return 0.0
+    if settings.slack is not None:
+        return settings.slack
+    loo = getattr(getattr(predictor, "calibration", None), "loo_mape", None)
+    return min(0.25, max(0.05, (10.0 if loo is None else loo) / 100))
+
+
+def search_budget(space: SpaceSpec, fitness: CachedAccuracy, latency: CachedLatency, budget_ms: float,
+                  device: str, settings: SearchSettings, log_path: Optional[Path] = None,
+                  progress: bool = False, limit_ms: Optional[float] = None) -> BudgetResult:
+    """Evolution under predicted latency <= limit_ms (default: the budget); every evaluated
+    candidate is appended to ``log_path``."""
+    cfg = settings.evolution()
+    limit_ms = budget_ms if limit_ms is None else limit_ms
+    fresh0, hits0, t0 = fitness.fresh, fitness.hits, time.perf_counter()
+    bar = _bar(cfg.evaluations, f"{device} {budget_label(budget_ms)}", progress)
+    best = [float("-inf")]
+
+    def on_eval(c: Candidate) -> None:
+        rec = fitness.cache.get(c.key) or {}
+        if log_path is not None:
+            append_jsonl(log_path, {"device": device, "budget_ms": budget_ms, "generation": c.generation,
+                                    "key": c.key, "val_acc": c.fitness, "predicted_ms": round(c.latency_ms, 5),
+                                    "params": rec.get("params"), "macs": rec.get("macs"),
+                                    "limit_ms": round(limit_ms, 5)})
+        best[0] = max(best[0], c.fitness)
+        if bar is not None:
+            bar.update(1)
+            bar.set_postfix(best=f"{best[0]:.2f}")
+
+    try:
+        cands = regularized_evolution(space, fitness, latency, limit_ms, cfg, on_eval, device)
+    finally:
+        if bar is not None:
+            bar.close()
+    return BudgetResult(device, budget_ms, cands, time.perf_counter() - t0,
+                        fitness.fresh - fresh0, fitness.hits - hits0)
+
+
+def _bar(total: int, desc: str, enabled: bool) -> Optional[tqdm]:
+    if not enabled:
+        return None
+    return tqdm(total=total, desc=desc, unit="eval", leave=False)
+
+
+def drop_logged(path: Path, device: str, budget_ms: float) -> None:
+    """Forget an earlier search's lines for this (device, budget), so the log shows the latest one."""
+    rows = read_jsonl(path)[0]
+    keep = [r for r in rows if not (r.get("device") == device and r.get("budget_ms") == budget_ms)]
+    if len(keep) != len(rows):
+        write_text(path, "".join(json.dumps(r) + "\n" for r in keep))
+
+
+def write_front(path: Path, device: str, log_path: Path) -> list[dict[str, Any]]:
+    """Pareto front (validation accuracy vs predicted latency) over every candidate logged for
+    the device, whichever budget or earlier invocation evaluated it."""
+    points = {r["key"]: (r["key"], r["val_acc"], r["predicted_ms"]) for r in read_jsonl(log_path)[0]
+              if r.get("device") == device}
+    rows = [{"key": k, "val_acc": a, "predicted_ms": ms} for k, a, ms in pareto_front(list(points.values()))]
+    write_json(path, rows)
+    return rows
+
+
+def ranked_within(candidates: list[Candidate], budget_ms: float) -> list[Candidate]:
+    """Distinct candidates under the predicted budget, most accurate first (faster first on ties)."""
+    seen: dict[str, Candidate] = {}
+    for c in candidates:
+        if c.latency_ms <= budget_ms:
+            seen[c.key] = c
+    return sorted(seen.values(), key=lambda c: (-c.fitness, c.latency_ms))
+
+
+def time_report(r: BudgetResult, phases: dict[str, float]) -> str:
+    """Where one budget's search time went."""
+    n = len(r.candidates)
+    other = r.seconds - sum(phases.values())
+    spent = ", ".join(f"{k} {v:.1f} s" for k, v in [*phases.items(), ("other", other)])
+    return (f"{r.device} {budget_label(r.budget_ms)}: {n} candidates ({r.fresh} evaluated, {r.cached} from cache) "
+            f"in {r.seconds:.1f} s = {r.fresh / max(r.seconds, 1e-9):.2f} evaluations/s; {spent}")
+
+
+def load_predictors(paths: list[str], recipe: Recipe) -> list[tuple[LatencyTable, LatencyPredictor]]:
+    """(table, predictor of the table's budget percentile) per --table; tables measured for
+    another space are refused by the latency module."""
+    out = []
+    for p in paths:
+        predictor = load_predictor(recipe, p, target="budget_stat_ms")
+        out.append((predictor.table, predictor))
+    names = [t.name for t, _ in out]
+    if len(set(names)) != len(names):
+        raise UserError(f"two --table files name the same device {names}: pass each device once")
+    return out
+
+
+def run_search(run_dir: str | Path, table_paths: list[str], budgets: list[str], settings: SearchSettings,
+               progress: bool = True, say: Callable[[str], None] = print) -> list[dict[str, Any]]:
+    """Search, verify and export every (device, budget); returns the rows of picks.json written."""
+    budget_ms = [parse_budget(b) for b in budgets]
+    run_dir = Path(run_dir)
+    run = load_trained(run_dir)
+    cfg = run.recipe
+    tables = load_predictors(table_paths, cfg)
+    ds = load_dataset(cfg.data, cfg.seed)
+    if ds.class_names != run.class_names:
+        raise UserError(f"the data the recipe points at has classes {ds.class_names}, the run was trained on {run.class_names}")
+    for table, predictor in tables:  # impossible budgets fail before anything is written
+        for b in budget_ms:
+            fastest_check(cfg.space, predictor.predict_ms, b, table.name)
+    compute = RunAccuracy(run, ds, settings.val_images, settings.backend)
+    fitness = CachedAccuracy(AccuracyCache(run_dir / "search" / "accuracy_cache.jsonl", compute.tag(run_dir)), compute)
+    ctx = SearchContext(run_dir, run, ds, settings, fitness, compute, progress, say)
+    say(f"fitness: validation top-1 on {compute.images} of {len(ds.val_y)} validation images ({compute.backend}) "
+        f"after BN recalibration on {len(compute.calib)} training batches; {len(fitness.cache.entries)} cached")
+    picks: list[dict[str, Any]] = []
+    for table, predictor in tables:
+        picks += _search_device(ctx, table, predictor, budget_ms)
+    return picks
+
+
+def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPredictor, budgets: list[float]) -> list[dict[str, Any]]:
+    """Every budget for one device: search, then verify and export the pick."""
+    out, compute, say = ctx.run_dir / "search", ctx.compute, ctx.say
+    latency, seen, picks = CachedLatency(predictor), [], []
+    verifiable = same_host(table.hardware)
+    slack = search_slack(ctx.settings, predictor, verifiable)
+    say(f"{table.name}: " + (f"picks measured here; search up to {100 * slack:.0f} % over each budget (predicted)"
+                             if verifiable else "another machine: picks by predicted latency, to be verified there"))
+    for b in budgets:
+        drop_logged(out / "candidates.jsonl", table.name, b)
+        t0 = time.perf_counter()
+        drift = _drift(ctx, table, predictor) if verifiable and ctx.settings.drift_check else None
+        # picks measured here must fit budget x (1 - guard): search around that, not the budget itself
+        base = b * (1 - (ctx.settings.guard if verifiable else 0.0)) * (1 + slack)
+        limit = drifted_limit(base, drift)
+        if drift is not None:
+            say(f"  {budget_label(b)}: this machine now runs the table's calibration subnets at {drift:.2f} x their "
+                f"profiled time (drift check {time.perf_counter() - t0:.1f} s)"
+                + (f": searching up to {limit:.4g} ms predicted" if limit != base else ""))
+        settings = ctx.settings
+        for attempt in range(2):
+            before = compute.phases(latency)
+            result = search_budget(ctx.run.recipe.space, ctx.fitness, latency, b, table.name, settings,
+                                   out / "candidates.jsonl", ctx.progress, limit_ms=limit)
+            say(time_report(result, {k: v - before[k] for k, v in compute.phases(latency).items()}))
+            seen += result.candidates
+            write_front(out / f"front-{device_name(table.name)}.json", table.name, out / "candidates.jsonl")
+            row = choose_and_export(ctx, table, ranked_within(seen, limit), b, latency, verifiable)
+            row["session_drift"] = drift
+            again = corrected_limit(row, base, limit) if attempt == 0 else None
+            if again is None:
+                break
+            say(f"  the pick uses {row_use(row):.0%} of the budget and the measured candidates ran "
+                f"{row['measured_over_predicted']:.2f} x their predictions: searching again up to {again:.4g} ms predicted")
+            limit = again
+            # a correction, not a new search: half the evaluations (the budget's time bar holds on a noisy host)
+            settings = replace(settings, evaluations=max(settings.population, settings.evaluations // 2))
+        picks.append(row)
+        merge_picks(out / "picks.json", picks)
+    return picks
+
+
+def _drift(ctx: SearchContext, table: LatencyTable, predictor: LatencyPredictor) -> Optional[float]:
+    """This machine's speed now against the table's, from its calibration subnets (None without them)."""
+    cfg = ctx.run.recipe
+    return measure_drift(ctx.run.supernet, table, getattr(predictor, "calibration_keys", []), cfg.data.channels, cfg.data.image_size)
+
+
+UNDER_USE = 0.85  # a verified pick below this share of its budget triggers one corrected search
+
+
+def row_use(row: dict[str, Any]) -> float:
+    return row["measured"]["budget_stat_ms"] / row["budget_ms"]
+
+
+def corrected_limit(row: dict[str, Any], base_ms: float, limit_ms: float) -> Optional[float]:
+    """Where a verified pick uses less than UNDER_USE of its budget, the uncorrected limit
+    `base_ms` divided by measured/predicted over the measured candidates, if that differs from
+    the `limit_ms` searched by more than 3 % (else None). Below 1 the predictor overestimated:
+    a wider search brings in faster-than-predicted, more accurate subnets. Above 1 every top
+    candidate measured over and the pick fell back far below them (the search's candidates all
+    sit in a band just under its limit): a narrower search looks where subnets now fit."""
+    ratio = row.get("measured_over_predicted")
+    if not (row.get("measured") and row.get("fits") and ratio) or row_use(row) >= UNDER_USE:
+        return None
+    new = base_ms / ratio
+    return new if abs(new / limit_ms - 1) > 0.03 else None
+
+
+def merge_picks(path: Path, rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """picks.json keeps earlier (device, budget) picks and replaces the ones searched again."""
+    new = {(r["device"], r["budget_ms"]) for r in rows}
+    old = []
+    if path.is_file():
+        try:
+            old = [r for r in json.loads(path.read_text("utf-8")) if (r.get("device"), r.get("budget_ms")) not in new]
+        except (json.JSONDecodeError, AttributeError, TypeError):
+            old = []
+    merged = old + rows
+    write_json(path, merged)
+    return merged

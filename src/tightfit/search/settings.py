@@ -1,0 +1,28 @@
+"""Settings of one `tightfit search` call (torch-free, so the command line can build them cheaply)."""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Optional
+
+from tightfit.search.evolution import EvolutionSettings
+
+
+@dataclass(frozen=True)
+class SearchSettings:
+    population: int = 16
+    evaluations: int = 96         # distinct candidates per budget, initial population included
+    sample_size: int = 6
+    seed: int = 0
+    top: int = 4                  # candidates measured directly per budget
+    val_images: int = 0           # cap on validation images per evaluation (0 = the whole split)
+    backend: str = "onnxruntime"  # validation pass: "onnxruntime" (fast) or "torch"
+    slack: Optional[float] = None # search up to budget x (1 + slack) when picks are measured here;
+    #                               None: the predictor's leave-one-out error, clamped to 5-25 %
+    drift_check: bool = False     # re-measure the table's calibration subnets before each budget (this host only);
+    #                               off by default: on the benchmark VM its reading did not predict the candidates'
+    #                               measured/predicted ratio (docs/measurements.md), the corrected second search does
+    guard: float = 0.05           # a measured pick must fit budget x (1 - guard): later sessions measure the tail slower
+
+    def evolution(self) -> EvolutionSettings:
+        return EvolutionSettings(population=self.population, sample_size=min(self.sample_size, self.population),
+                                 evaluations=max(self.evaluations, 1), seed=self.seed)

@@ -1,0 +1,1 @@
+"""Training: the sandwich rule, the loop, torchrun, checkpoints, the run folder, baselines."""

@@ -1,0 +1,53 @@
+"""Hand-scaled baselines: what a user without a supernet would ship.
+
+One block design (the space's largest choice per stage) scaled by a width multiplier and
+fewer blocks per stage, each member trained alone from scratch. A member is a recipe whose
+search space holds exactly one subnet, so it trains with the same code, data pipeline,
+augmentation and schedule as the supernet (tightfit.train.loop treats a one-subnet space as a
+plain network) and extracts, exports and measures like any pick.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+
+from tightfit.recipe import Recipe
+from tightfit.model.space import SpaceSpec, StageSpec
+
+
+def make_divisible(value: float, divisor: int = 8, minimum: int = 8) -> int:
+    """Round channels to a multiple of ``divisor`` without dropping more than 10 %
+    (common practice in MobileNet reference code)."""
+    v = max(minimum, int(value + divisor / 2) // divisor * divisor)
+    return v + divisor if v < 0.9 * value else v
+
+
+@dataclass(frozen=True)
+class Member:
+    name: str
+    width: float      # multiplier on every stage's (and the stem's) channels
+    depth: str        # "max", "mid" or "min" blocks per stage
+
+    def describe(self) -> str:
+        return f"width x{self.width:g}, {self.depth} depth"
+
+
+def _depth(stage: StageSpec, which: str) -> int:
+    ds = sorted(stage.depths)
+    return {"max": ds[-1], "min": ds[0], "mid": ds[len(ds) // 2]}[which]
+
+
+def member_space(space: SpaceSpec, member: Member) -> SpaceSpec:
+    """A one-subnet space: the largest block choice per stage, scaled channels and depth."""
+    stages = tuple(replace(st, out_chs=make_divisible(st.out_chs * member.width), depths=(_depth(st, member.depth),),
+                           exp_ratios=(max(st.exp_ratios),), kernels=(max(st.kernels),)) for st in space.stages)
+    head = make_divisible(space.head_chs * member.width) if space.head_chs else 0
+    return replace(space, stem_chs=make_divisible(space.stem_chs * member.width), stages=stages, head_chs=head)
+
+
+def member_recipe(recipe: Recipe, member: Member) -> Recipe:
+    """Same data, augmentation, optimiser, schedule and epochs as the supernet's recipe."""
+    return replace(recipe, name=f"{recipe.name}-{member.name}", space=member_space(recipe.space, member))
+
+
+DEFAULT_FAMILY = (Member("w1.0-max", 1.0, "max"), Member("w0.75-max", 0.75, "max"), Member("w0.5-mid", 0.5, "mid"),
+                  Member("w0.5-min", 0.5, "min"), Member("w0.35-min", 0.35, "min"))

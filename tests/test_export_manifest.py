@@ -1,0 +1,77 @@
+"""The export manifest: its fields, the file hash, and what an unverified latency says."""
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+
+import numpy as np
+import onnxruntime as ort
+import pytest
+import torch
+
+from tightfit.export.manifest import Accuracy, build_manifest, latency_section, write_export
+
+
+REQUIRED = {
+    "": ("format", "version", "model_file", "sha256", "architecture", "input", "output", "accuracy", "latency",
+         "budget", "software", "recipe", "created"),
+    "architecture": ("key", "depths", "params", "macs", "description"),
+    "input": ("name", "layout", "dtype", "shape", "channels", "image_size", "color", "scale", "mean", "std", "resize"),
+    "output": ("name", "classes"),
+    "latency": ("hardware", "protocol", "p50_ms", "p90_ms", "p99_ms", "mean_ms", "cv", "iqr_over_median",
+                "repeat_spread", "stable", "note"),
+    "budget": ("ms", "percentile", "device"),
+    "software": ("tightfit", "torch", "onnx", "onnxruntime", "numpy", "python"),
+    "recipe": ("name", "hash"),
+}
+
+
+def test_manifest_fields_and_sha256(tmp_path):
+    from tightfit.export.onnx import onnx_bytes
+    from tightfit.model.extract import count_macs, count_params, extract_subnet
+    from tightfit.ondevice.hardware import describe_hardware
+    from tightfit.ondevice.timing import Protocol
+    from tightfit.model.supernet import Supernet
+    from helpers import tiny_recipe
+    recipe = tiny_recipe()
+    space = recipe.space
+    subnet = space.middle()
+    sn = Supernet(space, 3, 4)
+    sn.set_subnet(subnet)
+    net = extract_subnet(sn, subnet)
+    data = onnx_bytes(net, 3, 16)
+    measured = {"p50_ms": 0.1, "p90_ms": 0.12, "p99_ms": 0.2, "mean_ms": 0.11, "cv": 0.05, "iqr_over_median": 0.02,
+                "repeat_spread": 0.01, "stable": True, "note": "ok", "budget_stat_ms": 0.12}
+    lat = latency_section(measured, describe_hardware(), Protocol().to_dict(), 0.115)
+    m = build_manifest(space=space, subnet=subnet, params=count_params(net), macs=count_macs(net, 3, 16),
+                       onnx_data=data, channels=3, image_size=16, class_names=("a", "b", "c", "d"),
+                       mean=(0.5, 0.5, 0.5), std=(0.2, 0.2, 0.2), validation=Accuracy(81.234, 600, "validation"),
+                       test=Accuracy(80.5, 900, "test"), latency=lat, budget_ms=0.15, percentile=90.0,
+                       device="this-host", recipe_name=recipe.name, recipe_hash=recipe.hash())
+    folder = write_export(tmp_path / "exp", data, net, m)
+    for section, keys in REQUIRED.items():
+        where = m if not section else m[section]
+        assert not [k for k in keys if k not in where], section
+    written = json.loads((folder / "manifest.json").read_text())
+    # The file's digest computed independently with hashlib (Python standard library).
+    assert written["sha256"] == hashlib.sha256((folder / "model.onnx").read_bytes()).hexdigest()
+    assert written["architecture"]["key"] == subnet.to_key() and written["input"]["shape"] == [None, 3, 16, 16]
+    assert written["accuracy"]["validation"]["split"] == "validation" and written["accuracy"]["test"]["split"] == "test"
+    assert [d for d in written["architecture"]["description"] if d["type"] == "inverted_residual"].__len__() == \
+        sum(subnet.depths)
+    state = torch.load(folder / "state_dict.pt", weights_only=True)
+    assert set(state) == set(net.state_dict())
+    # ONNX Runtime reads the file and agrees with the static network.
+    x = torch.randn(2, 3, 16, 16)
+    out = ort.InferenceSession(str(folder / "model.onnx"), providers=["CPUExecutionProvider"]).run(
+        None, {"image": x.numpy()})[0]
+    assert np.abs(out - net(x).detach().numpy()).max() < 1e-4
+    with pytest.raises(ValueError):
+        write_export(tmp_path / "bad", data + b"x", net, m)
+
+
+def test_manifest_unverified_latency_says_so():
+    lat = latency_section(None, {"cpu_model": "elsewhere"}, {"threads": 1}, 0.42, "unverified: measure on the device")
+    assert lat["measured"] is False and lat["p90_ms"] is None and lat["stable"] is False
+    assert "unverified" in lat["note"] and math.isclose(lat["predicted_ms"], 0.42)

@@ -1,0 +1,101 @@
+"""Constrained regularized evolution vs random search, the band under the budget, impossible budgets,
+the Pareto front (brute force)."""
+from __future__ import annotations
+
+import random
+import statistics
+
+import pytest
+
+from helpers import BUDGET, FakePredictor, dominated, synthetic_fitness, wide_space
+from tightfit.errors import UserError
+from tightfit.search.evolution import (EvolutionSettings, band_floor, pareto_front, random_search,
+                                       regularized_evolution)
+
+
+def test_evolution_beats_random_at_equal_evaluations():
+    # Real et al. 2019 (Fig. 3): regularized evolution reaches better models than random
+    # search for the same number of evaluated models. Checked here on a known function.
+    space = wide_space()
+    predictor = FakePredictor(space)
+    wins, gaps = 0, []
+    for seed in range(6):
+        fitness = synthetic_fitness(100 + seed)
+        cfg = EvolutionSettings(evaluations=300, seed=seed)  # the shipped population and tournament size
+        evo = regularized_evolution(space, fitness, predictor.predict_ms, BUDGET, cfg)
+        rnd = random_search(space, fitness, predictor.predict_ms, BUDGET, 300, seed=seed)
+        assert len(evo) == len(rnd) == 300
+        for c in evo + rnd:  # the constraint holds for every candidate ever evaluated
+            assert predictor.predict_ms(c.subnet) <= BUDGET
+            assert space.contains(c.subnet)
+        best_evo, best_rnd = max(c.fitness for c in evo), max(c.fitness for c in rnd)
+        wins += best_evo > best_rnd
+        gaps.append(best_evo - best_rnd)
+    assert wins >= 5, gaps
+    assert statistics.mean(gaps) > 1.0, gaps
+
+
+def test_band_draws_first_members_just_under_the_budget():
+    # Latency is cheap, accuracy is not: the first members come from [0.9 x budget, budget]
+    # when that band holds subnets, and the unbanded random baseline does not. (Common practice
+    # in latency-constrained search: within a budget the larger subnet is usually the more
+    # accurate, so evaluations are spent near the constraint's edge.)
+    space = wide_space()
+    predictor = FakePredictor(space)
+    budget = 2.0
+    cfg = EvolutionSettings(population=12, evaluations=12, seed=3)
+    first = regularized_evolution(space, lambda s: 0.0, predictor.predict_ms, budget, cfg)
+    assert all(0.9 * budget <= c.latency_ms <= budget for c in first)
+    plain = random_search(space, lambda s: 0.0, predictor.predict_ms, budget, 40, seed=3)
+    assert any(c.latency_ms < 0.9 * budget for c in plain)
+    banded = random_search(space, lambda s: 0.0, predictor.predict_ms, budget, 12, seed=3, band=0.9)
+    assert all(0.9 * budget <= c.latency_ms <= budget for c in banded)
+
+
+def test_band_floor_is_relative_to_the_largest_when_everything_fits():
+    # A budget above the whole space must not make the band empty (then every draw would fall
+    # back to plain sampling): the band is taken from the largest subnet's latency instead.
+    space = wide_space()
+    predictor = FakePredictor(space)
+    largest = predictor.predict_ms(space.largest())
+    assert band_floor(space, predictor.predict_ms, 10 * largest, 0.9) == pytest.approx(0.9 * largest)
+    assert band_floor(space, predictor.predict_ms, 1.0, 0.9) == pytest.approx(0.9)
+    assert band_floor(space, predictor.predict_ms, 1.0, 0.0) == 0.0
+
+
+def test_initial_population_respects_a_tight_budget():
+    # A budget only a sliver of the space meets: rejection sampling fails, shrinking still
+    # finds subnets within it, and every evaluated candidate fits.
+    space = wide_space()
+    predictor = FakePredictor(space)
+    smallest = predictor.predict_ms(space.smallest())
+    budget = smallest * 1.15
+    cfg = EvolutionSettings(population=8, sample_size=3, evaluations=40, seed=1, sample_tries=50)
+    cands = regularized_evolution(space, lambda s: -predictor.predict_ms(s), predictor.predict_ms, budget, cfg)
+    assert cands and all(c.latency_ms <= budget for c in cands)
+
+
+def test_impossible_budget_names_the_fastest_figure():
+    space = wide_space()
+    predictor = FakePredictor(space)
+    fastest = predictor.predict_ms(space.smallest())
+    with pytest.raises(UserError) as err:
+        regularized_evolution(space, lambda s: 0.0, predictor.predict_ms, fastest * 0.9, EvolutionSettings(),
+                              device="pi4")
+    msg = str(err.value)
+    assert f"{fastest:.3f} ms" in msg and "pi4" in msg and "budget" in msg
+
+
+# ----------------------------------------------------------------------------- Pareto front
+
+@pytest.mark.parametrize("seed", range(4))
+def test_pareto_front_matches_brute_force(seed):
+    rng = random.Random(seed)
+    # Integer grid values so ties (equal accuracy or latency) occur.
+    points = [(f"s{i}", float(rng.randint(0, 30)), float(rng.randint(1, 30))) for i in range(200)]
+    points += [("dupA", 31.0, 5.0), ("dupB", 31.0, 5.0)]
+    front = pareto_front(points)
+    brute = {p[0] for p in points if not dominated(p, points)}
+    assert {p[0] for p in front} == brute
+    lat = [p[2] for p in front]
+    assert lat == sorted(lat)
