@@ -74,7 +74,7 @@ class State:
 def smoke_recipe(recipe):
     """512 images, one epoch, a space of a few subnets: checks the wiring, not the claim."""
     stages = tuple(replace(st, depths=(min(st.depths),), kernels=(min(st.kernels),),
-                           exp_ratios=tuple(sorted({min(st.exp_ratios), max(st.exp_ratios)})))
+                           expansions=tuple(sorted({min(st.expansions), max(st.expansions)})))
                    for st in recipe.space.stages)
     return replace(recipe, data=replace(recipe.data, max_train_images=256), space=replace(recipe.space, stages=stages),
                    train=replace(recipe.train, epochs=1, batch_size=64, recalibration_batches=2))
@@ -146,7 +146,7 @@ def train_member(recipe, member, family_dir: Path, smoke: bool) -> dict:
     run = family_dir / member.name
     train(r, run, resume=checkpoint_path(run).exists(), ds=smoke_data(recipe, smoke))
     return {"name": member.name, "describe": member.describe(), "key": r.space.largest().to_key(),
-            "channels": [r.space.stem_chs] + [s.out_chs for s in r.space.stages], "throughput": throughput(run)}
+            "channels": [r.space.stem_channels] + [s.out_channels for s in r.space.stages], "throughput": throughput(run)}
 
 
 def export_member(run: Path) -> tuple[Path, int, int]:

@@ -89,9 +89,9 @@ def torch_shadowed_env(tmp_path, src: str):
 
 def wide_space() -> SpaceSpec:
     """Five stages, depths 1-4, three expansions, three kernels: about 10^15 subnets."""
-    stages = tuple(StageSpec(out_chs=16 * (i + 1), stride=2 if i % 2 == 0 else 1, depths=(1, 2, 3, 4),
-                             exp_ratios=(3, 4, 6), kernels=(3, 5, 7)) for i in range(5))
-    return SpaceSpec(stem_chs=16, stem_stride=1, stages=stages)
+    stages = tuple(StageSpec(out_channels=16 * (i + 1), stride=2 if i % 2 == 0 else 1, depths=(1, 2, 3, 4),
+                             expansions=(3, 4, 6), kernels=(3, 5, 7)) for i in range(5))
+    return SpaceSpec(stem_channels=16, stem_stride=1, stages=stages)
 
 
 class FakePredictor:

@@ -111,7 +111,7 @@ class Shared:
             index = json.loads((bundle / "index.json").read_text())
             stats = ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "budget_stat_ms")
             entries = {e["id"]: {"kind": e["kind"], "meta": e["meta"],
-                                 **dict.fromkeys(stats, 0.1 if e["id"].startswith("overhead") else 0.5)}
+                                 **dict.fromkeys(stats, 0.1 if e["id"].startswith("passthrough") else 0.5)}
                        for e in index["entries"]}
             self._table = self.root / "table.json"
             self._table.write_text(json.dumps({
@@ -317,8 +317,8 @@ CASES = [
          ("unreadable or truncated", "retrain"), lambda env: _truncate(env.run() / "checkpoint.pt")),
     Case("checkpoint-carrying-code", ("probe", "run"), ("refusing checkpoint", f"it would load {os.system.__module__}.system", "written by 'tightfit train'"),
          _evil_checkpoint),
-    Case("cut-key-outside-space", ("cut", "run", "--subnet", "smallest", "--subnet", "e9k9"),
-         ("subnet key 'e9k9' is not in this search space", "the recipe allows"), lambda env: env.run()),
+    Case("cut-key-outside-space", ("cut", "run", "--subnet", "smallest", "--subnet", "9:9"),
+         ("subnet key '9:9' is not in this search space", "the recipe allows"), lambda env: env.run()),
     Case("cut-out-under-a-file", ("cut", "run", "--subnet", "smallest", "--out", "file.txt/x"),
          ("cannot create the export folder file.txt/x", "choose another --out"),
          lambda env: (env.run(), (env.tmp / "file.txt").write_text("x"))),

@@ -17,7 +17,7 @@ SPACE = tiny_recipe().space
 
 @pytest.mark.parametrize("which", ["smallest", "largest", "random"])
 def test_onnx_matches_torch(tmp_path, which):
-    net = Supernet(SPACE, 3, 5, kernel_transform=True)
+    net = Supernet(SPACE, 3, 5, kernel_mode="transform")
     perturb(net, seed=3)
     sub = SPACE.sample(random.Random(4)) if which == "random" else getattr(SPACE, which)()
     net.set_subnet(sub)

@@ -14,11 +14,11 @@ SUBNETS = {"smallest": SPACE.smallest(), "largest": SPACE.largest(), "middle": S
            **{f"random{i}": SPACE.sample(random.Random(i)) for i in range(5)}}
 
 
-@pytest.mark.parametrize("kernel_transform", [False, True])
+@pytest.mark.parametrize("kernel_mode", ["centre", "transform"])
 @pytest.mark.parametrize("name", list(SUBNETS))
-def test_static_net_equals_supernet(name, kernel_transform):
+def test_static_net_equals_supernet(name, kernel_mode):
     # Product quality bar: max abs diff <= 1e-5 in fp32, eval mode.
-    net = Supernet(SPACE, 3, 5, kernel_transform=kernel_transform)
+    net = Supernet(SPACE, 3, 5, kernel_mode=kernel_mode)
     perturb(net, seed=list(SUBNETS).index(name))  # fixed per subnet, the same in every process
     sub = SUBNETS[name]
     net.set_subnet(sub)
@@ -34,8 +34,8 @@ def test_static_net_equals_supernet(name, kernel_transform):
 
 def test_kernel_transform_starts_as_centre_crop():
     # Cai et al. 2020 (Sec. 3.2): transformation matrices are initialised to identity.
-    a = Supernet(SPACE, 3, 5, kernel_transform=False)
-    b = Supernet(SPACE, 3, 5, kernel_transform=True)
+    a = Supernet(SPACE, 3, 5, kernel_mode="centre")
+    b = Supernet(SPACE, 3, 5, kernel_mode="transform")
     b.load_state_dict(a.state_dict(), strict=False)
     dw_a, dw_b = a.stages[2][0].dw, b.stages[2][0].dw
     for k in (3, 5, 7):
@@ -49,7 +49,7 @@ def test_gradients_reach_exactly_the_active_parameters(name):
     # autograd. Centre-crop kernels map every active weight element to one static element, so the
     # supernet's gradient must equal the static net's element for element and be zero elsewhere:
     # equal non-zero counts and equal L1 mass (inactive elements would add to both).
-    net = Supernet(SPACE, 3, 5, kernel_transform=False)
+    net = Supernet(SPACE, 3, 5, kernel_mode="centre")
     perturb(net)
     sub = SUBNETS[name]
     net.set_subnet(sub)
@@ -70,7 +70,7 @@ def test_gradients_reach_exactly_the_active_parameters(name):
 
 
 def test_kernel_transform_gradients_only_for_kernels_on_the_path():
-    net = Supernet(SPACE, 3, 5, kernel_transform=True)
+    net = Supernet(SPACE, 3, 5, kernel_mode="transform")
     sub = SPACE.smallest()  # kernel 3 in the last stage: 7 -> 5 -> 3, both matrices used
     net.set_subnet(sub)
     net(torch.randn(2, 3, 16, 16)).sum().backward()

@@ -84,12 +84,12 @@ def bundle(run_dir) -> Path:
 
 
 @torch.no_grad()
-def input_shapes(net, modules, in_chs: int, size: int) -> list[tuple[int, int]]:
+def input_shapes(net, modules, in_channels: int, size: int) -> list[tuple[int, int]]:
     """(channels, height) entering each of `modules`, recorded with forward hooks while `net` runs."""
     shapes = []
     hooks = [m.register_forward_hook(lambda m, inp, out: shapes.append((inp[0].shape[1], inp[0].shape[2])))
              for m in modules]
-    net(torch.zeros(1, in_chs, size, size))
+    net(torch.zeros(1, in_channels, size, size))
     for h in hooks:
         h.remove()
     return shapes
@@ -101,7 +101,7 @@ def test_layer_ids_match_the_shapes_the_network_runs(tmp_path, head_channels, st
     torch's forward hooks see in the extracted network (torch.nn.Module.register_forward_hook)."""
     recipe, supernet = load_source(make_run(tmp_path, head_channels=head_channels, stem_stride=stem_stride))
     configs = {c.id: c for c in layer_configs(recipe.space, 3, 15)}
-    per_block = [len(st.exp_ratios) * len(st.kernels) for st in recipe.space.stages]
+    per_block = [len(st.expansions) * len(st.kernels) for st in recipe.space.stages]
     later = [max(st.depths) > 1 for st in recipe.space.stages]
     assert len(configs) == 2 + sum(n * (1 + lt) for n, lt in zip(per_block, later))  # stem + head + blocks
     rng = random.Random(0)
@@ -110,14 +110,14 @@ def test_layer_ids_match_the_shapes_the_network_runs(tmp_path, head_channels, st
         net = extract_subnet(supernet, subnet)
         # the head probe starts at the head conv, or at the pool when there is none
         seen = input_shapes(net, list(net.features) + ([] if head_channels else [net.pool]), 3, 15)
-        assert [(configs[i].in_chs, configs[i].resolution) for i in ids] == seen
+        assert [(configs[i].in_channels, configs[i].resolution) for i in ids] == seen
         blocks = [configs[i] for i in ids if configs[i].role == "block"]
         positions = [j for stage in subnet.stages for j in range(len(stage))]
         for cfg, block, j in zip(blocks, list(net.features)[1:], positions):
             probe = layer_module(supernet, cfg)
             assert repr(probe) == repr(block)  # same layers, channels, kernels, strides, activations
             if j <= 1:  # the very module (later positions share one probe: weights do not change latency)
-                x = torch.randn(1, cfg.in_chs, cfg.resolution, cfg.resolution)
+                x = torch.randn(1, cfg.in_channels, cfg.resolution, cfg.resolution)
                 torch.testing.assert_close(probe(x), block(x), rtol=0, atol=0)
 
 
@@ -135,7 +135,7 @@ def test_bundle_is_valid_and_covers_random_subnets(bundle, run_dir):
     for e in parsed.entries:
         dims = [d.dim_value or d.dim_param for d in onnx.load(e.path).graph.input[0].type.tensor_type.shape.dim]
         if e.kind == "layer":
-            assert dims[1:] == [e.meta["in_chs"], e.meta["resolution"], e.meta["resolution"]]
+            assert dims[1:] == [e.meta["in_channels"], e.meta["resolution"], e.meta["resolution"]]
         else:
             assert recipe.space.contains(recipe.space.parse_key(e.meta["key"]))
     keys = [e.meta["key"] for e in parsed.entries if e.kind == "subnet"]
@@ -151,7 +151,7 @@ def synthetic_table(bundle: Path, tmp: Path, fit=lambda x: x, **overrides) -> Pa
     entries = {}
     for e in index["entries"]:
         if e["kind"] == "layer":
-            v = rng.randint(1, 50) / 1000 + (0.3 if e["id"].startswith("overhead") else 0.5)
+            v = rng.randint(1, 50) / 1000 + (0.3 if e["id"].startswith("passthrough") else 0.5)
             entries[e["id"]] = {"kind": "layer", "meta": e["meta"], **dict.fromkeys(
                 ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "budget_stat_ms"), v)}
     table = {"format": "tightfit-latency-table", "version": 1, "space_hash": index["space_hash"],
@@ -176,7 +176,7 @@ def test_predictor_sums_the_layers_a_subnet_runs(bundle, tmp_path):
     recipe, supernet = load_source(bundle.parent)
     table = load_table(synthetic_table(bundle, tmp_path))
     pred = LatencyPredictor(table, recipe.space, 3, 15)
-    by_shape = {(m["in_chs"], m["hidden_chs"], m["kernel"], m["stride"], m["resolution"]): v["p50_ms"]
+    by_shape = {(m["in_channels"], m["hidden_channels"], m["kernel"], m["stride"], m["resolution"]): v["p50_ms"]
                 for v in table.entries.values() if (m := v["meta"]).get("role") == "block"}
     rng = random.Random(3)
     for subnet in [recipe.space.largest()] + [recipe.space.sample(rng) for _ in range(15)]:
@@ -192,7 +192,7 @@ def test_predictor_sums_the_layers_a_subnet_runs(bundle, tmp_path):
             return (2 * table.entries[overhead_id(chs, res, skip, 1)]["p50_ms"]
                     - table.entries[overhead_id(chs, res, skip, 2)]["p50_ms"])
         configs = {c.id: c for c in layer_configs(recipe.space, 3, 15)}
-        overheads = sum(overhead(c.in_chs, c.resolution, c.skip) for c in map(configs.get, subnet_layer_ids(subnet)))
+        overheads = sum(overhead(c.in_channels, c.resolution, c.skip) for c in map(configs.get, subnet_layer_ids(subnet)))
         assert pred.adjusted_sum_ms(subnet) == pytest.approx(expected - overheads + overhead(3, 15, False), rel=1e-12)
 
 

@@ -18,7 +18,7 @@ def test_architecture_size_matches_torch_counters(which):
     from helpers import tiny_recipe
     space = tiny_recipe().space  # has squeeze-excite in its last stage
     for head in (0, 24):
-        sp = SpaceSpec(space.stem_chs, 2 if head else 1, space.stages, head_chs=head)
+        sp = SpaceSpec(space.stem_channels, 2 if head else 1, space.stages, head_channels=head)
         subnet = sp.sample(random.Random(5)) if which == "random" else getattr(sp, which)()
         net = extract_subnet(Supernet(sp, 3, 7), subnet)
         assert architecture_size(sp, subnet, 3, 17, 7) == (count_params(net), count_macs(net, 3, 17))

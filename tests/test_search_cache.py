@@ -58,7 +58,7 @@ def test_interrupted_search_resumes_from_cache(tmp_path):
     with pytest.raises(KeyboardInterrupt):
         _evolve(path, CountingAccuracy(fail_after=25))
     with open(path, "a") as f:
-        f.write('{"key": "e3k3_e3k')  # a line torn by the kill
+        f.write('{"key": "3:3/3:')  # a line torn by the kill
     rerun = CountingAccuracy()
     cands, fit = _evolve(path, rerun)
     assert len(cands) == 60 and rerun.calls == 60 - 25 and fit.hits == 25

@@ -52,7 +52,7 @@ def manifest(data: bytes, budget_ms: float, protocol: Protocol = TINY) -> dict:
     return {
         "format": MANIFEST_FORMAT, "version": MANIFEST_VERSION, "model_file": "model.onnx",
         "sha256": hashlib.sha256(data).hexdigest(),
-        "architecture": {"key": "e1k3", "depths": [1], "params": 100, "macs": 1000, "description": []},
+        "architecture": {"key": "1:3", "depths": [1], "params": 100, "macs": 1000, "description": []},
         "input": {"name": "image", "layout": "NCHW", "dtype": "float32", "shape": [None, 3, SIZE, SIZE],
                   "channels": 3, "image_size": SIZE, "color": "RGB", "scale": "divide by 255, then (x-mean)/std",
                   "mean": MEAN, "std": STD, "resize": "shorter side to S, centre crop"},

@@ -224,6 +224,6 @@ def load_recipe(path: str | Path) -> Recipe:
 def recipe_from_dict(d: dict[str, Any]) -> Recipe:
     """Rebuild a Recipe from ``Recipe.to_dict()`` (as stored in checkpoints)."""
     sp = dict(d["space"])
-    sp["stages"] = tuple(StageSpec(**{**s, "depths": tuple(s["depths"]), "exp_ratios": tuple(s["exp_ratios"]),
+    sp["stages"] = tuple(StageSpec(**{**s, "depths": tuple(s["depths"]), "expansions": tuple(s["expansions"]),
                                       "kernels": tuple(s["kernels"])}) for s in sp["stages"])
     return Recipe(d["name"], d["seed"], DataConfig(**d["data"]), SpaceSpec(**sp), TrainConfig(**d["train"]))

@@ -5,6 +5,7 @@ by the demo, or by the search.
 """
 from __future__ import annotations
 
+import hashlib
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -35,11 +36,14 @@ class CutResult:
 
 
 def resolve_subnet(run: TrainedRun, spec: str) -> tuple[str, Subnet]:
+    """(folder name, subnet) for 'largest', 'smallest', 'middle' or a key. A key's folder is named
+    by its hash, so a later cut of another subnet never overwrites it and '/' never nests folders."""
     space = run.recipe.space
     named = {"largest": space.largest, "smallest": space.smallest, "middle": space.middle}
     if spec in named:
         return spec, named[spec]()
-    return spec, space.parse_key(spec)
+    subnet = space.parse_key(spec)
+    return f"subnet-{hashlib.sha256(subnet.to_key().encode()).hexdigest()[:10]}", subnet
 
 
 def cut_one(run: TrainedRun, ds: Dataset, name: str, subnet: Subnet, out_dir: Path,
@@ -87,17 +91,16 @@ def cut_subnets(run_dir: str | Path, specs: list[str], out: str | Path | None = 
     except OSError as e:
         raise UserError(f"cannot create the export folder {out_dir} ({e.strerror}); choose another --out") from None
     results = []
-    for (name, subnet), spec in zip(picked, specs):
-        results.append(cut_one(run, ds, name if name != spec or len(name) < 24 else f"subnet{len(results)}",
-                               subnet, out_dir)[0])
+    for name, subnet in picked:
+        results.append(cut_one(run, ds, name, subnet, out_dir)[0])
     measure_latency(results)
     return results
 
 
 def format_table(rows: list[CutResult]) -> str:
-    head = f"{'subnet':<10} {'params':>9} {'MACs':>11} {'val acc %':>9} {'p50 ms':>8} {'p90 ms':>8}  key"
+    head = f"{'subnet':<17} {'params':>9} {'MACs':>11} {'val acc %':>9} {'p50 ms':>8} {'p90 ms':>8}  key"
     lines = [head, "-" * len(head)]
     for r in rows:
-        lines.append(f"{r.name:<10} {r.params:>9,} {r.macs:>11,} {r.val_acc:>9.2f} "
+        lines.append(f"{r.name:<17} {r.params:>9,} {r.macs:>11,} {r.val_acc:>9.2f} "
                      f"{r.p50_ms or float('nan'):>8.3f} {r.p90_ms or float('nan'):>8.3f}  {r.key}")
     return "\n".join(lines)

@@ -21,11 +21,11 @@ from tightfit.ondevice.files import write_bytes
 OPSET = 17
 
 
-def onnx_bytes(model: nn.Module, in_chs: int, image_size: int) -> bytes:
+def onnx_bytes(model: nn.Module, in_channels: int, image_size: int) -> bytes:
     """Serialized ONNX model with input 'image' (N, C, H, W) and output 'logits', batch axis dynamic."""
     model = model.eval()
     buf = io.BytesIO()
-    dummy = torch.zeros(1, in_chs, image_size, image_size)
+    dummy = torch.zeros(1, in_channels, image_size, image_size)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         torch.onnx.export(model, (dummy,), buf, input_names=["image"], output_names=["logits"],
@@ -34,9 +34,9 @@ def onnx_bytes(model: nn.Module, in_chs: int, image_size: int) -> bytes:
     return buf.getvalue()
 
 
-def export_onnx(model: nn.Module, path, in_chs: int, image_size: int) -> bytes:
+def export_onnx(model: nn.Module, path, in_channels: int, image_size: int) -> bytes:
     """Export, run the full ONNX checker, write atomically; returns the file's bytes."""
-    data = onnx_bytes(model, in_chs, image_size)
+    data = onnx_bytes(model, in_channels, image_size)
     onnx.checker.check_model(onnx.load_from_string(data), full_check=True)
     write_bytes(path, data)
     return data
@@ -67,11 +67,11 @@ def ort_outputs(data: bytes, x: np.ndarray) -> np.ndarray:
 
 
 @torch.no_grad()
-def max_parity_error(model: nn.Module, data: bytes, in_chs: int, image_size: int, batch_sizes=(1, 7)) -> float:
+def max_parity_error(model: nn.Module, data: bytes, in_channels: int, image_size: int, batch_sizes=(1, 7)) -> float:
     """Largest |ONNX Runtime - torch| over random inputs of the given batch sizes."""
     gen = torch.Generator().manual_seed(0)
     worst = 0.0
     for b in batch_sizes:
-        x = torch.randn(b, in_chs, image_size, image_size, generator=gen)
+        x = torch.randn(b, in_channels, image_size, image_size, generator=gen)
         worst = max(worst, float(np.abs(ort_outputs(data, x.numpy()) - model.eval()(x).numpy()).max()))
     return worst

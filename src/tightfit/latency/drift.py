@@ -31,14 +31,14 @@ DEADBAND = 0.03  # ratios within 3 % of 1 are measurement noise: the limit is le
 STAT = "p50_ms"  # the steadiest statistic: the speed change, not the tail's noise
 
 
-def write_subnet_onnx(supernet: Supernet, subnets: Sequence[Subnet], folder: Path, in_chs: int,
+def write_subnet_onnx(supernet: Supernet, subnets: Sequence[Subnet], folder: Path, in_channels: int,
                       image_size: int, progress: bool = False) -> list[str]:
     """Each subnet extracted and exported to folder/<i>.onnx (weights do not change latency)."""
     paths = []
     with single_thread():
         for i, s in enumerate(tqdm(subnets, desc="export", unit="model", disable=not progress)):
             paths.append(str(Path(folder) / f"{i}.onnx"))
-            Path(paths[-1]).write_bytes(onnx_bytes(extract_subnet(supernet, s), in_chs, image_size))
+            Path(paths[-1]).write_bytes(onnx_bytes(extract_subnet(supernet, s), in_channels, image_size))
     return paths
 
 
@@ -54,13 +54,13 @@ def drift_ratio(now_ms: Sequence[float], then_ms: Sequence[float]) -> Optional[f
     return float(np.median(ratios)) if ratios else None
 
 
-def measure_drift(supernet: Supernet, table: LatencyTable, keys: Sequence[str], in_chs: int, image_size: int) -> Optional[float]:
+def measure_drift(supernet: Supernet, table: LatencyTable, keys: Sequence[str], in_channels: int, image_size: int) -> Optional[float]:
     """Measure the table's calibration subnets `keys` now; the ratio now/then (None without keys)."""
     if not keys:
         return None
     protocol = drift_protocol(table.protocol)
     with tempfile.TemporaryDirectory(prefix="tightfit-drift-") as tmp:
-        paths = write_subnet_onnx(supernet, [Subnet.from_key(k) for k in keys], Path(tmp), in_chs, image_size)
+        paths = write_subnet_onnx(supernet, [Subnet.from_key(k) for k in keys], Path(tmp), in_channels, image_size)
         measured = measure_repeated(paths, protocol, int(table.protocol.get("chunk", 10)))
     entries = table.subnet_entries()
     return drift_ratio([measured[p][STAT] for p in paths], [float(entries[k][STAT]) for k in keys])

@@ -131,17 +131,17 @@ class LatencyPredictor:
     0.96 with layer means against 0.83 with layer medians; Fashion-MNIST space alike.
     """
 
-    def __init__(self, table: LatencyTable, space: SpaceSpec, in_chs: int, image_size: int,
+    def __init__(self, table: LatencyTable, space: SpaceSpec, in_channels: int, image_size: int,
                  target: str = "budget_stat_ms", layer_stat: str = "mean_ms"):
         for stat in (target, layer_stat):
             if stat not in STATS:
                 raise UserError(f"unknown latency statistic {stat!r}; choose one of {', '.join(STATS)}")
-        expected = space_hash(space, in_chs, image_size)
+        expected = space_hash(space, in_channels, image_size)
         if table.space_hash != expected:
             raise UserError(f"latency table {table.path} was measured for another search space (hash "
                             f"{table.space_hash} ≠ {expected}); probe this run's space with 'tightfit probe RUN_DIR'")
         self.table, self.space, self.target, self.layer_stat = table, space, target, layer_stat
-        layers = layer_configs(space, in_chs, image_size)
+        layers = layer_configs(space, in_channels, image_size)
         needed = [c.id for c in layers + overhead_configs(layers)]
         missing = [i for i in needed if table.entries.get(i, {}).get("kind") != "layer"]
         if missing:
@@ -152,8 +152,8 @@ class LatencyPredictor:
         def overhead(chs: int, res: int, skip: bool) -> float:
             return 2 * value[overhead_id(chs, res, skip, 1)] - value[overhead_id(chs, res, skip, 2)]
         self._latency = {c.id: value[c.id] for c in layers}
-        self._cost = {c.id: value[c.id] - overhead(c.in_chs, c.resolution, c.skip) for c in layers}
-        self._base = overhead(in_chs, image_size, False)
+        self._cost = {c.id: value[c.id] - overhead(c.in_channels, c.resolution, c.skip) for c in layers}
+        self._base = overhead(in_channels, image_size, False)
         self.calibration_keys = [k for k in table.subnet_entries() if self._in_space(k)]
         xs = [self.adjusted_sum_ms(Subnet.from_key(k)) for k in self.calibration_keys]
         ys = [float(table.subnet_entries()[k][target]) for k in self.calibration_keys]

@@ -60,13 +60,13 @@ def layer_module(supernet: Supernet, cfg: LayerConfig) -> nn.Module:
     """The static torch module for one layer configuration (eval mode, fp32, CPU)."""
     space = supernet.space
     if cfg.role == "block":
-        return extract_block(supernet.stages[cfg.stage][0 if cfg.first else 1], cfg.exp_ratio, cfg.kernel).eval()
-    if cfg.role == "overhead":
-        return _Passthrough(cfg.in_chs, cfg.copies, cfg.skip).eval()
+        return extract_block(supernet.stages[cfg.stage][0 if cfg.first else 1], cfg.expansion, cfg.kernel).eval()
+    if cfg.role == "passthrough":
+        return _Passthrough(cfg.in_channels, cfg.copies, cfg.skip).eval()
     net = extract_subnet(supernet, space.smallest())
     if cfg.role == "stem":
         return net.features[0]
-    return _Head(net, bool(space.head_chs)).eval()
+    return _Head(net, bool(space.head_channels)).eval()
 
 
 def _class_count(recipe: Recipe) -> int:
@@ -122,7 +122,7 @@ def _bundle_entries(recipe: Recipe, supernet: Supernet, n_subnets: int, seed: in
     chs, size = recipe.data.channels, recipe.data.image_size
     layers = layer_configs(recipe.space, chs, size)
     for cfg in layers + overhead_configs(layers):
-        yield cfg.id, "layer", lambda c=cfg: layer_module(supernet, c), cfg.in_chs, cfg.resolution, cfg.meta()
+        yield cfg.id, "layer", lambda c=cfg: layer_module(supernet, c), cfg.in_channels, cfg.resolution, cfg.meta()
     for name, s in calibration_subnets(recipe.space, n_subnets, seed):
         meta = {"role": "subnet", "key": s.to_key(), "name": name, "depths": list(s.depths),
                 "shape": f"{chs}x{size}x{size} -> logits"}

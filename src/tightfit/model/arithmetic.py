@@ -12,55 +12,55 @@ def conv_out(size: int, stride: int) -> int:
     return (size - 1) // stride + 1
 
 
-def hidden_chs(in_chs: int, exp_ratio: float) -> int:
+def hidden_channels(in_channels: int, expansion: float) -> int:
     """Expanded width inside a block."""
-    return int(round(in_chs * exp_ratio))
+    return int(round(in_channels * expansion))
 
 
-def squeeze_chs(chs: int) -> int:
+def squeeze_channels(chs: int) -> int:
     """Squeeze-excite width: a quarter of the hidden channels, rounded to a multiple of 8 (at least 8)."""
     return max(8, int(chs / 4 + 4) // 8 * 8)
 
 
-def describe_architecture(space: SpaceSpec, subnet: Subnet, in_chs: int, image_size: int,
+def describe_architecture(space: SpaceSpec, subnet: Subnet, in_channels: int, image_size: int,
                           num_classes: int) -> list[dict[str, Any]]:
     """One dict per layer group in forward order, with its parameters and multiply-adds at batch 1
     (convolutions and the classifier, as torch's FlopCounterMode counts them), enough to
     rebuild the network by hand and to size candidates without building them."""
     size = conv_out(image_size, space.stem_stride)
-    out: list[dict[str, Any]] = [{"type": "stem", "in_chs": in_chs, "out_chs": space.stem_chs, "kernel": 3,
-                                  "stride": space.stem_stride, "act": space.stem_act, "out_size": size,
-                                  "params": 9 * in_chs * space.stem_chs + 2 * space.stem_chs,
-                                  "macs": 9 * in_chs * space.stem_chs * size * size}]
+    out: list[dict[str, Any]] = [{"type": "stem", "in_channels": in_channels, "out_channels": space.stem_channels,
+                                  "kernel": 3, "stride": space.stem_stride, "activation": space.stem_activation, "out_size": size,
+                                  "params": 9 * in_channels * space.stem_channels + 2 * space.stem_channels,
+                                  "macs": 9 * in_channels * space.stem_channels * size * size}]
     for i, (st, blocks) in enumerate(zip(space.stages, subnet.stages)):
-        chs = space.stage_in_chs(i)
+        chs = space.stage_in_channels(i)
         for j, (e, k) in enumerate(blocks):
             stride = st.stride if j == 0 else 1
-            mid, res = hidden_chs(chs, e), conv_out(size, stride)
-            params = mid * k * k + 2 * mid + mid * st.out_chs + 2 * st.out_chs
-            macs = (mid * k * k + mid * st.out_chs) * res * res
+            hidden, res = hidden_channels(chs, e), conv_out(size, stride)
+            params = hidden * k * k + 2 * hidden + hidden * st.out_channels + 2 * st.out_channels
+            macs = (hidden * k * k + hidden * st.out_channels) * res * res
             if st.has_expand:
-                params, macs = params + chs * mid + 2 * mid, macs + chs * mid * size * size
-            if st.se:
-                sq = squeeze_chs(mid)
-                params, macs = params + 2 * mid * sq + sq + mid, macs + 2 * mid * sq
-            out.append({"type": "inverted_residual", "stage": i, "block": j, "in_chs": chs, "mid_chs": mid,
-                        "out_chs": st.out_chs, "exp_ratio": e, "kernel": k, "stride": stride, "act": st.act,
-                        "se": st.se, "skip": stride == 1 and chs == st.out_chs, "out_size": res,
+                params, macs = params + chs * hidden + 2 * hidden, macs + chs * hidden * size * size
+            if st.squeeze_excite:
+                sq = squeeze_channels(hidden)
+                params, macs = params + 2 * hidden * sq + sq + hidden, macs + 2 * hidden * sq
+            out.append({"type": "inverted_residual", "stage": i, "block": j, "in_channels": chs,
+                        "hidden_channels": hidden, "out_channels": st.out_channels, "expansion": e, "kernel": k,
+                        "stride": stride, "activation": st.activation, "squeeze_excite": st.squeeze_excite, "skip": stride == 1 and chs == st.out_channels, "out_size": res,
                         "params": params, "macs": macs})
-            chs, size = st.out_chs, res
-    if space.head_chs:
-        out.append({"type": "head", "in_chs": chs, "out_chs": space.head_chs, "kernel": 1, "act": space.head_act,
-                    "out_size": size, "params": chs * space.head_chs + 2 * space.head_chs,
-                    "macs": chs * space.head_chs * size * size})
-        chs = space.head_chs
-    out.append({"type": "pool_classifier", "in_chs": chs, "out_chs": num_classes, "dropout": space.dropout,
+            chs, size = st.out_channels, res
+    if space.head_channels:
+        out.append({"type": "head", "in_channels": chs, "out_channels": space.head_channels, "kernel": 1,
+                    "activation": space.head_activation, "out_size": size, "params": chs * space.head_channels + 2 * space.head_channels,
+                    "macs": chs * space.head_channels * size * size})
+        chs = space.head_channels
+    out.append({"type": "pool_classifier", "in_channels": chs, "out_channels": num_classes, "dropout": space.dropout,
                 "params": chs * num_classes + num_classes, "macs": chs * num_classes})
     return out
 
 
-def architecture_size(space: SpaceSpec, subnet: Subnet, in_chs: int, image_size: int,
+def architecture_size(space: SpaceSpec, subnet: Subnet, in_channels: int, image_size: int,
                       num_classes: int) -> tuple[int, int]:
     """(parameters, multiply-adds) of the static subnet, computed from the space alone."""
-    parts = describe_architecture(space, subnet, in_chs, image_size, num_classes)
+    parts = describe_architecture(space, subnet, in_channels, image_size, num_classes)
     return sum(p["params"] for p in parts), sum(p["macs"] for p in parts)

@@ -13,28 +13,28 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from tightfit.model.arithmetic import squeeze_chs
+from tightfit.model.arithmetic import squeeze_channels
 
 
 class ElasticPointwise(nn.Module):
     """1x1 conv without bias; in/out channels taken as prefixes of the full weight."""
 
-    def __init__(self, in_chs: int, out_chs: int):
+    def __init__(self, in_channels: int, out_channels: int):
         super().__init__()
-        self.weight = nn.Parameter(torch.empty(out_chs, in_chs, 1, 1))
+        self.weight = nn.Parameter(torch.empty(out_channels, in_channels, 1, 1))
         nn.init.kaiming_normal_(self.weight, mode="fan_out")
 
-    def active_weight(self, in_chs: int, out_chs: int) -> torch.Tensor:
-        return self.weight[:out_chs, :in_chs]
+    def active_weight(self, in_channels: int, out_channels: int) -> torch.Tensor:
+        return self.weight[:out_channels, :in_channels]
 
-    def forward(self, x: torch.Tensor, out_chs: int) -> torch.Tensor:
-        return F.conv2d(x, self.active_weight(x.shape[1], out_chs))
+    def forward(self, x: torch.Tensor, out_channels: int) -> torch.Tensor:
+        return F.conv2d(x, self.active_weight(x.shape[1], out_channels))
 
 
 class ElasticDepthwise(nn.Module):
     """Depthwise conv whose channel count follows the input and whose kernel is chosen per call."""
 
-    def __init__(self, chs: int, kernels: tuple[int, ...], stride: int, kernel_transform: bool):
+    def __init__(self, chs: int, kernels: tuple[int, ...], stride: int, kernel_mode: str = "centre"):
         super().__init__()
         self.kernels = tuple(sorted(kernels))
         self.max_kernel = self.kernels[-1]
@@ -42,7 +42,7 @@ class ElasticDepthwise(nn.Module):
         self.weight = nn.Parameter(torch.empty(chs, 1, self.max_kernel, self.max_kernel))
         nn.init.kaiming_normal_(self.weight, mode="fan_out")
         self.transforms = nn.ParameterDict()
-        if kernel_transform:
+        if kernel_mode == "transform":
             # One (k*k x k*k) matrix per smaller kernel, going down from the largest.
             for k in self.kernels[:-1]:
                 self.transforms[f"k{k}"] = nn.Parameter(torch.eye(k * k))
@@ -88,13 +88,13 @@ class ElasticSqueezeExcite(nn.Module):
 
     def __init__(self, chs: int):
         super().__init__()
-        sq = squeeze_chs(chs)
+        sq = squeeze_channels(chs)
         self.reduce = nn.Conv2d(chs, sq, 1)
         self.expand = nn.Conv2d(sq, chs, 1)
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         chs = x.shape[1]
-        sq = squeeze_chs(chs)
+        sq = squeeze_channels(chs)
         s = x.mean((2, 3), keepdim=True)
         s = F.relu(F.conv2d(s, self.reduce.weight[:sq, :chs], self.reduce.bias[:sq]))
         s = F.hardsigmoid(F.conv2d(s, self.expand.weight[:chs, :sq], self.expand.bias[:chs]))

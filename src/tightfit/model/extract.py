@@ -10,7 +10,7 @@ import torch
 from torch import nn
 from torch.utils.flop_counter import FlopCounterMode
 
-from tightfit.model.arithmetic import hidden_chs, squeeze_chs
+from tightfit.model.arithmetic import hidden_channels, squeeze_channels
 from tightfit.model.elastic import ElasticSqueezeExcite
 from tightfit.model.space import Subnet
 from tightfit.model.supernet import ElasticInvertedResidual, Supernet, act_layer
@@ -53,8 +53,8 @@ class StaticNet(nn.Module):
 
 
 def _conv(weight: torch.Tensor, stride: int = 1, groups: int = 1) -> nn.Conv2d:
-    out_chs, in_per_group, k, _ = weight.shape
-    conv = nn.Conv2d(in_per_group * groups, out_chs, k, stride, k // 2, groups=groups, bias=False)
+    out_channels, in_per_group, k, _ = weight.shape
+    conv = nn.Conv2d(in_per_group * groups, out_channels, k, stride, k // 2, groups=groups, bias=False)
     conv.weight.data.copy_(weight)
     return conv
 
@@ -70,7 +70,7 @@ def _bn(src: nn.BatchNorm2d, chs: int) -> nn.BatchNorm2d:
 
 
 def _squeeze_excite(src: ElasticSqueezeExcite, chs: int) -> SqueezeExcite:
-    sq = squeeze_chs(chs)
+    sq = squeeze_channels(chs)
     se = SqueezeExcite(chs, sq)
     se.reduce.weight.data.copy_(src.reduce.weight[:sq, :chs])
     se.reduce.bias.data.copy_(src.reduce.bias[:sq])
@@ -79,16 +79,16 @@ def _squeeze_excite(src: ElasticSqueezeExcite, chs: int) -> SqueezeExcite:
     return se
 
 
-def extract_block(b: ElasticInvertedResidual, exp_ratio: float, kernel: int) -> InvertedResidual:
-    mid = hidden_chs(b.in_chs, exp_ratio)
+def extract_block(b: ElasticInvertedResidual, expansion: float, kernel: int) -> InvertedResidual:
+    mid = hidden_channels(b.in_channels, expansion)
     act = type(b.act)
     layers: list[nn.Module] = []
     if b.has_expand:
-        layers += [nn.Sequential(_conv(b.expand.active_weight(b.in_chs, mid)), _bn(b.bn1, mid), act())]
+        layers += [nn.Sequential(_conv(b.expand.active_weight(b.in_channels, mid)), _bn(b.bn1, mid), act())]
     layers += [nn.Sequential(_conv(b.dw.active_weight(mid, kernel), b.stride, groups=mid), _bn(b.bn2, mid), act())]
     if b.se is not None:
         layers.append(_squeeze_excite(b.se, mid))
-    layers += [_conv(b.project.active_weight(mid, b.out_chs)), _bn(b.bn3, b.out_chs)]
+    layers += [_conv(b.project.active_weight(mid, b.out_channels)), _bn(b.bn3, b.out_channels)]
     return InvertedResidual(nn.Sequential(*layers), b.use_skip)
 
 
@@ -97,12 +97,12 @@ def extract_subnet(supernet: Supernet, subnet: Subnet) -> StaticNet:
     """Return the static network for ``subnet`` (eval mode, on the CPU, fp32)."""
     stem_conv, stem_bn, _ = supernet.stem
     features: list[nn.Module] = [nn.Sequential(_conv(stem_conv.weight, stem_conv.stride[0]),
-                                               _bn(stem_bn, stem_bn.num_features), act_layer(supernet.space.stem_act)())]
+                                               _bn(stem_bn, stem_bn.num_features), act_layer(supernet.space.stem_activation)())]
     for blocks, choice in zip(supernet.stages, subnet.stages):
         features += [extract_block(b, e, k) for b, (e, k) in zip(blocks, choice)]
     if isinstance(supernet.head, nn.Sequential):
         conv, bn, _ = supernet.head
-        features.append(nn.Sequential(_conv(conv.weight), _bn(bn, bn.num_features), act_layer(supernet.space.head_act)()))
+        features.append(nn.Sequential(_conv(conv.weight), _bn(bn, bn.num_features), act_layer(supernet.space.head_activation)()))
     lin = nn.Linear(supernet.classifier.in_features, supernet.classifier.out_features)
     lin.weight.data.copy_(supernet.classifier.weight)
     lin.bias.data.copy_(supernet.classifier.bias)
@@ -115,11 +115,11 @@ def count_params(model: nn.Module) -> int:
 
 
 @torch.no_grad()
-def count_macs(model: nn.Module, in_chs: int, image_size: int) -> int:
+def count_macs(model: nn.Module, in_channels: int, image_size: int) -> int:
     """Multiply-accumulates of one forward pass at batch 1: torch's forward FLOP count / 2."""
     was_training = model.training
     model.eval()
     with FlopCounterMode(display=False) as counter:
-        model(torch.zeros(1, in_chs, image_size, image_size))
+        model(torch.zeros(1, in_channels, image_size, image_size))
     model.train(was_training)
     return counter.get_total_flops() // 2

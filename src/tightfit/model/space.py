@@ -2,72 +2,78 @@
 
 A subnet picks one depth per stage and, for each active block, one expansion ratio
 and one depthwise kernel size. Subnets have a short text key that round-trips, e.g.
-``e1k3_e6k5-e3k3_e6k7-e6k3-e3k5`` (stages joined by ``_``, blocks by ``-``).
+``1:3,6:5/3:3,6:7,6:3/3:5``: each block ``expansion:kernel``, blocks within a stage
+joined by ``,``, stages by ``/`` (the coarser the boundary, the heavier the separator).
 """
 from __future__ import annotations
 
-import math
+import hashlib
+import json
 import random
-from dataclasses import dataclass
+from dataclasses import asdict, dataclass
+from typing import NamedTuple
 
 from tightfit.errors import UserError
 
 ACTIVATIONS = ("relu6", "hswish")
 
 
+class BlockChoice(NamedTuple):
+    """One active block's choice."""
+    expansion: float
+    kernel: int
+
+
 @dataclass(frozen=True)
 class StageSpec:
-    out_chs: int
+    out_channels: int
     stride: int
     depths: tuple[int, ...]          # allowed number of blocks
-    exp_ratios: tuple[float, ...]    # allowed expansion ratios (hidden = round(in_chs * ratio))
+    expansions: tuple[float, ...]    # allowed expansion ratios (hidden = round(in_channels * ratio))
     kernels: tuple[int, ...]         # allowed depthwise kernel sizes (odd)
-    act: str = "relu6"
-    se: bool = False                 # squeeze-excite after the depthwise conv
+    activation: str = "relu6"
+    squeeze_excite: bool = False     # squeeze-excite after the depthwise conv
 
     @property
     def has_expand(self) -> bool:
         # MobileNetV2 (Sandler et al. 2018, Table 1): a block with t=1 has no expansion conv.
-        return self.exp_ratios != (1,) and self.exp_ratios != (1.0,)
+        return self.expansions != (1,) and self.expansions != (1.0,)
 
 
 @dataclass(frozen=True)
 class SpaceSpec:
-    stem_chs: int
+    stem_channels: int
     stem_stride: int
     stages: tuple[StageSpec, ...]
-    head_chs: int = 0                # 0: no 1x1 head conv before pooling
-    stem_act: str = "relu6"
-    head_act: str = "relu6"
+    head_channels: int = 0                # 0: no 1x1 head conv before pooling
+    stem_activation: str = "relu6"
+    head_activation: str = "relu6"
     dropout: float = 0.0
 
-    def stage_in_chs(self, i: int) -> int:
-        return self.stem_chs if i == 0 else self.stages[i - 1].out_chs
+    def stage_in_channels(self, i: int) -> int:
+        return self.stem_channels if i == 0 else self.stages[i - 1].out_channels
 
     def size(self) -> int:
         """Number of distinct subnets."""
         total = 1
         for st in self.stages:
-            per_block = len(st.exp_ratios) * len(st.kernels)
+            per_block = len(st.expansions) * len(st.kernels)
             total *= sum(per_block ** d for d in st.depths)
         return total
 
-    def log10_size(self) -> float:
-        return math.log10(self.size())
-
     def largest(self) -> "Subnet":
-        return Subnet(tuple(tuple((max(st.exp_ratios), max(st.kernels)) for _ in range(max(st.depths)))
+        return Subnet(tuple(tuple(BlockChoice(max(st.expansions), max(st.kernels)) for _ in range(max(st.depths)))
                             for st in self.stages))
 
     def smallest(self) -> "Subnet":
-        return Subnet(tuple(tuple((min(st.exp_ratios), min(st.kernels)) for _ in range(min(st.depths)))
+        return Subnet(tuple(tuple(BlockChoice(min(st.expansions), min(st.kernels)) for _ in range(min(st.depths)))
                             for st in self.stages))
 
     def middle(self) -> "Subnet":
         """The median choice everywhere: a reference point between smallest and largest."""
         def mid(xs):
             return xs[len(xs) // 2]
-        return Subnet(tuple(tuple((mid(st.exp_ratios), mid(st.kernels)) for _ in range(mid(st.depths)))
+        return Subnet(tuple(tuple(BlockChoice(mid(st.expansions), mid(st.kernels)) for _ in range(mid(st.depths)))
                             for st in self.stages))
 
     def sample(self, rng: random.Random) -> "Subnet":
@@ -75,9 +81,9 @@ class SpaceSpec:
         number of subnets it allows, then each block's choices uniformly."""
         stages = []
         for st in self.stages:
-            per_block = len(st.exp_ratios) * len(st.kernels)
+            per_block = len(st.expansions) * len(st.kernels)
             depth = rng.choices(st.depths, weights=[per_block ** d for d in st.depths])[0]
-            stages.append(tuple((rng.choice(st.exp_ratios), rng.choice(st.kernels)) for _ in range(depth)))
+            stages.append(tuple(BlockChoice(rng.choice(st.expansions), rng.choice(st.kernels)) for _ in range(depth)))
         return Subnet(tuple(stages))
 
     def contains(self, subnet: "Subnet") -> bool:
@@ -86,7 +92,7 @@ class SpaceSpec:
         for st, blocks in zip(self.stages, subnet.stages):
             if len(blocks) not in st.depths:
                 return False
-            if any(e not in st.exp_ratios or k not in st.kernels for e, k in blocks):
+            if any(e not in st.expansions or k not in st.kernels for e, k in blocks):
                 return False
         return True
 
@@ -99,48 +105,44 @@ class SpaceSpec:
         return subnet
 
 
-def _fmt_ratio(e: float) -> str:
-    return f"{e:g}"
-
-
 @dataclass(frozen=True)
 class Subnet:
-    """One architecture: per stage, a tuple of (expansion ratio, kernel size) per active block."""
-    stages: tuple[tuple[tuple[float, int], ...], ...]
+    """One architecture: per stage, the choices of its active blocks."""
+    stages: tuple[tuple[BlockChoice, ...], ...]
+
+    def __post_init__(self) -> None:
+        # accept plain (expansion, kernel) pairs, store BlockChoice: equal subnets compare and hash equal
+        object.__setattr__(self, "stages", tuple(tuple(BlockChoice(*b) for b in s) for s in self.stages))
 
     @property
     def depths(self) -> tuple[int, ...]:
         return tuple(len(s) for s in self.stages)
 
     def to_key(self) -> str:
-        return "_".join("-".join(f"e{_fmt_ratio(e)}k{k}" for e, k in blocks) for blocks in self.stages)
+        return "/".join(",".join(f"{e:g}:{k}" for e, k in blocks) for blocks in self.stages)
 
     @classmethod
     def from_key(cls, key: str) -> "Subnet":
         try:
             stages = []
-            for part in key.split("_"):
+            for part in key.split("/"):
                 blocks = []
-                for b in part.split("-"):
-                    if not b.startswith("e") or "k" not in b:
-                        raise ValueError(b)
-                    e_txt, k_txt = b[1:].split("k")
+                for b in part.split(","):
+                    e_txt, k_txt = b.split(":")
                     e = float(e_txt)
-                    blocks.append((int(e) if e.is_integer() else e, int(k_txt)))
+                    blocks.append(BlockChoice(int(e) if e.is_integer() else e, int(k_txt)))
                 stages.append(tuple(blocks))
             return cls(tuple(stages))
         except ValueError:
-            raise UserError(f"malformed subnet key {key!r}: expected stages like 'e6k3-e3k5' joined by '_'") from None
+            raise UserError(f"malformed subnet key {key!r}: expected blocks 'expansion:kernel' joined by ',' "
+                            "within a stage and stages joined by '/', e.g. '1:3/6:5,3:3/6:3'") from None
 
     def __str__(self) -> str:
         return self.to_key()
 
 
-def space_hash(space: SpaceSpec, in_chs: int, image_size: int) -> str:
+def space_hash(space: SpaceSpec, in_channels: int, image_size: int) -> str:
     """Identifies a search space together with its input shape: latency tables and probe
     bundles carry it, so a table measured for another space is refused."""
-    import hashlib
-    import json
-    from dataclasses import asdict
-    blob = json.dumps({"space": asdict(space), "in_chs": in_chs, "image_size": image_size}, sort_keys=True)
+    blob = json.dumps({"space": asdict(space), "in_channels": in_channels, "image_size": image_size}, sort_keys=True)
     return hashlib.sha256(blob.encode()).hexdigest()[:16]

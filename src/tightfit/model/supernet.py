@@ -10,7 +10,7 @@ from typing import Callable
 import torch
 from torch import nn
 
-from tightfit.model.arithmetic import hidden_chs
+from tightfit.model.arithmetic import hidden_channels
 from tightfit.model.elastic import ElasticBatchNorm, ElasticDepthwise, ElasticPointwise, ElasticSqueezeExcite
 from tightfit.model.space import SpaceSpec, StageSpec, Subnet
 from tightfit.recipe import Recipe
@@ -23,54 +23,55 @@ def act_layer(name: str) -> Callable[[], nn.Module]:
 class ElasticInvertedResidual(nn.Module):
     """MobileNetV2 block (Sandler et al. 2018, Table 1) with elastic expansion and kernel."""
 
-    def __init__(self, in_chs: int, out_chs: int, stride: int, stage: StageSpec, kernel_transform: bool):
+    def __init__(self, in_channels: int, out_channels: int, stride: int, stage: StageSpec, kernel_mode: str):
         super().__init__()
-        self.in_chs, self.out_chs, self.stride = in_chs, out_chs, stride
-        mid_max = hidden_chs(in_chs, max(stage.exp_ratios))
+        self.in_channels, self.out_channels, self.stride = in_channels, out_channels, stride
+        hidden_max = hidden_channels(in_channels, max(stage.expansions))
         self.has_expand = stage.has_expand
         if self.has_expand:
-            self.expand = ElasticPointwise(in_chs, mid_max)
-            self.bn1 = ElasticBatchNorm(mid_max)
-        self.dw = ElasticDepthwise(mid_max, stage.kernels, stride, kernel_transform)
-        self.bn2 = ElasticBatchNorm(mid_max)
-        self.act = act_layer(stage.act)()
-        self.se = ElasticSqueezeExcite(mid_max) if stage.se else None
-        self.project = ElasticPointwise(mid_max, out_chs)
-        self.bn3 = ElasticBatchNorm(out_chs)
-        self.use_skip = stride == 1 and in_chs == out_chs
-        self.exp_ratio, self.kernel = max(stage.exp_ratios), max(stage.kernels)
+            self.expand = ElasticPointwise(in_channels, hidden_max)
+            self.bn1 = ElasticBatchNorm(hidden_max)
+        self.dw = ElasticDepthwise(hidden_max, stage.kernels, stride, kernel_mode)
+        self.bn2 = ElasticBatchNorm(hidden_max)
+        self.act = act_layer(stage.activation)()
+        self.se = ElasticSqueezeExcite(hidden_max) if stage.squeeze_excite else None
+        self.project = ElasticPointwise(hidden_max, out_channels)
+        self.bn3 = ElasticBatchNorm(out_channels)
+        self.use_skip = stride == 1 and in_channels == out_channels
+        self.expansion, self.kernel = max(stage.expansions), max(stage.kernels)
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
-        mid = hidden_chs(self.in_chs, self.exp_ratio)
+        mid = hidden_channels(self.in_channels, self.expansion)
         y = self.act(self.bn1(self.expand(x, mid))) if self.has_expand else x
         y = self.act(self.bn2(self.dw(y, self.kernel)))
         if self.se is not None:
             y = self.se(y)
-        y = self.bn3(self.project(y, self.out_chs))
+        y = self.bn3(self.project(y, self.out_channels))
         return x + y if self.use_skip else y
 
 
 class Supernet(nn.Module):
-    def __init__(self, space: SpaceSpec, in_chs: int, num_classes: int, kernel_transform: bool = False):
+    def __init__(self, space: SpaceSpec, in_channels: int, num_classes: int, kernel_mode: str = "centre"):
         super().__init__()
-        self.space, self.in_chs, self.num_classes = space, in_chs, num_classes
-        self.kernel_transform = kernel_transform
+        self.space, self.in_channels, self.num_classes = space, in_channels, num_classes
+        self.kernel_mode = kernel_mode
         self.stem = nn.Sequential(
-            nn.Conv2d(in_chs, space.stem_chs, 3, space.stem_stride, 1, bias=False),
-            nn.BatchNorm2d(space.stem_chs), act_layer(space.stem_act)())
+            nn.Conv2d(in_channels, space.stem_channels, 3, space.stem_stride, 1, bias=False),
+            nn.BatchNorm2d(space.stem_channels), act_layer(space.stem_activation)())
         self.stages = nn.ModuleList()
         for i, st in enumerate(space.stages):
-            chs = space.stage_in_chs(i)
+            chs = space.stage_in_channels(i)
             blocks = nn.ModuleList()
             for j in range(max(st.depths)):
-                blocks.append(ElasticInvertedResidual(chs, st.out_chs, st.stride if j == 0 else 1, st, kernel_transform))
-                chs = st.out_chs
+                blocks.append(ElasticInvertedResidual(chs, st.out_channels, st.stride if j == 0 else 1, st,
+                                                      kernel_mode))
+                chs = st.out_channels
             self.stages.append(blocks)
-        last = space.stages[-1].out_chs
-        if space.head_chs:
-            self.head = nn.Sequential(nn.Conv2d(last, space.head_chs, 1, bias=False),
-                                      nn.BatchNorm2d(space.head_chs), act_layer(space.head_act)())
-            last = space.head_chs
+        last = space.stages[-1].out_channels
+        if space.head_channels:
+            self.head = nn.Sequential(nn.Conv2d(last, space.head_channels, 1, bias=False),
+                                      nn.BatchNorm2d(space.head_channels), act_layer(space.head_activation)())
+            last = space.head_channels
         else:
             self.head = nn.Identity()
         self.pool = nn.AdaptiveAvgPool2d(1)
@@ -97,7 +98,7 @@ class Supernet(nn.Module):
         self.depths = subnet.depths
         for blocks, choice in zip(self.stages, subnet.stages):
             for block, (e, k) in zip(blocks, choice):
-                block.exp_ratio, block.kernel = e, k
+                block.expansion, block.kernel = e, k
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         x = self.stem(x)
@@ -111,4 +112,4 @@ class Supernet(nn.Module):
 def build_supernet(recipe: Recipe, num_classes: int) -> Supernet:
     """The supernet a recipe describes (the one place a recipe becomes a network)."""
     return Supernet(recipe.space, recipe.data.channels, num_classes,
-                    kernel_transform=recipe.train.kernel_mode == "transform")
+                    kernel_mode=recipe.train.kernel_mode)

@@ -64,7 +64,7 @@ def shrink(space: SpaceSpec, subnet: Subnet, rng: random.Random) -> Subnet:
         if len(blocks) > min(st.depths):
             moves.append(("depth", i, -1))
         for j, (e, k) in enumerate(blocks):
-            if e > min(st.exp_ratios):
+            if e > min(st.expansions):
                 moves.append(("exp", i, j))
             if k > min(st.kernels):
                 moves.append(("kernel", i, j))
@@ -76,7 +76,7 @@ def shrink(space: SpaceSpec, subnet: Subnet, rng: random.Random) -> Subnet:
         stages[i] = stages[i][:max(d for d in st.depths if d < len(stages[i]))]
     elif what == "exp":
         e, k = stages[i][j]
-        stages[i][j] = (max(x for x in st.exp_ratios if x < e), k)
+        stages[i][j] = (max(x for x in st.expansions if x < e), k)
     else:
         e, k = stages[i][j]
         stages[i][j] = (e, max(x for x in st.kernels if x < k))
@@ -117,8 +117,8 @@ def mutate(space: SpaceSpec, subnet: Subnet, rng: random.Random, prob: float) ->
                     blocks.append(blocks[-1])
                 blocks = blocks[:depth]
             for j, (e, k) in enumerate(blocks):
-                if len(st.exp_ratios) > 1 and rng.random() < prob:
-                    e = rng.choice([x for x in st.exp_ratios if x != e])
+                if len(st.expansions) > 1 and rng.random() < prob:
+                    e = rng.choice([x for x in st.expansions if x != e])
                 if len(st.kernels) > 1 and rng.random() < prob:
                     k = rng.choice([x for x in st.kernels if x != k])
                 blocks[j] = (e, k)

@@ -29,7 +29,7 @@ from tightfit.train.rundir import TrainedRun, checkpoint_path
 def fixed_stages(space: SpaceSpec) -> int:
     """Leading stages with a single choice everywhere: every subnet shares them."""
     n = 0
-    while n < len(space.stages) and all(len(v) == 1 for v in (space.stages[n].depths, space.stages[n].exp_ratios,
+    while n < len(space.stages) and all(len(v) == 1 for v in (space.stages[n].depths, space.stages[n].expansions,
                                                                 space.stages[n].kernels)):
         n += 1
     return n
@@ -83,7 +83,7 @@ class Recalibrator:
 
     def _first_block(self) -> Optional[tuple[list[torch.Tensor], list[tuple]]]:
         """Outputs and statistics of the first variable block for its current choice (cached)."""
-        key = (self.first.exp_ratio, self.first.kernel)
+        key = (self.first.expansion, self.first.kernel)
         if key not in self.variants:
             bns = batch_norms(self.first)
             with preserved_bn_stats(self.first), torch.no_grad():

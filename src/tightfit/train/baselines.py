@@ -38,10 +38,10 @@ def _depth(stage: StageSpec, which: str) -> int:
 
 def member_space(space: SpaceSpec, member: Member) -> SpaceSpec:
     """A one-subnet space: the largest block choice per stage, scaled channels and depth."""
-    stages = tuple(replace(st, out_chs=make_divisible(st.out_chs * member.width), depths=(_depth(st, member.depth),),
-                           exp_ratios=(max(st.exp_ratios),), kernels=(max(st.kernels),)) for st in space.stages)
-    head = make_divisible(space.head_chs * member.width) if space.head_chs else 0
-    return replace(space, stem_chs=make_divisible(space.stem_chs * member.width), stages=stages, head_chs=head)
+    stages = tuple(replace(st, out_channels=make_divisible(st.out_channels * member.width), depths=(_depth(st, member.depth),),
+                           expansions=(max(st.expansions),), kernels=(max(st.kernels),)) for st in space.stages)
+    head = make_divisible(space.head_channels * member.width) if space.head_channels else 0
+    return replace(space, stem_channels=make_divisible(space.stem_channels * member.width), stages=stages, head_channels=head)
 
 
 def member_recipe(recipe: Recipe, member: Member) -> Recipe:
