@@ -8,7 +8,6 @@ The run and the export they need are built once per module from the tiny recipe.
 """
 from __future__ import annotations
 
-import argparse
 import ast
 import copy
 import hashlib
@@ -36,16 +35,6 @@ RECIPE["data"]["samples"] = 400
 RECIPE["train"]["epochs"] = 0.2
 FOLDER_DATA = {"source": "folder", "path": "imgs", "image_size": 16, "channels": 3}
 FASHION_DATA = {"source": "fashion-mnist", "path": "fm", "image_size": 28, "channels": 1}
-
-
-def _has_command(name: str) -> bool:
-    from tightfit.cli import build_parser
-    subs = [a for a in build_parser()._actions if isinstance(a, argparse._SubParsersAction)]
-    return any(name in a.choices for a in subs)
-
-
-HAS_SEARCH = _has_command("search")
-NO_SEARCH = "'tightfit search' is not wired into tightfit.cli.build_parser yet"
 
 
 # ---- building inputs ---------------------------------------------------------------------
@@ -208,7 +197,6 @@ class Case:
     args: tuple[str, ...]
     expect: tuple[str, ...]                 # substrings of the one error line: the problem, then the fix
     setup: Optional[Callable[[Env], object]] = None  # builds the bad input in the case's folder
-    search: bool = False
     figure: Optional[Callable[[Env], str]] = None    # one more expected substring, worked out at run time
 
 
@@ -338,15 +326,15 @@ CASES = [
          ("is not valid JSON", "re-measure it"),
          lambda env: (env.run(), (env.tmp / "table.json").write_text('{"format": "tightfit-lat'))),
     Case("search-budget-not-a-duration", _search("fast"), ("budget 'fast' is not a duration", "0.3ms"),
-         lambda env: (env.run(), env.table()), search=True),
+         lambda env: (env.run(), env.table())),
     Case("search-budget-zero", _search("0ms"), ("budget '0ms' must be greater than zero", "0.3ms"),
-         lambda env: (env.run(), env.table()), search=True),
+         lambda env: (env.run(), env.table())),
     Case("search-budget-negative", _search("-1ms"), ("budget '-1ms'", "0.3ms"),
-         lambda env: (env.run(), env.table()), search=True),
+         lambda env: (env.run(), env.table())),
     Case("search-budget-below-fastest", _search("1us"), ("below the fastest subnet", "raise the budget"),
-         _valid_table, search=True, figure=_fastest),
+         _valid_table, figure=_fastest),
     Case("search-table-other-space", _search("1ms"), ("measured for another search space", "tightfit probe"),
-         lambda env: (env.run(), env.table()), search=True),
+         lambda env: (env.run(), env.table())),
     # -- exports and manifests -------------------------------------------------------------
     Case("verify-no-manifest", ("verify", "exports/host-1ms"), ("manifest.json not found", "pass an export folder"),
          lambda env: (env.export() / "manifest.json").unlink()),
@@ -374,12 +362,8 @@ def tightfit(*args: str, cwd: Path) -> subprocess.CompletedProcess:
                           timeout=600)
 
 
-@pytest.mark.parametrize("case", [
-    pytest.param(c, id=c.id, marks=[pytest.mark.xfail(c.search and not HAS_SEARCH, reason=NO_SEARCH, strict=False)])
-    for c in CASES])
+@pytest.mark.parametrize("case", [pytest.param(c, id=c.id) for c in CASES])
 def test_bad_input_is_one_line_exit_2_and_writes_nothing(case: Case, tmp_path: Path, shared: Shared):
-    if case.search and not HAS_SEARCH:
-        pytest.xfail(NO_SEARCH)
     env = Env(tmp_path, shared)
     if case.setup:
         case.setup(env)

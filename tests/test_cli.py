@@ -59,3 +59,12 @@ batch_size = 32
     r = run("cut", str(tmp_path / "run"), "--subnet", "smallest", "--subnet", "2:5,3:3")
     assert r.returncode == 0, r.stderr
     assert "smallest" in r.stdout and (tmp_path / "run" / "exports" / "smallest" / "model.onnx").is_file()
+
+
+def test_every_pipeline_command_is_registered_in_pipeline_order():
+    # The product contract (docs/contract.md, "The user's day") names these commands.
+    import argparse
+    from tightfit.cli import build_parser
+    subs = next(a for a in build_parser()._actions if isinstance(a, argparse._SubParsersAction))
+    assert list(subs.choices) == ["train", "probe", "profile", "check-latency", "search", "cut", "verify",
+                                  "report", "demo"]

@@ -72,6 +72,13 @@ def test_manifest_fields_and_sha256(tmp_path):
 
 
 def test_manifest_unverified_latency_says_so():
-    lat = latency_section(None, {"cpu_model": "elsewhere"}, {"threads": 1}, 0.42, "unverified: measure on the device")
-    assert lat["measured"] is False and lat["p90_ms"] is None and lat["stable"] is False
-    assert "unverified" in lat["note"] and math.isclose(lat["predicted_ms"], 0.42)
+    # No measurement: every figure is null, never a prediction dressed up as a measurement, and the
+    # note says so even when the caller gives none.
+    hardware, protocol = {"cpu_model": "elsewhere"}, {"threads": 1}
+    lat = latency_section(None, hardware, protocol, 0.42)
+    assert lat["measured"] is False and lat["stable"] is False and lat["note"] == "not measured"
+    assert all(lat[k] is None for k in ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "cv", "iqr_over_median"))
+    assert lat["hardware"] == hardware and lat["protocol"] == protocol and math.isclose(lat["predicted_ms"], 0.42)
+    measured = latency_section({"p50_ms": 0.3, "p90_ms": 0.35, "stable": True, "note": "ok"}, hardware, protocol,
+                               0.42, "the search note")
+    assert measured["measured"] is True and measured["p90_ms"] == 0.35 and measured["note"] == "the search note"

@@ -151,6 +151,9 @@ BAD = {
     "no_sha": (_drop("sha256"), "sha256"),
     "no_model": (lambda f: (f / "model.onnx").unlink(), "missing"),
     "not_onnx": (_not_onnx, "cannot load"),
+    # a manifest of the first format (version 1: e6k5-style keys, abbreviated layer fields) is refused
+    "old_version": (lambda f: (f / "manifest.json").write_text(json.dumps(
+        {**json.loads((f / "manifest.json").read_text()), "version": 1})), "manifest version 1"),
 }
 
 

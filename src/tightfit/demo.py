@@ -34,6 +34,7 @@ def _stage(title: str, t0: float) -> None:
     print(f"\n== {title}  (t = {time.perf_counter() - t0:.0f} s)")
 
 
+# long: the demo reads as the user's day, one stage after another; splitting it would hide the order
 def run_demo(run_dir: str | Path | None = None, recipe_path: str | Path | None = None) -> Path:
     t0 = time.perf_counter()
     recipe_path = Path(recipe_path) if recipe_path else default_recipe()

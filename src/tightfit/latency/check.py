@@ -41,6 +41,7 @@ def _errors(predicted: list[float], measured: list[float]) -> dict[str, float]:
             "kendall_tau": kendall_tau(predicted, measured)}
 
 
+# long: measurement, then one flat record of every figure the check reports
 def check_predictor(run_dir, table_path, n: int = 30, seed: int = 1, protocol=None,
                     progress: bool = True) -> dict:
     """Measure n held-out random subnets whole, interleaved in one session, against the predictor.

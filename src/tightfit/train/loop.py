@@ -123,6 +123,7 @@ def _open_run(run_dir: Path, recipe: Recipe, resume: bool) -> dict | None:
     return state
 
 
+# long: one training step's bookkeeping (schedule, sync, logging, checkpoint, stop) must stay in one visible order
 def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, start: int, progress: bool,
           dev: torch.device, ranks: Ranks = Ranks(), stop_at_step: int | None = None) -> Path:
     cfg = recipe.train
