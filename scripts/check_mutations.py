@@ -1,0 +1,123 @@
+"""Apply plausible bugs one at a time to a copy of the code and check that the named tests catch each.
+
+    .venv/bin/python scripts/check_mutations.py            # every mutation, prints the kill count
+    .venv/bin/python scripts/check_mutations.py --list     # the table only
+
+A mutation is (file under src/tightfit, exact text, replacement, tests that must fail). Each runs in a
+fresh temporary copy of src/ and tests/ (the checkout is never touched), with PYTHONPATH pointing at
+the copy. Exit 0 when every mutation is killed, 1 otherwise, 2 when a mutation's text is not found
+(the table has drifted from the code: update it). Grow the table with the code: a new rule in the
+search, the protocol or training gets its mutation here.
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+RULES = "tests/test_method_rules.py"
+
+
+@dataclass(frozen=True)
+class Mutation:
+    what: str
+    file: str
+    text: str
+    replacement: str
+    tests: tuple[str, ...]
+
+
+MUTATIONS = (
+    Mutation("distillation switched off (labels for every subnet)", "train/sandwich.py",
+             "if i == 0 or not cfg.distill:", "if True:",
+             (f"{RULES}::test_sandwich_gradient_is_label_loss_of_largest_plus_distillation_of_the_others",)),
+    Mutation("soft targets without softmax", "train/sandwich.py",
+             "soft = logits.detach().softmax(1)", "soft = logits.detach()",
+             (f"{RULES}::test_sandwich_gradient_is_label_loss_of_largest_plus_distillation_of_the_others",)),
+    Mutation("teacher recomputed from each subnet", "train/sandwich.py",
+             "        if i == 0:\n            soft =", "        if True:\n            soft =",
+             (f"{RULES}::test_sandwich_gradient_is_label_loss_of_largest_plus_distillation_of_the_others",)),
+    Mutation("sandwich draw ignores the seed", "train/sandwich.py",
+             "random.Random(seed * 7_919 + step)", "random.Random(step)",
+             (f"{RULES}::test_sandwich_draws_depend_on_seed_and_step_and_differ_within_a_step",)),
+    Mutation("recalibration with a moving average", "model/elastic.py",
+             "factor = 1.0 / float(self.num_batches_tracked) if self.momentum is None else self.momentum",
+             "factor = self.momentum or 0.1",
+             (f"{RULES}::test_recalibrated_batchnorm_is_the_exact_average_and_touches_only_active_channels",)),
+    Mutation("statistics written to a copy", "model/elastic.py",
+             "F.batch_norm(x, self.running_mean[:chs], self.running_var[:chs],",
+             "F.batch_norm(x, self.running_mean[:chs].clone(), self.running_var[:chs].clone(),",
+             (f"{RULES}::test_recalibrated_batchnorm_is_the_exact_average_and_touches_only_active_channels",)),
+    Mutation("trailing instead of leading channels", "model/elastic.py",
+             "return self.weight[:out_channels, :in_channels]", "return self.weight[-out_channels:, :in_channels]",
+             (f"{RULES}::test_pointwise_uses_the_leading_channels",)),
+    Mutation("normalize without the mean", "data/dataset.py",
+             "(x.permute(0, 3, 1, 2).float() - m) / s", "x.permute(0, 3, 1, 2).float() / s",
+             (f"{RULES}::test_normalize_subtracts_the_mean_then_divides_by_the_std",)),
+    Mutation("verdict loosened to 1.5 x the budget", "ondevice/timing.py",
+             'return entry["budget_stat_ms"] <= budget_ms', 'return entry["budget_stat_ms"] <= 1.5 * budget_ms',
+             (f"{RULES}::test_budget_boundary",)),
+    Mutation("verdict strict at the budget itself", "ondevice/timing.py",
+             'return entry["budget_stat_ms"] <= budget_ms', 'return entry["budget_stat_ms"] < budget_ms',
+             (f"{RULES}::test_budget_boundary",)),
+    Mutation("guard margin dropped", "search/choose.py",
+             "target = budget_ms * (1.0 - guard)", "target = budget_ms",
+             ("tests/test_search_choose.py::test_pick_leaves_the_guard_margin_when_a_candidate_can",)),
+    Mutation("measured/predicted as a mean", "search/choose.py",
+             "float(np.median(r)) if r else None", "float(np.mean(r)) if r else None",
+             ("tests/test_search_choose.py::test_choice_ratio_is_the_median_over_measured_candidates",)),
+)
+
+
+def run_one(m: Mutation | None, python: str, tests: tuple[str, ...] = ()) -> tuple[bool, float]:
+    """(failed, seconds): apply ``m`` (None: nothing) to a fresh copy and run its tests there."""
+    with tempfile.TemporaryDirectory(prefix="tightfit-mutant-") as tmp:
+        for part in ("src", "tests"):
+            shutil.copytree(ROOT / part, Path(tmp) / part, ignore=shutil.ignore_patterns("__pycache__", "*.egg-info"))
+        if m is not None:
+            target = Path(tmp) / "src" / "tightfit" / m.file
+            text = target.read_text()
+            if text.count(m.text) != 1:
+                print(f"error: {m.file}: the text of mutation {m.what!r} is found {text.count(m.text)} times "
+                      "(expected once); update the table", file=sys.stderr)
+                sys.exit(2)
+            target.write_text(text.replace(m.text, m.replacement))
+        env = dict(os.environ, PYTHONPATH=str(Path(tmp) / "src"))
+        t0 = time.perf_counter()
+        proc = subprocess.run([python, "-m", "pytest", "-q", "-x", "-p", "no:cacheprovider", *(tests or m.tests)],
+                              cwd=tmp, env=env, capture_output=True, text=True)
+        return proc.returncode != 0, time.perf_counter() - t0
+
+
+def main(argv: list[str] | None = None) -> int:
+    p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--list", action="store_true", help="print the table and exit")
+    args = p.parse_args(argv)
+    if args.list:
+        for m in MUTATIONS:
+            print(f"{m.file:<22} {m.what}")
+        return 0
+    t0, survivors = time.perf_counter(), []
+    every_test = tuple(dict.fromkeys(t for m in MUTATIONS for t in m.tests))
+    if run_one(None, sys.executable, every_test)[0]:  # a kill only counts if the unmutated code passes
+        print("error: the named tests fail on the unmutated code; fix them first", file=sys.stderr)
+        return 2
+    for i, m in enumerate(MUTATIONS, 1):
+        killed, seconds = run_one(m, sys.executable)
+        print(f"[{i:>2}/{len(MUTATIONS)}] {'killed  ' if killed else 'SURVIVED'} {seconds:5.1f} s  {m.file}: {m.what}",
+              flush=True)
+        if not killed:
+            survivors.append(m)
+    print(f"{len(MUTATIONS) - len(survivors)} of {len(MUTATIONS)} mutations killed in {time.perf_counter() - t0:.0f} s")
+    return 1 if survivors else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,113 @@
+"""The published rules written out by hand on tiny inputs, so a wrong method fails, not only a crash.
+
+Each test names its rule; scripts/check_mutations.py lists the plausible bugs these tests must catch.
+"""
+from __future__ import annotations
+
+import random
+
+import numpy as np
+import pytest
+import torch
+import torch.nn.functional as F
+
+from helpers import perturb, tiny_recipe
+from tightfit.data.dataset import normalize
+from tightfit.model.elastic import ElasticBatchNorm, ElasticPointwise
+from tightfit.model.supernet import build_supernet
+from tightfit.ondevice.timing import fits_budget
+from tightfit.search.choose import Tried, measure_and_choose
+from tightfit.search.evolution import Candidate
+from tightfit.train.sandwich import sandwich, sandwich_backward
+
+
+def test_sandwich_gradient_is_label_loss_of_largest_plus_distillation_of_the_others():
+    # Yu & Huang 2019 (in-place distillation): the largest learns from the labels (with label smoothing);
+    # every other subnet learns from the largest's detached softmax, by soft-label cross-entropy.
+    recipe = tiny_recipe()
+    model = build_supernet(recipe, 5)
+    perturb(model, seed=1)
+    model.train()
+    space, cfg = recipe.space, recipe.train
+    subnets = [space.largest(), space.smallest(), space.sample(random.Random(3))]
+    gen = torch.Generator().manual_seed(0)
+    x, y = torch.randn(8, 3, 16, 16, generator=gen), torch.randint(0, 5, (8,), generator=gen)
+    sandwich_backward(model, x, y, subnets, cfg)
+    got = {n: p.grad.clone() for n, p in model.named_parameters() if p.grad is not None}
+    model.zero_grad(set_to_none=True)
+    model.set_subnet(subnets[0])
+    teacher_logits = model(x)
+    total = F.cross_entropy(teacher_logits, y, label_smoothing=cfg.label_smoothing)
+    teacher = teacher_logits.detach().softmax(1)
+    for s in subnets[1:]:
+        model.set_subnet(s)
+        total = total + (-(teacher * F.log_softmax(model(x), 1)).sum(1).mean())
+    total.backward()
+    want = {n: p.grad for n, p in model.named_parameters() if p.grad is not None}
+    assert set(got) == set(want)
+    for n in want:
+        torch.testing.assert_close(got[n], want[n], rtol=1e-4, atol=1e-6, msg=n)
+
+
+def test_sandwich_draws_depend_on_seed_and_step_and_differ_within_a_step():
+    # Common practice for resumable training: the draw is a function of (seed, step) only.
+    space = tiny_recipe().space
+    a, b, c = sandwich(space, 5, 0, 4), sandwich(space, 5, 0, 4), sandwich(space, 5, 1, 4)
+    assert a == b and a[:2] == [space.largest(), space.smallest()]
+    assert a[2:] != c[2:]                                  # another seed, another draw at the same step
+    assert sandwich(space, 6, 0, 4)[2:] != a[2:]           # another step, another draw
+    assert len({s.to_key() for s in a[2:]}) > 1            # not one subnet repeated
+
+
+def test_recalibrated_batchnorm_is_the_exact_average_and_touches_only_active_channels():
+    # Yu & Huang 2019 (Sec. 3.3): reset, then a cumulative average over the calibration batches.
+    bn = ElasticBatchNorm(8, momentum=None)
+    bn.reset_running_stats()
+    bn.train()
+    gen = torch.Generator().manual_seed(0)
+    batches = [torch.randn(6, 4, 5, 5, generator=gen) * (i + 1) + i for i in range(3)]
+    with torch.no_grad():
+        for x in batches:
+            bn(x)
+    means = torch.stack([x.mean((0, 2, 3)) for x in batches])
+    variances = torch.stack([x.var((0, 2, 3), unbiased=True) for x in batches])   # torch's running_var is unbiased
+    torch.testing.assert_close(bn.running_mean[:4], means.mean(0))
+    torch.testing.assert_close(bn.running_var[:4], variances.mean(0))
+    assert torch.equal(bn.running_mean[4:], torch.zeros(4)) and torch.equal(bn.running_var[4:], torch.ones(4))
+
+
+def test_pointwise_uses_the_leading_channels():
+    # Channel prefixes (Yu et al. 2019, slimmable networks): a width-k layer is the first k filters
+    # over the first j inputs, so every narrower subnet shares the wider one's leading weights.
+    conv = ElasticPointwise(6, 5)
+    with torch.no_grad():
+        conv.weight.copy_(torch.arange(30.0).view(5, 6, 1, 1))
+    w = conv.active_weight(2, 3)
+    assert w[:, :, 0, 0].tolist() == [[0.0, 1.0], [6.0, 7.0], [12.0, 13.0]]
+
+
+def test_normalize_subtracts_the_mean_then_divides_by_the_std():
+    # (x / 255 - mean) / std per channel, channels first (common practice; torchvision Normalize).
+    x = torch.tensor([[[[0, 255], [51, 102]]]], dtype=torch.uint8).permute(0, 2, 3, 1).repeat(1, 1, 1, 2)
+    out = normalize(x, (0.2, 0.5), (0.5, 0.25))
+    expect = (np.array([[0, 255], [51, 102]]) / 255.0 - 0.2) / 0.5
+    np.testing.assert_allclose(out[0, 0].numpy(), expect, rtol=1e-6)
+    np.testing.assert_allclose(out[0, 1].numpy(), (np.array([[0, 255], [51, 102]]) / 255.0 - 0.5) / 0.25, rtol=1e-6)
+
+
+@pytest.mark.parametrize("ratio, fits", [(0.99, True), (1.0, True), (1.01, False)])
+def test_budget_boundary(ratio, fits):
+    # The contract: a budget is met when the percentile is at or under it.
+    assert fits_budget({"budget_stat_ms": 0.5 * ratio}, 0.5) is fits
+
+
+def test_choice_never_calls_a_candidate_1_percent_over_the_budget_fitting():
+    cands = [Candidate("over", None, 90.0, 0.9, 0), Candidate("under", None, 80.0, 0.8, 0)]
+    measured = {"over": 1.01, "under": 0.99}
+
+    def measure(cs, start):
+        return [Tried(c, None, None, {"budget_stat_ms": measured[c.key]}) for c in cs]
+    choice = measure_and_choose(cands, 1.0, measure, 2, lambda: cands[-1], lambda line: None, guard=0.0)
+    assert choice.pick.cand.key == "under" and choice.fits
+    alone = measure_and_choose(cands[:1], 1.0, measure, 1, lambda: cands[0], lambda line: None, guard=0.0)
+    assert alone.fits is False      # the only candidate is 1 % over: not a fit, and said so
