@@ -73,6 +73,22 @@ MUTATIONS = (
     Mutation("measured/predicted as a mean", "search/choose.py",
              "float(np.median(r)) if r else None", "float(np.mean(r)) if r else None",
              ("tests/test_search_choose.py::test_choice_ratio_is_the_median_over_measured_candidates",)),
+    Mutation("validation images taken from the official test set", "data/dataset.py",
+             "t(np.ascontiguousarray(x[val]))", "t(np.ascontiguousarray(tx[:len(val)]))",
+             ("tests/test_data_loaders.py::test_fashion_mnist_splits_validation_from_train_and_test_is_the_official_test",)),
+    Mutation("input size dropped from the space hash", "model/space.py",
+             '"in_channels": in_channels, "image_size": image_size}', '"in_channels": in_channels}',
+             (f"{RULES}::test_space_hash_tells_input_shapes_apart",)),
+    Mutation("leave-one-out error computed in-sample", "latency/predict.py",
+             "a, b = _fit(kind, x[keep], y[keep])", "a, b = _fit(kind, x, y)",
+             (f"{RULES}::test_calibration_reports_its_leave_one_out_error_in_percent",)),
+    Mutation("leave-one-out error as a fraction, not percent", "latency/predict.py",
+             "return 100.0 * float(np.mean(errs))", "return float(np.mean(errs))",
+             (f"{RULES}::test_calibration_reports_its_leave_one_out_error_in_percent",)),
+    Mutation("verify ignores the manifest's percentile", "ondevice/verify.py",
+             'changes: dict[str, Any] = {"percentile": float(e.manifest["budget"]["percentile"])}',
+             "changes: dict[str, Any] = {}",
+             (f"{RULES}::test_verify_judges_at_the_manifest_percentile",)),
 )
 
 

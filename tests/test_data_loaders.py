@@ -193,3 +193,23 @@ def test_mostly_corrupt_and_unreadable_class(tmp_path):
     (root / "b" / "ok.png").write_bytes(b"garbage")   # class b now has no readable image
     with pytest.raises(UserError, match="no readable image"):
         load_image_folder(str(root), 8, 3)
+
+
+@pytest.mark.skipif(not Path("/usr/share/datasets/fashion-mnist").is_dir(),
+                    reason="Debian package dataset-fashion-mnist not installed")
+def test_fashion_mnist_splits_validation_from_train_and_test_is_the_official_test():
+    # Xiao et al. 2017: 60,000 training and 10,000 test images. Validation is carved from the training
+    # images (never the official test set); the test split is the official test set, whole.
+    from tightfit.data.dataset import load_dataset
+    from tightfit.data.fashion_mnist import DEFAULT_DIR, load_fashion_mnist
+    from tightfit.recipe import DataConfig
+    ds = load_dataset(DataConfig(source="fashion-mnist", path=DEFAULT_DIR, image_size=28, channels=1), seed=0)
+    tr, _, te, te_y = load_fashion_mnist(DEFAULT_DIR)
+
+    def rows(a):
+        return {bytes(r) for r in np.asarray(a).reshape(len(a), -1)}
+    train, val, test = rows(ds.train_x), rows(ds.val_x), rows(ds.test_x)
+    official_train, official_test = rows(tr), rows(te)
+    assert len(ds.train_y) + len(ds.val_y) == 60000 and len(ds.test_y) == 10000
+    assert val <= official_train and train <= official_train and test == official_test
+    assert not (val & train) and np.array_equal(np.sort(ds.test_y.numpy()), np.sort(te_y))

@@ -111,3 +111,40 @@ def test_choice_never_calls_a_candidate_1_percent_over_the_budget_fitting():
     assert choice.pick.cand.key == "under" and choice.fits
     alone = measure_and_choose(cands[:1], 1.0, measure, 1, lambda: cands[0], lambda line: None, guard=0.0)
     assert alone.fits is False      # the only candidate is 1 % over: not a fit, and said so
+
+
+def test_calibration_reports_its_leave_one_out_error_in_percent():
+    # Leave-one-out error (common practice for choosing a model on few points): fit the ratio on two
+    # points, predict the third, in percent. Three points: only "sum" and "ratio" are candidates.
+    from tightfit.latency.predict import calibrate
+    x, y = [1.0, 2.0, 3.0], [1.1, 2.0, 3.3]
+    errors = []
+    for i in range(3):
+        xs, ys = [v for j, v in enumerate(x) if j != i], [v for j, v in enumerate(y) if j != i]
+        a = sum(p / q for p, q in zip(xs, ys)) / sum((p / q) ** 2 for p, q in zip(xs, ys))  # min sum((a x / y - 1)^2)
+        errors.append(abs(a * x[i] - y[i]) / y[i])
+    ratio_loo = 100 * sum(errors) / 3
+    sum_loo = 100 * sum(abs(p - q) / q for p, q in zip(x, y)) / 3
+    cal = calibrate(x, y)
+    assert cal.kind == ("ratio" if ratio_loo < sum_loo else "sum")
+    assert cal.loo_mape == pytest.approx(min(ratio_loo, sum_loo), rel=1e-9)
+
+
+def test_space_hash_tells_input_shapes_apart():
+    # A latency table is valid only for the space *and* the input shape it was measured at.
+    from tightfit.model.space import space_hash
+    space = tiny_recipe().space
+    assert space_hash(space, 3, 16) == space_hash(space, 3, 16)
+    assert len({space_hash(space, 3, 16), space_hash(space, 3, 32), space_hash(space, 1, 16)}) == 3
+
+
+def test_verify_judges_at_the_manifest_percentile():
+    from pathlib import Path
+
+    from tightfit.ondevice.exports import Export
+    from tightfit.ondevice.timing import Protocol
+    from tightfit.ondevice.verify import protocol_for
+    manifest = {"latency": {"protocol": Protocol(percentile=90.0).to_dict()}, "budget": {"ms": 1.0, "percentile": 75.0}}
+    e = Export("x", Path("."), Path("model.onnx"), manifest)
+    assert protocol_for(e, None, None, False).percentile == 75.0
+    assert protocol_for(e, 2, 4, False).threads == 2 and protocol_for(e, 2, 4, False).repeats == 4
