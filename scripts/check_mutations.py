@@ -89,6 +89,12 @@ MUTATIONS = (
              'changes: dict[str, Any] = {"percentile": float(e.manifest["budget"]["percentile"])}',
              "changes: dict[str, Any] = {}",
              (f"{RULES}::test_verify_judges_at_the_manifest_percentile",)),
+    Mutation("report's QA cell inverted", "report/page.py",
+             "{'PASS' if qa.get('pass') else 'MISS'}", "{'MISS' if qa.get('pass') else 'PASS'}",
+             ("tests/test_report.py::test_picks_table_cells_follow_each_pick_and_verdict",)),
+    Mutation("report's fits cell inverted", "report/page.py",
+             '"yes" if p.get("fits") else "NO"', '"NO" if p.get("fits") else "yes"',
+             ("tests/test_report.py::test_picks_table_cells_follow_each_pick_and_verdict",)),
 )
 
 

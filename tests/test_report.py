@@ -151,3 +151,18 @@ def test_report_subcommand_plugs_into_a_parser(tmp_path, capsys):
     args = parser.parse_args(["report", str(run)])
     assert args.func(args) == 0
     assert str(run / "report" / "report.html") in capsys.readouterr().out
+
+
+def test_picks_table_cells_follow_each_pick_and_verdict(tmp_path):
+    # What QA reads on the page: a pick that does not fit says NO, a failed re-measurement says MISS.
+    from tightfit.report.data import RunData
+    from tightfit.report.page import _picks_table
+    root = tmp_path / "run"
+    picks = [{"device": "d", "budget_ms": 1.0, "key": k, "val_acc": 90.0, "test_acc": 89.0, "predicted_ms": 0.9,
+              "measured": {"budget_stat_ms": ms}, "fits": fits, "verified": True, "export_dir": str(root / k)}
+             for k, ms, fits in (("a", 0.95, True), ("b", 1.05, False))]
+    data = RunData(root, picks=picks, qa={str((root / "a").resolve()): {"pass": False, "measured": {"budget_stat_ms": 1.2}},
+                                          str((root / "b").resolve()): {"pass": True, "measured": {"budget_stat_ms": 0.8}}})
+    rows = _picks_table(data).split("<tr>")[2:]
+    cells = [[c.split("</td>")[0] for c in r.split("<td>")[1:]] for r in rows]
+    assert [(c[2], c[7], c[8]) for c in cells] == [("a", "yes", "MISS 1.2 ms"), ("b", "NO", "PASS 0.8 ms")]
