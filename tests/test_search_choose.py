@@ -36,3 +36,38 @@ def test_pick_leaves_the_guard_margin_when_a_candidate_can():
     assert choose(cands, 0.05) == ("b", True, "")       # 0.98 > 0.95: the next most accurate leaves the margin
     key, fits, note = choose(cands[:1], 0.05, top=1)    # nothing else to try: it still fits the budget itself
     assert (key, fits) == ("a", True) and "guard" in note
+
+
+def _measured_as(figures):
+    def measure(cs, start):
+        return [Tried(c, None, None, {"budget_stat_ms": figures[c.key]}) for c in cs]
+    return measure
+
+
+def test_after_a_miss_only_candidates_that_should_fit_at_the_measured_ratio_are_tried():
+    # Every candidate measured 1.2 x its prediction: the second round must go where 1.2 x predicted fits.
+    cands = [Candidate("a", None, 90.0, 0.90, 0), Candidate("b", None, 89.0, 0.95, 0), Candidate("c", None, 80.0, 0.5, 0)]
+    figures = {c.key: 1.2 * c.latency_ms for c in cands}
+    choice = measure_and_choose(cands, 1.0, _measured_as(figures), 1, lambda: cands[-1], lambda line: None, rounds=2)
+    assert choice.pick.cand.key == "c" and choice.fits and [t.cand.key for t in choice.tried] == ["a", "c"]
+
+
+def test_the_fallback_subnet_is_tried_when_nothing_ranked_is_left():
+    ranked, smallest = [Candidate("a", None, 90.0, 0.9, 0)], Candidate("smallest", None, 70.0, 0.3, -1)
+    choice = measure_and_choose(ranked, 1.0, _measured_as({"a": 1.3, "smallest": 0.4}), 2, lambda: smallest,
+                                lambda line: None)
+    assert choice.pick.cand.key == "smallest" and choice.fits
+
+
+def test_when_nothing_fits_the_fastest_measured_is_returned_and_flagged():
+    ranked = [Candidate("a", None, 90.0, 0.9, 0), Candidate("b", None, 85.0, 0.8, 0)]
+    choice = measure_and_choose(ranked, 1.0, _measured_as({"a": 1.5, "b": 1.2}), 2, lambda: ranked[-1],
+                                lambda line: None)
+    assert choice.pick.cand.key == "b" and choice.fits is False and "fastest" in choice.note
+
+
+def test_front_candidates_come_first_most_accurate_first():
+    # Pareto dominance (Deb et al. 2002): c is slower and less accurate than a, so it is off the front.
+    from tightfit.search.choose import front_first
+    ranked = [Candidate("a", None, 90.0, 0.9, 0), Candidate("c", None, 89.0, 0.95, 0), Candidate("b", None, 88.0, 0.5, 0)]
+    assert [c.key for c in front_first(ranked)] == ["a", "b", "c"]
