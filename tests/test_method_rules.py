@@ -102,6 +102,7 @@ def test_budget_boundary(ratio, fits):
 
 
 def test_choice_never_calls_a_candidate_1_percent_over_the_budget_fitting():
+    # The contract (docs/contract.md): a budget is met when p90 <= budget, in the search's choice as in verify.
     cands = [Candidate("over", None, 90.0, 0.9, 0), Candidate("under", None, 80.0, 0.8, 0)]
     measured = {"over": 1.01, "under": 0.99}
 

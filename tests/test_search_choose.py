@@ -53,6 +53,7 @@ def test_after_a_miss_only_candidates_that_should_fit_at_the_measured_ratio_are_
 
 
 def test_the_fallback_subnet_is_tried_when_nothing_ranked_is_left():
+    # The contract: an impossible budget is refused up front, so the smallest subnet is the last resort.
     ranked, smallest = [Candidate("a", None, 90.0, 0.9, 0)], Candidate("smallest", None, 70.0, 0.3, -1)
     choice = measure_and_choose(ranked, 1.0, _measured_as({"a": 1.3, "smallest": 0.4}), 2, lambda: smallest,
                                 lambda line: None)
@@ -60,6 +61,7 @@ def test_the_fallback_subnet_is_tried_when_nothing_ranked_is_left():
 
 
 def test_when_nothing_fits_the_fastest_measured_is_returned_and_flagged():
+    # The contract ("Errors and safety"): a miss is said, not hidden; the fastest tried is the closest.
     ranked = [Candidate("a", None, 90.0, 0.9, 0), Candidate("b", None, 85.0, 0.8, 0)]
     choice = measure_and_choose(ranked, 1.0, _measured_as({"a": 1.5, "b": 1.2}), 2, lambda: ranked[-1],
                                 lambda line: None)
