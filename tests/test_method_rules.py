@@ -149,3 +149,67 @@ def test_verify_judges_at_the_manifest_percentile():
     e = Export("x", Path("."), Path("model.onnx"), manifest)
     assert protocol_for(e, None, None, False).percentile == 75.0
     assert protocol_for(e, 2, 4, False).threads == 2 and protocol_for(e, 2, 4, False).repeats == 4
+
+
+def _block_with_squeeze_excite():
+    from tightfit.model.space import StageSpec
+    from tightfit.model.supernet import ElasticInvertedResidual
+    stage = StageSpec(out_channels=8, stride=1, depths=(1,), expansions=(3, 6), kernels=(3, 5),
+                      activation="relu6", squeeze_excite=True)
+    block = ElasticInvertedResidual(8, 8, 1, stage, "centre")
+    perturb(block, seed=4)
+    block.expansion, block.kernel = 3, 3          # hidden 24 of 48, the centre 3x3 of the 5x5 kernels
+    return block
+
+
+def test_sliced_block_with_squeeze_excite_equals_torchvision_layers_loaded_with_leading_slices():
+    # Reference: torchvision.ops.SqueezeExcitation (ReLU, hard-sigmoid gate as in MobileNetV3, Howard et al.
+    # 2019) and plain torch layers, loaded with explicit leading slices of the supernet's tensors: the first
+    # 24 of 48 hidden channels, the centre 3x3 of each 5x5 depthwise kernel, the first 8 of 12 squeeze
+    # channels (squeeze width: a quarter of 24 rounded to 8). A trailing slice anywhere changes the output.
+    from torch import nn
+    from torchvision.ops import SqueezeExcitation
+    block = _block_with_squeeze_excite().eval()
+    sd = block.state_dict()
+    h, sq = 24, 8
+
+    def bn(prefix, n):
+        layer = nn.BatchNorm2d(n).eval()
+        layer.load_state_dict({k: sd[f"{prefix}.{k}"][:n] if sd[f"{prefix}.{k}"].dim() else sd[f"{prefix}.{k}"]
+                               for k in layer.state_dict()})
+        return layer
+
+    expand = nn.Conv2d(8, h, 1, bias=False)
+    expand.weight.data = sd["expand.weight"][:h, :8].clone()
+    dw = nn.Conv2d(h, h, 3, padding=1, groups=h, bias=False)
+    dw.weight.data = sd["dw.weight"][:h, :, 1:4, 1:4].clone()
+    se = SqueezeExcitation(h, sq, activation=nn.ReLU, scale_activation=nn.Hardsigmoid)
+    se.fc1.weight.data, se.fc1.bias.data = sd["se.reduce.weight"][:sq, :h].clone(), sd["se.reduce.bias"][:sq].clone()
+    se.fc2.weight.data, se.fc2.bias.data = sd["se.expand.weight"][:h, :sq].clone(), sd["se.expand.bias"][:h].clone()
+    project = nn.Conv2d(h, 8, 1, bias=False)
+    project.weight.data = sd["project.weight"][:8, :h].clone()
+    reference = nn.Sequential(expand, bn("bn1", h), nn.ReLU6(), dw, bn("bn2", h), nn.ReLU6(), se, project,
+                              bn("bn3", 8)).eval()
+    x = torch.randn(2, 8, 6, 6, generator=torch.Generator().manual_seed(1))
+    with torch.no_grad():
+        torch.testing.assert_close(block(x), x + reference(x), rtol=1e-5, atol=1e-6)
+
+
+def test_recalibration_through_a_block_equals_the_depthwise_output_mean_computed_by_hand():
+    # Yu & Huang 2019 (Sec. 3.3): after recalibration on one batch, the depthwise BatchNorm's running mean is the
+    # mean of the depthwise conv's output over that batch, for the active channels; the others keep the reset
+    # values. The expansion's BatchNorm normalises with the batch's own (biased) statistics meanwhile (torch docs).
+    from tightfit.model.recalibrate import recalibrate_bn
+    block = _block_with_squeeze_excite()
+    sd = {k: v.clone() for k, v in block.state_dict().items()}
+    x = torch.randn(4, 8, 6, 6, generator=torch.Generator().manual_seed(2))
+    recalibrate_bn(block, [x])
+    h = F.conv2d(x, sd["expand.weight"][:24, :8])
+    mean, var = h.mean((0, 2, 3), keepdim=True), h.var((0, 2, 3), unbiased=False, keepdim=True)
+    g, b = sd["bn1.weight"][:24].view(1, -1, 1, 1), sd["bn1.bias"][:24].view(1, -1, 1, 1)
+    h = F.relu6((h - mean) / torch.sqrt(var + 1e-5) * g + b)
+    d = F.conv2d(h, sd["dw.weight"][:24, :, 1:4, 1:4], padding=1, groups=24)
+    torch.testing.assert_close(block.bn2.running_mean[:24], d.mean((0, 2, 3)), rtol=1e-4, atol=1e-5)
+    torch.testing.assert_close(block.bn2.running_var[:24], d.var((0, 2, 3), unbiased=True), rtol=1e-4, atol=1e-5)
+    assert torch.equal(block.bn2.running_mean[24:], torch.zeros(24))
+    assert torch.equal(block.bn2.running_var[24:], torch.ones(24))

@@ -178,3 +178,54 @@ def test_drifted_limit_follows_the_machine_and_ignores_noise():
     assert drifted_limit(1.0, 0.8) == pytest.approx(1.25)
     assert drifted_limit(1.0, 1.0 + DEADBAND / 2) == 1.0
     assert drifted_limit(1.0, None) == 1.0
+
+
+# ----------------------------------------------------------------------------- the corrected second search
+
+
+def _drive(tmp_path, monkeypatch, use: float, ratio: float):
+    """_search_device with the evolution and the measured choice injected: returns (limits searched,
+    evaluations asked for, the budget's pick rows). The pick measures ``use`` x the budget and its
+    candidates ran ``ratio`` x their predictions, on every attempt."""
+    from types import SimpleNamespace
+    import tightfit.search.driver as driver
+    from tightfit.ondevice.hardware import describe_hardware
+    space = wide_space()
+    calls = []
+
+    def fake_search(space_, fitness, latency, budget_ms, device, settings, log_path=None, progress=False,
+                    limit_ms=None):
+        calls.append((limit_ms, settings.evaluations))
+        return driver.BudgetResult(device, budget_ms, [], 0.0, 0, 0)
+
+    def fake_choose(ctx, table, ranked, budget_ms, latency, verifiable):
+        assert verifiable
+        return {"device": table.name, "budget_ms": budget_ms, "fits": True, "measured": {"budget_stat_ms": use * budget_ms},
+                "measured_over_predicted": ratio}
+
+    monkeypatch.setattr(driver, "search_budget", fake_search)
+    monkeypatch.setattr(driver, "choose_and_export", fake_choose)
+    compute = SimpleNamespace(phases=lambda latency: {"validation": 0.0})
+    settings = SearchSettings(population=8, evaluations=40, slack=0.1, guard=0.05)
+    ctx = SimpleNamespace(run_dir=tmp_path, run=SimpleNamespace(recipe=SimpleNamespace(space=space)),
+                          settings=settings, compute=compute, fitness=None, progress=False, say=lambda s: None)
+    (tmp_path / "search").mkdir()
+    table = FakeTable("this-host", describe_hardware())
+    picks = driver._search_device(ctx, table, FakePredictor(space), [1.0])
+    return calls, picks
+
+
+def test_a_pick_far_under_budget_earns_one_corrected_search_with_half_the_evaluations(tmp_path, monkeypatch):
+    # This project's rule (search/driver.py corrected_limit): searched up to budget x (1 - guard) x (1 + slack);
+    # a pick using 50 % of its budget whose candidates ran 0.8 x their predictions searches once more,
+    # up to that base / 0.8, with half the evaluations -- and only once, however far under it still is.
+    calls, picks = _drive(tmp_path, monkeypatch, use=0.5, ratio=0.8)
+    base = 1.0 * 0.95 * 1.1
+    assert [c[1] for c in calls] == [40, 20]
+    assert calls[0][0] == pytest.approx(base) and calls[1][0] == pytest.approx(base / 0.8)
+    assert len(picks) == 1 and json.loads((tmp_path / "search" / "picks.json").read_text())[0]["budget_ms"] == 1.0
+
+
+def test_a_pick_that_uses_its_budget_is_searched_once(tmp_path, monkeypatch):
+    calls, picks = _drive(tmp_path, monkeypatch, use=0.9, ratio=0.8)
+    assert [c[1] for c in calls] == [40] and len(picks) == 1

@@ -257,3 +257,36 @@ def test_unwritable_out_fails_before_measuring(tmp_path, model_bytes, capsys):
     (tmp_path / "plain-file").write_text("x")
     code, out, err = run_verify(capsys, folder, "--out", tmp_path / "plain-file" / "v.json")
     assert code == 2 and err.startswith("error: cannot write") and out == ""
+
+
+def test_a_measuring_failure_is_never_a_pass_and_writes_no_verdict(tmp_path, model_bytes, capsys, monkeypatch):
+    # Contract (docs/contract.md, verify): exit 0 only when every model was measured and meets its budget.
+    folder = make_export(tmp_path / "e", model_bytes)
+
+    def broken(exports, protocols):
+        raise RuntimeError("worker process died\n(signal 9)")
+
+    monkeypatch.setattr(verify, "measure", broken)
+    code, out, err = run_verify(capsys, folder, "--out", tmp_path / "v.json")
+    assert code == 1 and err.strip().splitlines()[-1] == "error: worker process died (signal 9)"
+    assert not (tmp_path / "v.json").exists() and "PASS" not in out
+
+
+@pytest.mark.parametrize("threads", [1, 2])
+def test_sessions_run_with_the_protocol_thread_count(tmp_path, model_bytes, threads):
+    # onnxruntime reports the options a session was built with (InferenceSession.get_session_options):
+    # the thread count recorded in a verdict must be the one the timed session used.
+    from dataclasses import replace
+    from tightfit.ondevice.timing import make_session
+    (tmp_path / "m.onnx").write_bytes(model_bytes)
+    opts = make_session(tmp_path / "m.onnx", replace(TINY, threads=threads)).get_session_options()
+    assert opts.intra_op_num_threads == threads and opts.inter_op_num_threads == TINY.inter_op_threads
+
+
+def test_verify_hands_the_override_thread_count_to_the_measurement(tmp_path, model_bytes, capsys, monkeypatch):
+    folder = make_export(tmp_path / "e", model_bytes)
+    seen = []
+    real = verify.measure
+    monkeypatch.setattr(verify, "measure", lambda exports, protocols: seen.extend(protocols) or real(exports, protocols))
+    assert run_verify(capsys, folder, "--threads", "2", "--repeats", "1", "--out", tmp_path / "v.json")[0] == 0
+    assert [p.threads for p in seen] == [2]
