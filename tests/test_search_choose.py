@@ -73,3 +73,22 @@ def test_front_candidates_come_first_most_accurate_first():
     from tightfit.search.choose import front_first
     ranked = [Candidate("a", None, 90.0, 0.9, 0), Candidate("c", None, 89.0, 0.95, 0), Candidate("b", None, 88.0, 0.5, 0)]
     assert [c.key for c in front_first(ranked)] == ["a", "b", "c"]
+
+
+def test_each_candidate_keeps_its_own_measured_guard():
+    # This project's rule (search/choose.py keeps_guard; the guard from ondevice/repeats.py guard_from_spread):
+    # without --guard, a candidate must fit budget x (1 - its own guard). A steady candidate may use 97 % of the
+    # budget (a fixed 5 % rule would refuse it); a jumpy one at 93 % may not.
+    cands = [Candidate("steady", None, 90.0, 0.9, 0), Candidate("jumpy", None, 89.5, 0.9, 0),
+             Candidate("slow-ok", None, 88.0, 0.8, 0)]
+    figures = {"steady": (0.97, 0.01), "jumpy": (0.93, 0.09), "slow-ok": (0.80, 0.03)}
+
+    def measure(cs, start):
+        return [Tried(c, None, None, {"budget_stat_ms": figures[c.key][0], "guard": figures[c.key][1]}) for c in cs]
+
+    def pick(order, guard=None):
+        ranked = [c for k in order for c in cands if c.key == k]
+        return measure_and_choose(ranked, 1.0, measure, 3, lambda: ranked[-1], lambda line: None, guard=guard).pick.cand.key
+    assert pick(["steady", "jumpy", "slow-ok"]) == "steady"
+    assert pick(["jumpy", "slow-ok"]) == "slow-ok"           # 0.93 > 1 - 0.09
+    assert pick(["steady", "jumpy", "slow-ok"], guard=0.05) == "jumpy"   # --guard 5 overrides both

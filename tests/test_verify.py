@@ -290,3 +290,25 @@ def test_verify_hands_the_override_thread_count_to_the_measurement(tmp_path, mod
     monkeypatch.setattr(verify, "measure", lambda exports, protocols: seen.extend(protocols) or real(exports, protocols))
     assert run_verify(capsys, folder, "--threads", "2", "--repeats", "1", "--out", tmp_path / "v.json")[0] == 0
     assert [p.threads for p in seen] == [2]
+
+
+def test_reproduce_counts_passes_and_figures_near_the_manifest(tmp_path, model_bytes, capsys):
+    # `tightfit reproduce`: N verify runs in fresh processes; "within" counts figures within +/-10 % of the
+    # manifest's export-time p90 (by definition, recomputed here from the per-run figures it wrote).
+    from tightfit.ondevice import reproduce
+    ok = make_export(tmp_path / "x" / "ok", model_bytes)
+    tight = make_export(tmp_path / "x" / "tight", model_bytes, budget_ms=1e-6)
+    code = reproduce.main([str(ok), "--runs", "2"])
+    capsys.readouterr()
+    assert code == 0
+    data = json.loads((tmp_path / "x" / "reproducibility.json").read_text())
+    row = data["models"][0]
+    assert data["runs"] == 2 and row["passed"] == 2 and row["measured"] == 2 and row["export_figure_ms"] == 0.12
+    assert row["within_tolerance"] == sum(abs(f / 0.12 - 1) <= 0.10 for f in row["figures_ms"])
+    assert reproduce.main([str(ok), str(tight), "--runs", "1", "--out", str(tmp_path / "r.json")]) == 1
+    rows = json.loads((tmp_path / "r.json").read_text())["models"]
+    assert [r["passed"] for r in rows] == [1, 0]
+    capsys.readouterr()
+    assert reproduce.main([str(tmp_path / "nowhere"), "--out", str(tmp_path / "bad.json")]) == 2
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1 and err.startswith("error: ") and not (tmp_path / "bad.json").exists()

@@ -13,6 +13,7 @@ from tightfit import __version__
 from tightfit.errors import Interrupted, UserError
 from tightfit.export.commands import add_cut_parser
 from tightfit.latency.commands import add_latency_check_parser, add_probe_parser, add_profile_parser
+from tightfit.ondevice.reproduce import add_reproduce_parser
 from tightfit.ondevice.verify import add_verify_parser
 from tightfit.report.commands import add_report_parser
 from tightfit.search.commands import add_search_parser
@@ -30,6 +31,7 @@ the day, in pipeline order:
   tightfit search runs/demo --table runs/demo/latency/this-host.json --budget 0.3ms
                                                             3. best subnet per budget, exported
   tightfit verify runs/demo/exports/this-host-0.3ms         4. QA: re-measure, PASS/MISS
+  tightfit reproduce runs/demo/exports/* --runs 10             (does the figure reproduce? N fresh runs)
   tightfit report runs/demo                                 5. plots and one HTML page
   tightfit demo                                             all of it on built-in data
 """
@@ -59,6 +61,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_search_parser(sub)
     add_cut_parser(sub)
     add_verify_parser(sub)
+    add_reproduce_parser(sub)
     add_report_parser(sub)
 
     d = sub.add_parser("demo", help="the whole day on built-in data: train, cut, profile, search, verify, report",

@@ -26,7 +26,8 @@ from tightfit.model.arithmetic import describe_architecture
 from tightfit.model.space import SpaceSpec, Subnet
 from tightfit.ondevice.files import MANIFEST_FORMAT, MANIFEST_VERSION, write_bytes, write_json
 from tightfit.train.rundir import TrainedRun
-LATENCY_KEYS = ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "cv", "iqr_over_median", "repeat_spread", "stable", "note")
+LATENCY_KEYS = ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "cv", "iqr_over_median", "repeat_figures_ms", "repeat_spread",
+                "states", "stable", "note")
 
 
 @dataclass(frozen=True)
@@ -55,9 +56,10 @@ def software_versions() -> dict[str, str]:
 
 
 def latency_section(summary: Optional[dict[str, Any]], hardware: dict[str, Any], protocol: dict[str, Any],
-                    predicted_ms: float, note: str = "") -> dict[str, Any]:
-    """Measured figures (median over repeats) with how and where; None figures when not measured."""
-    out: dict[str, Any] = {"hardware": hardware, "protocol": protocol}
+                    predicted_ms: float, note: str = "", guard: Optional[dict[str, Any]] = None) -> dict[str, Any]:
+    """Measured figures (pooled over repeats) with how and where, and the guard the pick was chosen
+    with; None figures when not measured."""
+    out: dict[str, Any] = {"hardware": hardware, "protocol": protocol, "guard": guard}
     for k in LATENCY_KEYS:
         out[k] = summary.get(k) if summary else None
     if summary is None:

@@ -13,18 +13,19 @@ Latency table (written atomically to --out):
    "hardware": {cpu, cores, OS, versions, ...}, "protocol": {...}, "created": "<ISO time>",
    "bundle": "<path>", "entries": {"<id>": {"kind", "file", "meta", "p50_ms", "p90_ms",
    "p99_ms", "mean_ms", "min_ms", "budget_stat_ms", "budget_percentile", "cv",
-   "iqr_over_median", "drift", "repeat_spread", "runs", "stable", "note", "repeats": [...]}}}
+   "iqr_over_median", "repeat_figures_ms", "repeat_spread", "guard", "states", "runs",
+   "stable", "note", "repeats": [...]}}}
 
 Protocol: onnxruntime CPU provider, batch 1, 1 intra-op and 1 inter-op thread,
 sequential execution, ORT_ENABLE_ALL; warm-up until the running median settles
-(>= 50 runs); then >= 200 timed runs and >= 2 s per subnet. Single-layer probes
+(>= 50 runs); then >= 200 timed runs and >= 1 s per subnet. Single-layer probes
 (kind "layer") are many and tiny, so they get their own smaller budget
 (--layer-timed-runs, --layer-timed-seconds). All entries are timed interleaved in
 round-robin chunks (layers in one session, whole subnets in another), and each
-session is repeated in fresh processes;
-headline figures are medians over repeats. A budget is met when the
-budget_percentile (p90 by default) is at or under it. Entries with high CV,
-IQR/median, drift or repeat spread are marked stable=false with a note.
+session is repeated in fresh processes (5 by default); the figures are percentiles of
+the pooled runs of every repeat. A budget is met when the budget_percentile (p90 by
+default) is at or under it. An entry whose repeats' percentiles differ by more than
+10 % is marked stable=false; every note says what was seen (ondevice/repeats.py).
 """
 from __future__ import annotations
 
@@ -192,9 +193,9 @@ def _parser() -> argparse.ArgumentParser:
                    help="smoke-test settings: 1 repeat, few runs (figures are not stable); other flags override")
     for flag, typ, help_ in [
         ("--threads", int, "intra-op threads (default 1)"),
-        ("--repeats", int, "fresh-process repeats (default 3; 0 or 1 = one in-process run)"),
+        ("--repeats", int, "fresh-process repeats (default 5; 0 or 1 = one in-process run)"),
         ("--timed-runs", int, "timed runs per subnet per repeat (default 200)"),
-        ("--timed-seconds", float, "timed seconds per subnet per repeat (default 2.0)"),
+        ("--timed-seconds", float, "timed seconds per subnet per repeat (default 1.0)"),
         ("--layer-timed-runs", int, "timed runs per layer probe per repeat (default 100)"),
         ("--layer-timed-seconds", float, "timed seconds per layer probe per repeat (default 0.2)"),
         ("--warmup-runs", int, "least warm-up runs (default 50)"),

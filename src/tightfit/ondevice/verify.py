@@ -70,7 +70,7 @@ def judge(e: Export, s: dict, protocol: Protocol, warnings: list[str], threads: 
     """One model's verdict record."""
     budget = float(e.manifest["budget"]["ms"])
     keep = ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "budget_stat_ms", "cv", "iqr_over_median",
-            "repeat_spread", "stable", "note", "runs", "repeats")
+            "repeat_figures_ms", "repeat_spread", "guard", "states", "stable", "note", "runs", "repeats")
     lat = e.manifest["latency"]
     return {
         "name": e.name, "export_dir": str(e.folder), "model_file": e.manifest["model_file"],
@@ -96,7 +96,7 @@ def format_table(rows: list[dict]) -> str:
         lines.append(f"{r['name'][:20]:<20} {budget:>13} {m['p50_ms']:>8.3f} {m['p90_ms']:>8.3f} "
                      f"{m['p99_ms']:>8.3f} {m['iqr_over_median']:>8.1%} "
                      f"{'-' if spread is None else format(spread, '.1%'):>8} {r['margin']:>+8.1%}  {verdict}")
-    lines += [f"  {r['name']}: noisy: {r['measured']['note']}" for r in rows if r["noisy"]]
+    lines += [f"  {r['name']}: {'noisy: ' if r['noisy'] else ''}{r['measured']['note']}" for r in rows]
     return "\n".join(lines)
 
 

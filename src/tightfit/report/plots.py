@@ -119,31 +119,38 @@ def plot_training(metrics: list[dict]) -> Optional[Figure]:
     return fig
 
 
-def _repeats(measured: Optional[dict]) -> list[dict]:
-    """Per-repeat summaries of a measurement; the combined figure stands in when repeats are absent."""
+Measurement = tuple[list[dict], Optional[dict]]
+
+
+def _measurement(measured: Optional[dict]) -> Measurement:
+    """(per-repeat summaries, the pooled figure) of a measurement; the pooled figure stands in for
+    the repeats when they are absent (a manifest)."""
     measured = measured or {}
-    return measured.get("repeats") or ([measured] if _number(measured.get("p90_ms")) else [])
+    if not _number(measured.get("p90_ms")):
+        return [], None
+    return measured.get("repeats") or [measured], measured
 
 
-def _repeat_figures(pick: dict, data: RunData) -> tuple[list[dict], list[dict]]:
-    """(search's repeats, QA re-measurement's repeats) for a pick."""
+def _repeat_figures(pick: dict, data: RunData) -> tuple[Measurement, Measurement]:
+    """(search's measurement, QA re-measurement's) for a pick."""
     folder = export_folder(pick, data.run_dir)
-    reps = _repeats(pick.get("measured"))
-    if not reps:  # an older picks.json without figures: the manifest has them
-        lat = data.manifests.get(folder, {}).get("latency") or {}
-        reps = _repeats(lat)
-    return reps, _repeats((data.qa.get(folder) or {}).get("measured"))
+    search = _measurement(pick.get("measured"))
+    if not search[0]:  # an older picks.json without figures: the manifest has them
+        search = _measurement(data.manifests.get(folder, {}).get("latency"))
+    return search, _measurement((data.qa.get(folder) or {}).get("measured"))
 
 
-def _strip(ax: Any, reps: list[dict], shift: float, style: dict, label: str) -> None:
-    """Each repeat's p50/p90/p99 as points (jittered), the median over repeats as a bar."""
+def _strip(ax: Any, m: Measurement, shift: float, style: dict, label: str) -> None:
+    """Each repeat's p50/p90/p99 as points (jittered), the figure pooled over repeats as a bar."""
+    reps, pooled = m
     for j, stat in enumerate(("p50_ms", "p90_ms", "p99_ms")):
         ys = [r[stat] for r in reps if _number(r.get(stat))]
         if not ys:
             continue
         xs = [j + shift + (k - (len(ys) - 1) / 2) * 0.06 for k in range(len(ys))]
         ax.scatter(xs, ys, s=25, zorder=3, label=label if j == 0 else None, **style)
-        ax.hlines(statistics.median(ys), j + shift - 0.14, j + shift + 0.14, color="black", lw=1.5, zorder=4)
+        bar = pooled[stat] if pooled and _number(pooled.get(stat)) else statistics.median(ys)
+        ax.hlines(bar, j + shift - 0.14, j + shift + 0.14, color="black", lw=1.5, zorder=4)
 
 
 def _latency_scale(ax: Any, values: list) -> None:
@@ -160,7 +167,7 @@ def plot_pick_latency(data: RunData) -> Optional[Figure]:
     """One panel per pick: p50/p90/p99 of each repeat (search and QA) as points, the budget as a line."""
     from matplotlib.figure import Figure
     panels = [(p, *_repeat_figures(p, data)) for p in data.picks]
-    panels = [t for t in panels if t[1] or t[2]]
+    panels = [t for t in panels if t[1][0] or t[2][0]]
     if not panels:
         return None
     cols = min(len(panels), 3)
@@ -168,16 +175,16 @@ def plot_pick_latency(data: RunData) -> Optional[Figure]:
     fig = Figure(figsize=(4 * cols, 3.6 * rows), dpi=110, layout="constrained")
     axes = fig.subplots(rows, cols, squeeze=False).ravel()
     for ax, (pick, reps, qa) in zip(axes, panels):
-        _strip(ax, reps, -0.15 if qa else 0.0, {"color": "tab:blue"}, "search: one repeat")
+        _strip(ax, reps, -0.15 if qa[0] else 0.0, {"color": "tab:blue"}, "search: one repeat")
         _strip(ax, qa, 0.15, {"color": "tab:green", "marker": "D"}, "QA verify: one repeat")
         pct = pick.get("percentile", 90)
         ax.axhline(pick["budget_ms"], color="tab:red", ls="--", label=f"budget {pick['budget_ms']:g} ms at p{pct:g}")
         ax.set_xticks(range(3), ["p50", "p90", "p99"])
         ax.set_xlim(-0.5, 2.5)
         ax.set(ylabel="latency (ms), batch 1", title=f"{pick.get('device')} / budget {pick['budget_ms']:g} ms")
-        _latency_scale(ax, [r.get(k) for r in reps + qa for k in ("p50_ms", "p99_ms")] + [pick["budget_ms"]])
+        _latency_scale(ax, [r.get(k) for r in reps[0] + qa[0] for k in ("p50_ms", "p99_ms")] + [pick["budget_ms"]])
         ax.grid(alpha=0.3, axis="y")
-        ax.legend(fontsize=7, loc="best", title="bar = median of repeats", title_fontsize=7)
+        ax.legend(fontsize=7, loc="best", title="bar = pooled over repeats", title_fontsize=7)
     for ax in axes[len(panels):]:
         ax.set_visible(False)
     return fig

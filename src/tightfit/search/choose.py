@@ -91,39 +91,68 @@ def _most_accurate(tried: list[Tried]) -> Tried:
     return max(tried, key=lambda t: (t.cand.fitness, -t.measured["budget_stat_ms"]))
 
 
+DEFAULT_GUARD = 0.05  # when a candidate's spread is unknown (one repeat) and no --guard is given
+
+
+def guard_of(t: Tried, fixed: Optional[float]) -> float:
+    """Share of the budget a measured candidate must leave free: ``fixed`` (--guard) when given, else
+    the candidate's own guard from the spread of its repeats (ondevice/repeats.py guard_from_spread)."""
+    if fixed is not None:
+        return fixed
+    own = t.measured.get("guard")
+    return DEFAULT_GUARD if own is None else float(own)
+
+
+def keeps_guard(t: Tried, budget_ms: float, fixed: Optional[float]) -> bool:
+    return t.measured["budget_stat_ms"] <= budget_ms * (1.0 - guard_of(t, fixed))
+
+
 def measure_and_choose(ranked: list[Candidate], budget_ms: float, measure: Measure, top: int,
-                       fallback: Callable[[], Candidate], say: Callable[[str], None], guard: float = 0.0,
-                       rounds: int = 3) -> Choice:
+                       fallback: Callable[[], Candidate], say: Callable[[str], None],
+                       guard: Optional[float] = None, rounds: int = 3) -> Choice:
     """Measure the first ``top`` candidates (front first) interleaved; the most accurate whose measured
-    percentile fits within budget x (1 - guard) wins: a later session on the same machine can measure
-    the tail a few percent slower, and QA re-measures. If none does, rescale predictions by
-    measured/predicted and try the most accurate of those that should then fit (the smallest subnet
-    last); if still none, the most accurate that fits the budget itself."""
+    percentile fits within budget x (1 - its guard) wins, so that QA's later measurement still fits
+    (guard: fixed, or None for each candidate's own from its measured spread). If none does, rescale
+    predictions by measured/predicted and try the most accurate of those that should then fit (the
+    smallest subnet last); if still none, the most accurate that fits the budget itself."""
     tried: list[Tried] = []
     ratio: Optional[float] = None
-    target = budget_ms * (1.0 - guard)
     for attempt in range(rounds):
         done = {t.cand.key for t in tried}
-        pool = [c for c in ranked if c.key not in done and (ratio is None or c.latency_ms * ratio <= target)]
+        expected = budget_ms * (1.0 - _expected_guard(tried, guard))
+        pool = [c for c in ranked if c.key not in done and (ratio is None or c.latency_ms * ratio <= expected)]
         if not pool:
             last = fallback()
             pool = [] if last.key in done else [last]
         if not pool:
             break
         tried += measure(pool[:top], len(tried))
-        fitting = [t for t in tried if t.measured["budget_stat_ms"] <= target]
+        fitting = [t for t in tried if keeps_guard(t, budget_ms, guard)]
         if fitting:
             note = "" if attempt == 0 else "the most accurate candidates measured over budget: fell back to faster ones"
             return Choice(_most_accurate(fitting), True, note, tried)
         ratio = measured_ratio(tried)
-        say(f"  none of {len(tried)} measured candidates fits {target:.4g} ms (the budget less its {100 * guard:g} % "
-            f"guard; measured = {ratio:.2f} x predicted): trying faster ones")
+        say(f"  none of {len(tried)} measured candidates fits the budget less its guard "
+            f"({_guards_text(tried, guard)}; measured = {ratio:.2f} x predicted): trying faster ones")
     within = [t for t in tried if t.measured["budget_stat_ms"] <= budget_ms]
     if within:
-        return Choice(_most_accurate(within), True,
-                      f"no candidate left the {100 * guard:g} % guard margin; this one fits the budget", tried)
+        return Choice(_most_accurate(within), True, "no candidate kept its guard; this one fits the budget", tried)
     return Choice(min(tried, key=lambda t: t.measured["budget_stat_ms"]), False,
                   "no candidate measured within the budget: this is the fastest one tried", tried)
+
+
+def _expected_guard(tried: list[Tried], fixed: Optional[float]) -> float:
+    """The guard an unmeasured candidate will likely need: --guard, else the median of those measured."""
+    if fixed is not None:
+        return fixed
+    return float(np.median([guard_of(t, None) for t in tried])) if tried else DEFAULT_GUARD
+
+
+def _guards_text(tried: list[Tried], fixed: Optional[float]) -> str:
+    if fixed is not None:
+        return f"--guard {100 * fixed:g} %"
+    g = [100 * guard_of(t, None) for t in tried]
+    return f"guards {min(g):.1f}-{max(g):.1f} % from their measured spread"
 
 
 def front_first(ranked: list[Candidate]) -> list[Candidate]:
@@ -176,14 +205,17 @@ def choose_and_export(ctx: SearchContext, table: LatencyTable, ranked: list[Cand
         choice = measure_and_choose(front_first(ranked), budget_ms, measurer, top, fallback, ctx.say,
                                     guard=ctx.settings.guard)
         pick, fits, note, ratio, hardware = choice.pick, choice.fits, choice.note, choice.ratio(), describe_hardware()
+        guard = {"share": round(guard_of(pick, ctx.settings.guard), 4),
+                 "rule": "--guard" if ctx.settings.guard is not None else "from the spread of its repeats"}
     else:
         within = [c for c in ranked if c.latency_ms <= budget_ms] or [fallback()]
         pick, fits, note, ratio, hardware = measurer.cut(within[:1], 0)[0], True, UNVERIFIED, None, table.hardware
+        guard = None
     export_dir = ctx.run_dir / "exports" / label
     t0 = time.perf_counter()
     manifest = export_pick(ctx.run, ctx.ds, subnet=pick.cand.subnet, cut=pick.cut, net=pick.net, export_dir=export_dir,
                            latency=latency_section(pick.measured, hardware, protocol.to_dict(), pick.cand.latency_ms,
-                                                   note),
+                                                   note, guard),
                            budget_ms=budget_ms, percentile=protocol.percentile, device=table.name)
     measurer.clock["score and export the pick"] = time.perf_counter() - t0
     ctx.say("  after the search: " + ", ".join(f"{k} {v:.1f} s" for k, v in measurer.clock.items()))
@@ -193,6 +225,7 @@ def choose_and_export(ctx: SearchContext, table: LatencyTable, ranked: list[Cand
     return {"device": table.name, "budget_ms": budget_ms, "percentile": protocol.percentile, "key": pick.cand.key,
             "val_acc": pick.cand.fitness, "predicted_ms": round(pick.cand.latency_ms, 5), "measured": pick.measured,
             "export_dir": str(export_dir), "fits": fits, "verified": pick.measured is not None, "note": note,
+            "guard": guard,
             "measured_over_predicted": None if ratio is None else round(ratio, 4),
             "test_acc": manifest["accuracy"]["test"]["top1"]}
 

@@ -21,7 +21,7 @@ def format_picks(rows: list[dict[str, Any]]) -> str:
                      f"{100 * (r['budget_ms'] - used) / r['budget_ms']:>6.1f}% {100 * used / r['budget_ms']:>5.1f}%  "
                      f"{r['key']}{'' if r['fits'] else '  (DOES NOT FIT)'}{'' if r['verified'] else '  (unverified)'}")
     pct = rows[0]["percentile"] if rows else 90.0
-    lines.append(f"meas ms = measured p{pct:g} (median over repeats); margin and use are against the budget "
+    lines.append(f"meas ms = measured p{pct:g} (pooled over fresh-process repeats); margin and use are against the budget "
                  "(predicted where unverified)")
     return "\n".join(lines)
 
@@ -38,7 +38,9 @@ def _slack(percent: Optional[float]) -> Optional[float]:
     return None if percent is None else percent / 100
 
 
-def _guard(percent: float) -> float:
+def _guard(percent: Optional[float]) -> Optional[float]:
+    if percent is None:
+        return None
     if not 0 <= percent < 50:
         raise UserError(f"--guard {percent:g} must be a percentage from 0 to below 50")
     return percent / 100
@@ -84,9 +86,10 @@ def add_search_parser(sub: Any) -> None:
     s.add_argument("--slack", type=float, default=None,
                    help="search up to this many percent over each budget (predicted) when picks are measured here "
                         "(default: the predictor's leave-one-out error, 5-25)")
-    s.add_argument("--guard", type=float, default=5.0,
-                   help="a pick measured here must fit this many percent under its budget (default 5): the same "
-                        "machine measured the tail 8-12 %% slower in a later session on a busy day")
+    s.add_argument("--guard", type=float, default=None,
+                   help="a pick measured here must fit this many percent under its budget, so that QA's later "
+                        "measurement still fits (default: each candidate's own, from how much its fresh-process "
+                        "repeats disagreed; 5 with one repeat)")
     s.add_argument("--drift-check", action="store_true",
                    help="before each budget, re-measure the table's calibration subnets on this machine (about 20 s) "
                         "and rescale the search limit by their time now/then (off by default: on a shared VM the "

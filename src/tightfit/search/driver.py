@@ -27,7 +27,7 @@ from tightfit.ondevice.files import append_jsonl, device_name, read_jsonl, write
 from tightfit.recipe import Recipe
 from tightfit.search.budgets import budget_label, parse_budget
 from tightfit.search.cache import AccuracyCache, CachedAccuracy, CachedLatency
-from tightfit.search.choose import SearchContext, choose_and_export, same_host
+from tightfit.search.choose import DEFAULT_GUARD, SearchContext, choose_and_export, same_host
 from tightfit.search.evolution import Candidate, fastest_check, pareto_front, regularized_evolution
 from tightfit.search.fitness import RunAccuracy
 from tightfit.search.settings import SearchSettings
@@ -182,7 +182,7 @@ def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPr
         t0 = time.perf_counter()
         drift = _drift(ctx, table, predictor) if verifiable and ctx.settings.drift_check else None
         # picks measured here must fit budget x (1 - guard): search around that, not the budget itself
-        base = b * (1 - (ctx.settings.guard if verifiable else 0.0)) * (1 + slack)
+        base = b * (1 - (expected_guard(ctx.settings) if verifiable else 0.0)) * (1 + slack)
         limit = drifted_limit(base, drift)
         if drift is not None:
             say(f"  {budget_label(b)}: this machine now runs the table's calibration subnets at {drift:.2f} x their "
@@ -209,6 +209,11 @@ def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPr
         picks.append(row)
         merge_picks(out / "picks.json", picks)
     return picks
+
+
+def expected_guard(settings: SearchSettings) -> float:
+    """The guard to centre the search on before anything is measured: --guard, else the usual one."""
+    return DEFAULT_GUARD if settings.guard is None else settings.guard
 
 
 def _drift(ctx: SearchContext, table: LatencyTable, predictor: LatencyPredictor) -> Optional[float]:

@@ -21,7 +21,8 @@ class SearchSettings:
     drift_check: bool = False     # re-measure the table's calibration subnets before each budget (this host only);
     #                               off by default: on the benchmark VM its reading did not predict the candidates'
     #                               measured/predicted ratio (docs/measurements.md), the corrected second search does
-    guard: float = 0.05           # a measured pick must fit budget x (1 - guard): later sessions measure the tail slower
+    guard: Optional[float] = None # a measured pick must fit budget x (1 - guard) so QA's later measurement fits too;
+    #                               None: each candidate's own guard from the spread of its repeats
 
     def evolution(self) -> EvolutionSettings:
         return EvolutionSettings(population=self.population, sample_size=min(self.sample_size, self.population),
