@@ -62,9 +62,9 @@ batch_size = 32
 
 
 def test_every_pipeline_command_is_registered_in_pipeline_order():
-    # The product contract (docs/contract.md, "The user's day") names these commands.
+    # The product contract (docs/contract.md, "The user's day") names these commands (reproduce: the repeatability check of its QA step).
     import argparse
     from tightfit.cli import build_parser
     subs = next(a for a in build_parser()._actions if isinstance(a, argparse._SubParsersAction))
-    assert list(subs.choices) == ["train", "probe", "profile", "check-latency", "search", "cut", "verify",
+    assert list(subs.choices) == ["train", "probe", "profile", "check-latency", "search", "cut", "verify", "reproduce",
                                   "report", "demo"]

@@ -166,3 +166,17 @@ def test_picks_table_cells_follow_each_pick_and_verdict(tmp_path):
     rows = _picks_table(data).split("<tr>")[2:]
     cells = [[c.split("</td>")[0] for c in r.split("<td>")[1:]] for r in rows]
     assert [(c[2], c[7], c[8]) for c in cells] == [("a", "yes", "MISS 1.2 ms"), ("b", "NO", "PASS 0.8 ms")]
+
+
+def test_a_verdict_at_the_run_root_fills_the_qa_column(tmp_path):
+    # The demo writes RUN/verdict.json; the report must read it as it reads RUN/exports/**/verdict.json.
+    import os
+    from tightfit.report.data import load_run
+    run = fake_run(tmp_path / "run")
+    folder = str((run / "exports" / "host-0.3ms").resolve())
+    (run / "verdict.json").write_text(json.dumps({"models": [{"export_dir": folder, "pass": False,
+                                                              "measured": {"budget_stat_ms": 0.31}}]}))
+    os.utime(run / "verdict.json", (1, 1))    # older than the exports' verdict: both are read, each row kept
+    data = load_run(run)
+    assert data.qa[folder]["pass"] is False
+    assert data.qa[str((run / "exports" / "pi4-2.4ms").resolve())]["pass"] is True

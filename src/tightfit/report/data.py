@@ -81,7 +81,8 @@ def _read_exports(data: RunData) -> None:
         man = _read_json(Path(folder) / "manifest.json", data.notes)
         if isinstance(man, dict):
             data.manifests[folder] = man
-    for path in sorted(data.run_dir.glob("exports/**/verdict.json"), key=lambda p: p.stat().st_mtime):
+    verdicts = [*data.run_dir.glob("verdict.json"), *data.run_dir.glob("exports/**/verdict.json")]
+    for path in sorted(verdicts, key=lambda p: p.stat().st_mtime):  # the latest verdict of each export wins
         verdict = _read_json(path, data.notes)
         for row in (verdict or {}).get("models", []) if isinstance(verdict, dict) else []:
             data.qa[str(Path(row.get("export_dir", "")).resolve())] = row
