@@ -1,4 +1,5 @@
 """The command line: help texts, exit codes, one-line errors."""
+import json
 import subprocess
 import sys
 
@@ -59,6 +60,19 @@ batch_size = 32
     r = run("cut", str(tmp_path / "run"), "--subnet", "smallest", "--subnet", "2:5,3:3")
     assert r.returncode == 0, r.stderr
     assert "smallest" in r.stdout and (tmp_path / "run" / "exports" / "smallest" / "model.onnx").is_file()
+    # every export gets a manifest (product contract, "Export"): verify reads it; no budget was claimed, so it
+    # reports the figures and judges nothing; a cut with --budget is judged like a search pick
+    folder = tmp_path / "run" / "exports" / "smallest"
+    manifest = json.loads((folder / "manifest.json").read_text())
+    assert manifest["budget"]["ms"] is None and manifest["output"]["classes"] and manifest["input"]["mean"]
+    assert manifest["latency"]["p90_ms"] > 0 and (folder / "state_dict.pt").is_file()
+    r = run("verify", str(folder), "--quick")
+    assert r.returncode == 0 and "no budget" in r.stdout, r.stderr
+    r = run("cut", str(tmp_path / "run"), "--subnet", "smallest", "--budget", "0.0001ms", "--out", str(tmp_path / "b"))
+    assert r.returncode == 0, r.stderr
+    assert json.loads((tmp_path / "b" / "smallest" / "manifest.json").read_text())["budget"]["ms"] == 0.0001
+    r = run("verify", str(tmp_path / "b" / "smallest"), "--quick")
+    assert r.returncode == 1 and "MISS" in r.stdout
 
 
 def test_every_pipeline_command_is_registered_in_pipeline_order():

@@ -308,3 +308,9 @@ def test_profile_host_end_to_end(run_dir, tmp_path):
                         recipe.data.image_size)
     assert now is not None and 0.2 < now < 5
     assert measure_drift(None, pred.table, [], recipe.data.channels, recipe.data.image_size) is None
+    # another machine's table: check-latency would compare it with this machine's timings; refused, one line
+    foreign = json.loads(table_path.read_text())
+    foreign["hardware"]["hostname"] = "some-board"
+    (tmp_path / "foreign.json").write_text(json.dumps(foreign))
+    with pytest.raises(UserError, match="can only check a table of this machine"):
+        check_predictor(run_dir, tmp_path / "foreign.json", n=5, protocol=quick, progress=False)

@@ -115,3 +115,19 @@ def test_tightfit_verify_cli_runs_with_torch_unimportable(tmp_path):
             assert proc.returncode == 0 and "usage: tightfit" in proc.stdout
         else:
             assert proc.returncode == 2 and proc.stderr.startswith("error: export folder") and "not found" in proc.stderr
+
+
+def test_progress_in_a_log_is_a_plain_line_every_few_seconds():
+    # A redirected stream (CI log, `> log`) gets newline-terminated lines, no carriage-return redraws,
+    # and a 160-step loop writes a handful of lines, not one frame per step (tqdm's own output otherwise).
+    import io
+    from tightfit.progress import bar
+    log = io.StringIO()
+    b = bar(total=160, desc="supernet", unit="step", stream=log)
+    for _ in range(160):
+        b.update(1)
+    b.close()
+    text = log.getvalue()
+    assert "\r" not in text and text.endswith("\n")
+    lines = text.splitlines()
+    assert 1 <= len(lines) <= 3 and "160/160" in lines[-1]

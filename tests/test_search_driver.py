@@ -101,12 +101,14 @@ def test_search_verify_export_end_to_end(tiny_run, monkeypatch, capsys):
     argv = ["search", str(tiny_run), "--table", "here.json", "--table", "away.json", "--budget", budget,
             "--population", "6", "--evaluations", "14", "--top", "2", "--quiet"]
     args = parser.parse_args(argv)
-    assert args.func(args) == 0
+    code = args.func(args)
     out = capsys.readouterr().out
     assert "this-host" in out and "far-board" in out and "unverified" in out
     picks = json.loads((tiny_run / "search" / "picks.json").read_text())
     assert [p["device"] for p in picks] == ["this-host", "far-board"]
     mine, theirs = picks
+    # exit codes (search --help): 1 when a pick does not fit, else 3: the far board's pick is unverified
+    assert code == (3 if mine["fits"] and theirs["fits"] else 1)
     assert mine["verified"] and mine["measured"]["repeat_spread"] is not None  # >= 2 fresh-process repeats
     assert mine["fits"] == (mine["measured"]["budget_stat_ms"] <= mine["budget_ms"])
     assert not theirs["verified"] and theirs["measured"] is None and "tightfit verify" in theirs["note"]
@@ -137,11 +139,23 @@ def test_search_verify_export_end_to_end(tiny_run, monkeypatch, capsys):
     assert not (tiny_run / "search" / "staging").exists()
     cache = (tiny_run / "search" / "accuracy_cache.jsonl").read_text().splitlines()
 
-    # Re-run: every accuracy comes from the cache, the logs are replaced rather than doubled.
-    args = parser.parse_args(argv)
-    assert args.func(args) == 0
+    # Re-run: every accuracy comes from the cache, the logs are replaced rather than doubled; --json prints
+    # the rows of picks.json on stdout.
+    args = parser.parse_args(argv + ["--json"])
+    assert args.func(args) in (1, 3)
+    assert [r["key"] for r in json.loads(capsys.readouterr().out)] == [p["key"] for p in
+                                                                       json.loads((tiny_run / "search" / "picks.json").read_text())]
     assert (tiny_run / "search" / "accuracy_cache.jsonl").read_text().splitlines() == cache
     assert len((tiny_run / "search" / "candidates.jsonl").read_text().splitlines()) == len(rows)
+
+
+def test_search_exit_codes_tell_ci_what_happened():
+    from tightfit.search.commands import exit_code
+    fits = {"fits": True, "verified": True}
+    assert exit_code([fits, fits]) == 0
+    assert exit_code([fits, {"fits": True, "verified": False}]) == 3
+    assert exit_code([fits, {"fits": False, "verified": True}]) == 1
+    assert exit_code([{"fits": False, "verified": False}, {"fits": True, "verified": False}]) == 1
 
 
 def test_corrected_limit_only_for_a_verified_pick_far_under_budget():

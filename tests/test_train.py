@@ -95,3 +95,19 @@ def test_metrics_and_learning(tmp_path):
     steps = [r for r in records if "loss_largest" in r]
     assert steps and all(r["images_per_s"] > 0 for r in steps)
     assert max(r["step"] for r in records) == 5 * 14   # 459 training images / batch 32: 14 full steps an epoch
+
+
+def test_a_half_trained_run_is_loaded_with_a_warning(tiny_run, tmp_path, capsys):
+    # Contract ("Errors and safety"): nothing is used silently; an interrupted run says so when loaded.
+    import shutil
+    import torch
+    from tightfit.train.rundir import load_trained
+    run = tmp_path / "run"
+    shutil.copytree(tiny_run, run, ignore=shutil.ignore_patterns("search", "exports"))
+    assert load_trained(run).complete and "warning" not in capsys.readouterr().err
+    state = torch.load(run / "checkpoint.pt", weights_only=False)
+    state["complete"] = False
+    torch.save(state, run / "checkpoint.pt")
+    assert not load_trained(run).complete
+    err = capsys.readouterr().err
+    assert err.startswith("warning: training in") and "did not finish" in err and "tightfit train" in err

@@ -9,7 +9,8 @@ import time
 from datetime import datetime
 from pathlib import Path
 
-from tightfit.export.cut import cut_one, format_table, measure_latency
+from tightfit.export.by_hand import export_cuts
+from tightfit.export.cut import format_table
 from tightfit.data.dataset import load_dataset
 from tightfit.errors import UserError
 from tightfit.recipe import load_recipe
@@ -51,9 +52,8 @@ def run_demo(run_dir: str | Path | None = None, recipe_path: str | Path | None =
     run = load_trained(run_dir)
 
     _stage("2. cut smallest / middle / largest (BN recalibration, static net, ONNX)", t0)
-    results = [cut_one(run, ds, name, getattr(recipe.space, name)(), run_dir / "exports" / "reference")[0]
-               for name in ("smallest", "middle", "largest")]
-    measure_latency(results)
+    results = export_cuts(run, ds, [(name, getattr(recipe.space, name)()) for name in ("smallest", "middle", "largest")],
+                          run_dir / "exports" / "reference")
     print(format_table(results))
 
     _stage("3. profile this machine (probe bundle + on-device runner)", t0)

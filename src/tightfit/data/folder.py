@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 from PIL import Image, ImageOps
-from tqdm import tqdm
+from tightfit.progress import bar
 
 from tightfit.errors import UserError
 
@@ -131,7 +131,7 @@ def load_image_folder(root: str, image_size: int, channels: int
     y = np.empty(len(files), dtype=np.int64)
     skipped: list[str] = []
     count = 0
-    for label, path in tqdm(files, desc="loading images", unit="img",
+    for label, path in bar(files, desc="loading images", unit="img",
                             disable=len(files) <= PROGRESS_THRESHOLD):
         arr = _load_one(path, image_size, _MODES[channels])
         if arr is None:

@@ -8,16 +8,17 @@ from __future__ import annotations
 import hashlib
 from dataclasses import dataclass
 from pathlib import Path
-
+from typing import Optional
 
 from tightfit.ondevice.files import write_bytes
-from tightfit.data.dataset import Dataset, calibration_batches, eval_batches, load_dataset
-from tightfit.errors import UserError
+from tightfit.data.dataset import Dataset, calibration_batches, eval_batches
 from tightfit.export.onnx import export_onnx, max_parity_error
 from tightfit.model.extract import StaticNet, count_macs, count_params, extract_subnet
 from tightfit.model.recalibrate import accuracy, preserved_bn_stats, recalibrate_bn
-from tightfit.train.rundir import TrainedRun, load_trained
+from tightfit.train.rundir import TrainedRun
 from tightfit.model.space import Subnet
+from tightfit.ondevice.repeats import measure_repeated
+from tightfit.ondevice.timing import Protocol
 
 PARITY_TOL = 1e-4
 
@@ -69,32 +70,13 @@ def cut_one(run: TrainedRun, ds: Dataset, name: str, subnet: Subnet, out_dir: Pa
     return result, net
 
 
-def measure_latency(results: list[CutResult], repeats: int = 1, timed_seconds: float = 1.0) -> None:
-    """Batch-1 ONNX Runtime latency, 1 thread, all models interleaved (tightfit.ondevice protocol)."""
-    from tightfit.ondevice.repeats import measure_repeated
-    from tightfit.ondevice.timing import Protocol
-    proto = Protocol(repeats=repeats, timed_seconds=timed_seconds)
-    figures = measure_repeated([str(r.onnx_path) for r in results], proto)
+def measure_latency(results: list[CutResult], protocol: Optional[Protocol] = None) -> dict[str, dict]:
+    """Batch-1 ONNX Runtime latency of every cut, interleaved, under the on-device protocol (its
+    defaults unless given); returns the figures by ONNX path and fills p50/p90 in."""
+    figures = measure_repeated([str(r.onnx_path) for r in results], protocol or Protocol())
     for r in results:
         r.p50_ms, r.p90_ms = figures[str(r.onnx_path)]["p50_ms"], figures[str(r.onnx_path)]["p90_ms"]
-
-
-def cut_subnets(run_dir: str | Path, specs: list[str], out: str | Path | None = None) -> list[CutResult]:
-    run = load_trained(run_dir)
-    picked = [resolve_subnet(run, spec) for spec in specs]  # a bad key fails before anything is written
-    ds = load_dataset(run.recipe.data, run.recipe.seed)
-    if ds.class_names != run.class_names:
-        raise UserError(f"the data the recipe points at has classes {ds.class_names}, the run was trained on {run.class_names}")
-    out_dir = Path(out) if out else Path(run_dir) / "exports"
-    try:
-        out_dir.mkdir(parents=True, exist_ok=True)
-    except OSError as e:
-        raise UserError(f"cannot create the export folder {out_dir} ({e.strerror}); choose another --out") from None
-    results = []
-    for name, subnet in picked:
-        results.append(cut_one(run, ds, name, subnet, out_dir)[0])
-    measure_latency(results)
-    return results
+    return figures
 
 
 def format_table(rows: list[CutResult]) -> str:

@@ -56,7 +56,8 @@ def software_versions() -> dict[str, str]:
 
 
 def latency_section(summary: Optional[dict[str, Any]], hardware: dict[str, Any], protocol: dict[str, Any],
-                    predicted_ms: float, note: str = "", guard: Optional[dict[str, Any]] = None) -> dict[str, Any]:
+                    predicted_ms: Optional[float], note: str = "", guard: Optional[dict[str, Any]] = None
+                    ) -> dict[str, Any]:
     """Measured figures (pooled over repeats) with how and where, and the guard the pick was chosen
     with; None figures when not measured."""
     out: dict[str, Any] = {"hardware": hardware, "protocol": protocol, "guard": guard}
@@ -67,7 +68,7 @@ def latency_section(summary: Optional[dict[str, Any]], hardware: dict[str, Any],
         out["note"] = note or "not measured"
     elif note:
         out["note"] = f"{out['note']}; {note}" if out.get("note") not in (None, "", "ok") else note
-    out["predicted_ms"] = round(predicted_ms, 4)
+    out["predicted_ms"] = None if predicted_ms is None else round(predicted_ms, 4)
     out["measured"] = summary is not None
     return out
 
@@ -75,9 +76,10 @@ def latency_section(summary: Optional[dict[str, Any]], hardware: dict[str, Any],
 def build_manifest(*, space: SpaceSpec, subnet: Subnet, params: int, macs: int, onnx_data: bytes,
                    channels: int, image_size: int, class_names: tuple[str, ...], mean: tuple[float, ...],
                    std: tuple[float, ...], validation: Accuracy, test: Accuracy, latency: dict[str, Any],
-                   budget_ms: float, percentile: float, device: str, recipe_name: str,
+                   budget_ms: Optional[float], percentile: float, device: Optional[str], recipe_name: str,
                    recipe_hash: str) -> dict[str, Any]:
-    """The manifest dict (see the project contract for the fields)."""
+    """The manifest dict (see the project contract for the fields); budget.ms is None for a model cut
+    by hand without a budget (verify then reports its figures and judges nothing)."""
     return {
         "format": MANIFEST_FORMAT, "version": MANIFEST_VERSION, "model_file": "model.onnx",
         "sha256": sha256_hex(onnx_data),
@@ -91,7 +93,8 @@ def build_manifest(*, space: SpaceSpec, subnet: Subnet, params: int, macs: int, 
         "output": {"name": "logits", "classes": list(class_names)},
         "accuracy": {"validation": validation.to_dict(), "test": test.to_dict()},
         "latency": latency,
-        "budget": {"ms": float(budget_ms), "percentile": float(percentile), "device": device},
+        "budget": {"ms": None if budget_ms is None else float(budget_ms), "percentile": float(percentile),
+                   "device": device},
         "software": software_versions(),
         "recipe": {"name": recipe_name, "hash": recipe_hash},
         "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
@@ -125,7 +128,8 @@ def shipped_accuracy(onnx_data: bytes, ds: Dataset, split: str, batch_size: int 
 
 
 def export_pick(run: TrainedRun, ds: Dataset, *, subnet: Subnet, cut: CutResult, net: nn.Module, export_dir: str | Path,
-                latency: dict[str, Any], budget_ms: float, percentile: float, device: str) -> dict[str, Any]:
+                latency: dict[str, Any], budget_ms: Optional[float], percentile: float,
+                device: Optional[str]) -> dict[str, Any]:
     """Score the exported file on the whole validation and test splits (for the manifest only:
     nothing is chosen on them here), then write the export folder.
     ``cut`` is the candidate's cut (its ONNX file)."""

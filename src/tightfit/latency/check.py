@@ -19,6 +19,7 @@ from tightfit.latency.predict import kendall_tau, load_predictor
 from tightfit.latency.probe import load_source
 from tightfit.model.space import SpaceSpec, Subnet
 from tightfit.ondevice.files import write_json
+from tightfit.ondevice.hardware import describe_hardware, same_host
 from tightfit.ondevice.repeats import measure_repeated
 from tightfit.ondevice.timing import Protocol, stderr_progress
 
@@ -56,6 +57,11 @@ def check_predictor(run_dir, table_path, n: int = 30, seed: int = 1, protocol=No
     chs, size = recipe.data.channels, recipe.data.image_size
     predictors = {t: load_predictor(recipe, table_path, target=t) for t in ("p50_ms", "budget_stat_ms")}
     table = predictors["p50_ms"].table
+    if not same_host(table.hardware):
+        there, here = table.hardware, describe_hardware()
+        raise UserError(f"{table_path} was measured on {there.get('hostname')!r} ({there.get('cpu_model')}), this is "
+                        f"{here.get('hostname')!r} ({here.get('cpu_model')}): check-latency measures here, so it can only "
+                        "check a table of this machine; run it on that device")
     protocol = protocol or Protocol.from_dict(table.protocol)
     refs = predictors["p50_ms"].calibration_keys
     subnets = held_out_subnets(recipe.space, n, set(refs), seed)

@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import Any, Optional, Sequence
 
 import numpy as np
-from tqdm import tqdm
+from tightfit.progress import bar
 
 from tightfit.export.onnx import onnx_bytes
 from tightfit.latency.probe import single_thread
@@ -36,7 +36,7 @@ def write_subnet_onnx(supernet: Supernet, subnets: Sequence[Subnet], folder: Pat
     """Each subnet extracted and exported to folder/<i>.onnx (weights do not change latency)."""
     paths = []
     with single_thread():
-        for i, s in enumerate(tqdm(subnets, desc="export", unit="model", disable=not progress)):
+        for i, s in enumerate(bar(subnets, desc="export", unit="model", disable=not progress)):
             paths.append(str(Path(folder) / f"{i}.onnx"))
             Path(paths[-1]).write_bytes(onnx_bytes(extract_subnet(supernet, s), in_channels, image_size))
     return paths

@@ -156,7 +156,7 @@ def _zip_folder(folder: Path, dest: Path) -> Path:
 def write_bundle(source: str | Path, out: str | Path | None = None, n_subnets: int = 8, zip: bool = False,
                  seed: int = 0, progress: bool = True) -> Path:
     """Export every layer probe and n_subnets calibration subnets; returns the folder (or the .zip)."""
-    from tqdm import tqdm
+    from tightfit.progress import bar
     if n_subnets < 0:
         raise UserError(f"--subnets {n_subnets} must be >= 0 (2 or more lets the predictor calibrate)")
     recipe, supernet = load_source(source)
@@ -174,7 +174,7 @@ def write_bundle(source: str | Path, out: str | Path | None = None, n_subnets: i
         entries = []
         todo = list(_bundle_entries(recipe, supernet, n_subnets, seed))
         with single_thread():
-            for eid, kind, build, chs, size, meta in tqdm(todo, desc="probe export", unit="model",
+            for eid, kind, build, chs, size, meta in bar(todo, desc="probe export", unit="model",
                                                           disable=not progress):
                 write_bytes(tmp / "onnx" / f"{eid}.onnx", onnx_bytes(build(), chs, size))
                 entries.append({"id": eid, "kind": kind, "file": f"onnx/{eid}.onnx", "meta": meta})

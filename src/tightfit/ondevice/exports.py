@@ -62,11 +62,13 @@ def read_manifest(folder: Path) -> dict:
         missing = [k for k in keys if k not in (m.get(section) or {})]
         if not isinstance(m.get(section), dict) or missing:
             raise VerifyError(f"{path} lacks {section}.{(missing or ['*'])[0]}; restore the manifest from the export")
-    ms, pct = m["budget"]["ms"], m["budget"]["percentile"]
-    if not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in (ms, pct)) \
-            or ms <= 0 or not 0 < pct <= 100:
+    ms, pct = m["budget"]["ms"], m["budget"]["percentile"]   # ms None: cut by hand, no budget claimed
+
+    def number(v: object) -> bool:
+        return isinstance(v, (int, float)) and not isinstance(v, bool)
+    if not number(pct) or not 0 < pct <= 100 or not (ms is None or (number(ms) and ms > 0)):
         raise VerifyError(f"{path}: budget.ms {ms!r} / budget.percentile {pct!r} must be positive numbers "
-                          "(percentile <= 100)")
+                          "(percentile <= 100; ms may be null when no budget is claimed)")
     return m
 
 

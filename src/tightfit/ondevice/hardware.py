@@ -72,3 +72,9 @@ def describe_hardware() -> dict[str, Any]:
         "ort_providers": list(ort.get_available_providers()),
         "hostname": socket.gethostname(),
     }
+
+
+def same_host(table_hardware: dict[str, Any]) -> bool:
+    """Direct measurement only means something on the machine a table or manifest describes."""
+    here = describe_hardware()
+    return all(table_hardware.get(k) == here.get(k) for k in ("cpu_model", "logical_cores", "hostname"))

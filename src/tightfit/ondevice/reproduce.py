@@ -57,10 +57,11 @@ def summarize_runs(exports: list[Export], verdicts: list[dict[str, Any] | None],
                 figures.append(None)
                 continue
             figures.append(float(m["measured"]["budget_stat_ms"]))
-            passes += bool(m["pass"])
+            passes += m["pass"] is not False
         seen = [f for f in figures if f is not None]
         within = sum(ref is not None and abs(f / ref - 1) <= tolerance for f in seen)
-        rows.append({"name": e.name, "export_dir": str(e.folder), "budget_ms": float(e.manifest["budget"]["ms"]),
+        budget = e.manifest["budget"]["ms"]
+        rows.append({"name": e.name, "export_dir": str(e.folder), "budget_ms": None if budget is None else float(budget),
                      "percentile": float(e.manifest["budget"]["percentile"]), "export_figure_ms": ref,
                      "runs": len(verdicts), "measured": len(seen), "passed": passes, "within_tolerance": within,
                      "tolerance": tolerance, "figures_ms": figures,
@@ -74,11 +75,11 @@ def format_rows(rows: list[dict]) -> str:
     for r in rows:
         ref = "-" if r["export_figure_ms"] is None else f"{r['export_figure_ms']:.4f}"
         span = "-" if r["min_ms"] is None else f"{r['min_ms']:.4f}-{r['max_ms']:.4f}"
-        lines.append(f"{r['name'][:24]:<24} {r['budget_ms']:>10.4g} {ref:>8} {span:>17} "
+        budget = "none" if r["budget_ms"] is None else format(r["budget_ms"], ".4g")
+        lines.append(f"{r['name'][:24]:<24} {budget:>10} {ref:>8} {span:>17} "
                      f"{r['passed']:>3}/{r['runs']:<3} {r['within_tolerance']:>3}/{r['runs']:<3}")
-    tol = rows[0]["tolerance"] if rows else 0.1
-    lines.append(f"(export: the manifest's figure at export; within: runs within +/-{tol:.0%} of it; "
-                 f"p{rows[0]['percentile']:g} if rows else '')")
+    tol, pct = (rows[0]["tolerance"], rows[0]["percentile"]) if rows else (0.1, 90.0)
+    lines.append(f"(export: the manifest's p{pct:g} at export; within: runs within +/-{100 * tol:.0f} % of it)")
     return "\n".join(lines)
 
 

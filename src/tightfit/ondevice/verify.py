@@ -5,7 +5,8 @@ have the SHA-256 the manifest records, and ONNX Runtime must load it. All models
 are then timed again, interleaved, under the protocol the manifest records, and
 each is judged against its budget. A JSON verdict is written atomically.
 
-Exit codes: 0 every model meets its budget, 1 any misses (or measuring fails),
+Exit codes: 0 every model meets its budget (a model cut by hand without a budget
+is measured and reported, never judged), 1 any misses (or measuring fails),
 2 bad input (one `error:` line, nothing written).
 """
 from __future__ import annotations
@@ -68,7 +69,7 @@ def measure(exports: list[Export], protocols: list[Protocol]) -> dict[Path, dict
 
 def judge(e: Export, s: dict, protocol: Protocol, warnings: list[str], threads: int | None) -> dict:
     """One model's verdict record."""
-    budget = float(e.manifest["budget"]["ms"])
+    budget = None if e.manifest["budget"]["ms"] is None else float(e.manifest["budget"]["ms"])
     keep = ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "budget_stat_ms", "cv", "iqr_over_median",
             "repeat_figures_ms", "repeat_spread", "guard", "states", "stable", "note", "runs", "repeats")
     lat = e.manifest["latency"]
@@ -79,8 +80,8 @@ def judge(e: Export, s: dict, protocol: Protocol, warnings: list[str], threads: 
         "budget_device": e.manifest["budget"].get("device"),
         "measured": {k: s[k] for k in keep if k in s},
         "at_export": {k: lat[k] for k in ("p50_ms", "p90_ms", "p99_ms") if k in lat},
-        "margin": (budget - s["budget_stat_ms"]) / budget,
-        "pass": fits_budget(s, budget), "noisy": not s["stable"],
+        "margin": None if budget is None else (budget - s["budget_stat_ms"]) / budget,
+        "pass": None if budget is None else fits_budget(s, budget), "noisy": not s["stable"],
         "warnings": warnings, "threads_override": threads, "protocol": protocol.to_dict(),
     }
 
@@ -91,11 +92,12 @@ def format_table(rows: list[dict]) -> str:
     lines = [head, "-" * len(head)]
     for r in rows:
         m, spread = r["measured"], r["measured"].get("repeat_spread")
-        budget = f"{r['budget_ms']:.3f} (p{r['percentile']:g})"
-        verdict = ("PASS" if r["pass"] else "MISS") + (" noisy" if r["noisy"] else "")
+        budget = "none" if r["budget_ms"] is None else f"{r['budget_ms']:.3f} (p{r['percentile']:g})"
+        verdict = {True: "PASS", False: "MISS", None: "no budget"}[r["pass"]] + (" noisy" if r["noisy"] else "")
+        margin = "-" if r["margin"] is None else format(r["margin"], "+.1%")
         lines.append(f"{r['name'][:20]:<20} {budget:>13} {m['p50_ms']:>8.3f} {m['p90_ms']:>8.3f} "
                      f"{m['p99_ms']:>8.3f} {m['iqr_over_median']:>8.1%} "
-                     f"{'-' if spread is None else format(spread, '.1%'):>8} {r['margin']:>+8.1%}  {verdict}")
+                     f"{'-' if spread is None else format(spread, '.1%'):>8} {margin:>8}  {verdict}")
     lines += [f"  {r['name']}: {'noisy: ' if r['noisy'] else ''}{r['measured']['note']}" for r in rows]
     return "\n".join(lines)
 
@@ -147,7 +149,7 @@ def run(args: argparse.Namespace) -> int:
     print(format_table(rows))
     if accuracy:
         print("\n" + format_accuracy(rows))
-    verdict = {"format": VERDICT_FORMAT, "version": 1, "pass": all(r["pass"] for r in rows),
+    verdict = {"format": VERDICT_FORMAT, "version": 1, "pass": all(r["pass"] is not False for r in rows),
                "quick": bool(args.quick), "hardware": hardware,
                "created": datetime.now(timezone.utc).isoformat(timespec="seconds"), "models": rows}
     try:

@@ -22,7 +22,7 @@ from tightfit.ondevice.files import device_name
 from tightfit.ondevice.hardware import describe_hardware
 from tightfit.ondevice.repeats import measure_repeated
 from tightfit.ondevice.timing import Protocol
-from tightfit.search.budgets import budget_label
+from tightfit.budgets import budget_label
 from tightfit.search.cache import CachedAccuracy, CachedLatency
 from tightfit.search.evolution import Candidate, pareto_front
 from tightfit.search.fitness import RunAccuracy
@@ -43,12 +43,6 @@ class SearchContext:
 
 
 UNVERIFIED = "unverified: measure on the device with tightfit verify"
-
-
-def same_host(table_hardware: dict[str, Any]) -> bool:
-    """Direct measurement only means something on the machine the table describes."""
-    here = describe_hardware()
-    return all(table_hardware.get(k) == here.get(k) for k in ("cpu_model", "logical_cores", "hostname"))
 
 
 def verification_protocol(table_protocol: dict[str, Any]) -> Protocol:

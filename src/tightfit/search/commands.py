@@ -1,11 +1,13 @@
 """Command line of `tightfit search` and its table of picks (the search itself is tightfit.search.driver)."""
 from __future__ import annotations
 
+import json
+import sys
 from pathlib import Path
 from typing import Any, Optional
 
 from tightfit.errors import UserError
-from tightfit.search.budgets import parse_budget
+from tightfit.budgets import parse_budget
 from tightfit.search.settings import SearchSettings
 
 
@@ -58,10 +60,23 @@ def _cmd_search(args: Any) -> int:
                               backend=args.eval_backend, slack=_slack(args.slack),
                               drift_check=args.drift_check, guard=_guard(args.guard))
     from tightfit.search.driver import run_search  # torch: only once the arguments are known good
-    rows = run_search(args.run, args.table, args.budget, settings, progress=not args.quiet)
-    print(format_picks(rows))
-    print(f"picks: {Path(args.run) / 'search' / 'picks.json'}")
-    return 0
+    quiet = args.quiet or args.json
+    rows = run_search(args.run, args.table, args.budget, settings, progress=not quiet,
+                      say=(lambda line: print(line, file=sys.stderr)) if args.json else print)
+    if args.json:
+        print(json.dumps(rows, indent=1))
+    else:
+        print(format_picks(rows))
+        print(f"picks: {Path(args.run) / 'search' / 'picks.json'}")
+    return exit_code(rows)
+
+
+def exit_code(rows: list[dict]) -> int:
+    """0 every pick measured here fits; 1 a pick does not fit its budget; 3 every pick fits, but some were
+    chosen for another device by prediction alone (verify them there)."""
+    if not all(r["fits"] for r in rows):
+        return 1
+    return 0 if all(r["verified"] for r in rows) else 3
 
 
 def add_search_parser(sub: Any) -> None:
@@ -70,9 +85,12 @@ def add_search_parser(sub: Any) -> None:
                                    "space under the table's predicted latency, fitness = validation accuracy after "
                                    "BN recalibration (cached in RUN/search). The top candidates are exported and "
                                    "measured directly when the table is for this machine; the most accurate whose "
-                                   "measured percentile fits the budget less --guard is exported to "
+                                   "measured percentile fits the budget less its guard is exported to "
                                    "RUN/exports/DEVICE-BUDGETms. A pick that uses under 85 % of its budget "
-                                   "triggers one shorter search with the limit rescaled by measured/predicted.")
+                                   "triggers one shorter search with the limit rescaled by measured/predicted. "
+                                   "Exit codes: 0 every pick was measured here and fits; 1 a pick does not fit; "
+                                   "3 every pick fits, some only by prediction (another device: verify there); "
+                                   "2 bad input.")
     s.add_argument("run", help="run directory written by 'tightfit train'")
     s.add_argument("--table", action="append", required=True, help="latency table JSON; repeatable (one per device)")
     s.add_argument("--budget", action="append", required=True, help="latency budget such as 0.3ms, 300us; repeatable")
@@ -98,4 +116,7 @@ def add_search_parser(sub: Any) -> None:
                    help="run the validation pass in ONNX Runtime (default, faster) or torch")
     s.add_argument("--threads", type=int, default=None, help="torch/ORT CPU threads for evaluation (default: all cores)")
     s.add_argument("--quiet", action="store_true", help="no progress bar")
+    s.add_argument("--json", action="store_true",
+                   help="print the picks as JSON on stdout (the rows of RUN/search/picks.json); progress and "
+                        "notes go to stderr")
     s.set_defaults(func=_cmd_search)

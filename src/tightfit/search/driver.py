@@ -15,7 +15,6 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any, Callable, Optional
 
-from tqdm import tqdm
 
 from tightfit.data.dataset import load_dataset
 from tightfit.errors import UserError
@@ -25,9 +24,11 @@ from tightfit.latency.table import LatencyTable
 from tightfit.model.space import SpaceSpec
 from tightfit.ondevice.files import append_jsonl, device_name, read_jsonl, write_json, write_text
 from tightfit.recipe import Recipe
-from tightfit.search.budgets import budget_label, parse_budget
+from tightfit.budgets import budget_label, parse_budget
+from tightfit.progress import bar
 from tightfit.search.cache import AccuracyCache, CachedAccuracy, CachedLatency
-from tightfit.search.choose import DEFAULT_GUARD, SearchContext, choose_and_export, same_host
+from tightfit.ondevice.hardware import same_host
+from tightfit.search.choose import DEFAULT_GUARD, SearchContext, choose_and_export
 from tightfit.search.evolution import Candidate, fastest_check, pareto_front, regularized_evolution
 from tightfit.search.fitness import RunAccuracy
 from tightfit.search.settings import SearchSettings
@@ -89,10 +90,10 @@ def search_budget(space: SpaceSpec, fitness: CachedAccuracy, latency: CachedLate
                         fitness.fresh - fresh0, fitness.hits - hits0)
 
 
-def _bar(total: int, desc: str, enabled: bool) -> Optional[tqdm]:
+def _bar(total: int, desc: str, enabled: bool) -> Optional[Any]:
     if not enabled:
         return None
-    return tqdm(total=total, desc=desc, unit="eval", leave=False)
+    return bar(total=total, desc=desc, unit="eval", leave=False)
 
 
 def drop_logged(path: Path, device: str, budget_ms: float) -> None:

@@ -12,7 +12,7 @@ import time
 from pathlib import Path
 
 import torch
-from tqdm import tqdm
+from tightfit.progress import bar as progress_bar
 
 from tightfit.train.checkpoint import load_checkpoint, remove_stale_temporaries, save_checkpoint
 from tightfit.train.distributed import (GradientSync, Ranks, barrier, broadcast_weights, decided_on_main, joined,
@@ -140,8 +140,7 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
     ckpt = checkpoint_path(run_dir)
     model.train()
     step = start
-    bar = tqdm(total=total, initial=start, desc="supernet", unit="step", disable=not (progress and main),
-               dynamic_ncols=True)
+    bar = progress_bar(total=total, initial=start, desc="supernet", unit="step", disable=not (progress and main))
     t0, seen = time.perf_counter(), 0
     with _StopFlag() as stop:
         sync = GradientSync(model, ranks, lambda: stop.signum) if ranks.launched else None

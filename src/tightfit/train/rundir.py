@@ -11,6 +11,7 @@ from __future__ import annotations
 import shutil
 from contextlib import contextmanager
 from dataclasses import dataclass
+import sys
 from pathlib import Path
 from typing import Iterator
 
@@ -62,8 +63,12 @@ def load_trained(run_dir: str | Path) -> TrainedRun:
     except (KeyError, TypeError, RuntimeError) as e:
         raise UserError(f"checkpoint in {run_dir} does not match its recipe ({type(e).__name__}); retrain") from None
     net.eval()
-    return TrainedRun(net, recipe, tuple(state["class_names"]), tuple(state["mean"]), tuple(state["std"]),
-                      bool(state.get("complete", False)))
+    complete = bool(state.get("complete", False))
+    if not complete:
+        print(f"warning: training in {run_dir} did not finish (checkpoint at step {state.get('step', '?')}): what is "
+              f"cut, profiled or searched from it is half-trained; resume with 'tightfit train RECIPE --run {run_dir}'",
+              file=sys.stderr)
+    return TrainedRun(net, recipe, tuple(state["class_names"]), tuple(state["mean"]), tuple(state["std"]), complete)
 
 
 def pick_device(requested: str | None = None) -> torch.device:

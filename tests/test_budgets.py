@@ -5,7 +5,7 @@ from __future__ import annotations
 import pytest
 
 from tightfit.errors import UserError
-from tightfit.search.budgets import parse_budget
+from tightfit.budgets import parse_budget
 
 
 @pytest.mark.parametrize("text, ms", [

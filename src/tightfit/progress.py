@@ -1,0 +1,37 @@
+"""Progress bars that stay readable in a log: a live bar on a terminal, a plain line every few
+seconds when output is redirected (CI logs, `> log`), instead of hundreds of redrawn frames."""
+from __future__ import annotations
+
+import io
+import sys
+from typing import Any, Iterable, Optional, TextIO
+
+from tqdm import tqdm
+
+PLAIN_EVERY_S = 10.0  # seconds between plain lines when not on a terminal
+
+
+class _Lines(io.TextIOBase):
+    """A stream that turns tqdm's carriage-return redraws into one newline-terminated line each."""
+
+    def __init__(self, stream: TextIO):
+        self.stream = stream
+
+    def write(self, text: str) -> int:
+        line = text.replace("\r", "").strip()
+        if line:
+            self.stream.write(line + "\n")
+            self.stream.flush()
+        return len(text)
+
+    def flush(self) -> None:
+        self.stream.flush()
+
+
+def bar(iterable: Optional[Iterable[Any]] = None, *, stream: Optional[TextIO] = None, **kwargs: Any) -> tqdm:
+    """tqdm with the project's defaults; `stream` defaults to stderr."""
+    stream = stream or sys.stderr
+    if getattr(stream, "isatty", lambda: False)():
+        return tqdm(iterable, file=stream, dynamic_ncols=True, **kwargs)
+    return tqdm(iterable, file=_Lines(stream), mininterval=PLAIN_EVERY_S, maxinterval=PLAIN_EVERY_S,
+                ncols=100, ascii=True, **kwargs)
