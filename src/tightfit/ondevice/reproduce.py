@@ -18,8 +18,9 @@ import subprocess
 import sys
 import tempfile
 from pathlib import Path
-from typing import Any, NoReturn
+from typing import Any
 
+from tightfit.ondevice.arguments import module_parser
 from tightfit.ondevice.exports import Export, VerifyError, load_export
 from tightfit.ondevice.files import check_writable, write_json
 
@@ -139,15 +140,8 @@ def add_reproduce_parser(sub: argparse._SubParsersAction) -> argparse.ArgumentPa
     return p
 
 
-class _Parser(argparse.ArgumentParser):
-    def error(self, message: str) -> NoReturn:
-        print(f"error: {message} (see --help)", file=sys.stderr)
-        sys.exit(2)
-
-
 def main(argv: list[str] | None = None) -> int:
-    p = _Parser(prog="python -m tightfit.ondevice.reproduce", description=__doc__,
-                formatter_class=argparse.RawDescriptionHelpFormatter)
+    p = module_parser("reproduce", __doc__)
     _add_arguments(p)
     return run(p.parse_args(argv))
 

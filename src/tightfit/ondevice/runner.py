@@ -38,10 +38,11 @@ import zipfile
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, NoReturn
+from typing import Any
 
 import onnxruntime as ort
 
+from tightfit.ondevice.arguments import module_parser
 from tightfit.ondevice.files import BUNDLE_FORMAT, TABLE_FORMAT, check_writable, write_json
 from tightfit.ondevice.hardware import describe_hardware
 from tightfit.ondevice.repeats import measure_repeated
@@ -177,16 +178,8 @@ def measure_bundle(bundle: Bundle, protocol: Protocol, chunk: int, source: str) 
     }
 
 
-class _Parser(argparse.ArgumentParser):
-    def error(self, message: str) -> NoReturn:
-        """One `error:` line and exit 2, like every other bad input."""
-        print(f"error: {message} (see --help)", file=sys.stderr)
-        sys.exit(2)
-
-
 def _parser() -> argparse.ArgumentParser:
-    p = _Parser(prog="python -m tightfit.ondevice.runner", description=__doc__,
-                formatter_class=argparse.RawDescriptionHelpFormatter)
+    p = module_parser("runner", __doc__)
     p.add_argument("bundle", type=Path, help="probe bundle folder or .zip")
     p.add_argument("--out", type=Path, required=True, help="latency table to write (JSON)")
     p.add_argument("--quick", action="store_true",

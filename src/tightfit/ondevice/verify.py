@@ -17,8 +17,9 @@ import os
 import sys
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, NoReturn
+from typing import Any
 
+from tightfit.ondevice.arguments import module_parser
 from tightfit.ondevice.exports import Export, VerifyError, load_export
 from tightfit.ondevice.files import VERDICT_FORMAT, check_writable, write_json
 from tightfit.ondevice.hardware import describe_hardware
@@ -180,15 +181,8 @@ def add_verify_parser(sub: argparse._SubParsersAction) -> argparse.ArgumentParse
     return p
 
 
-class _Parser(argparse.ArgumentParser):
-    def error(self, message: str) -> NoReturn:
-        print(f"error: {message} (see --help)", file=sys.stderr)
-        sys.exit(2)
-
-
 def main(argv: list[str] | None = None) -> int:
-    p = _Parser(prog="python -m tightfit.ondevice.verify", description=__doc__,
-                formatter_class=argparse.RawDescriptionHelpFormatter)
+    p = module_parser("verify", __doc__)
     _add_arguments(p)
     return run(p.parse_args(argv))
 
