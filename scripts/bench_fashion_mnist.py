@@ -72,11 +72,15 @@ class State:
 
 
 def smoke_recipe(recipe):
-    """512 images, one epoch, a space of a few subnets: checks the wiring, not the claim."""
+    """512 images, one epoch, a space of a few subnets: checks the wiring, not the claim. Only
+    the last stage keeps two widths, so elastic width is exercised without many probes."""
+    last = recipe.space.stages[-1]
     stages = tuple(replace(st, depths=(min(st.depths),), kernels=(min(st.kernels),),
-                           expansions=tuple(sorted({min(st.expansions), max(st.expansions)})))
+                           expansions=tuple(sorted({min(st.expansions), max(st.expansions)})),
+                           widths=tuple(sorted({min(st.width_choices), st.out_channels})) if st is last else ())
                    for st in recipe.space.stages)
-    return replace(recipe, data=replace(recipe.data, max_train_images=256), space=replace(recipe.space, stages=stages),
+    space = replace(recipe.space, stages=stages, stem_widths=())
+    return replace(recipe, data=replace(recipe.data, max_train_images=256), space=space,
                    train=replace(recipe.train, epochs=1, batch_size=64, recalibration_batches=2))
 
 

@@ -22,8 +22,17 @@ TINY = {
 }
 
 
-def tiny_recipe(**train_overrides):
-    doc = {**TINY, "train": {**TINY["train"], **train_overrides}}
+# The same stages with elastic width: stem and every stage choose their output channels.
+TINY_WIDE = {**TINY, "name": "tiny-wide", "space": {**TINY["space"], "stem_channels": [4, 8], "stage": [
+    {**TINY["space"]["stage"][0], "channels": [4, 8]},
+    {**TINY["space"]["stage"][1], "channels": [8, 12]},
+    {**TINY["space"]["stage"][2], "channels": [8, 12, 16]},
+]}}
+
+
+def tiny_recipe(wide: bool = False, **train_overrides):
+    base = TINY_WIDE if wide else TINY
+    doc = {**base, "train": {**base["train"], **train_overrides}}
     return parse_recipe(doc)
 
 

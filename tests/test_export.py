@@ -13,13 +13,16 @@ from tightfit.model.supernet import Supernet
 from helpers import perturb, tiny_recipe
 
 SPACE = tiny_recipe().space
+WIDE = tiny_recipe(wide=True).space  # elastic width in the stem and every stage
 
 
+@pytest.mark.parametrize("wide", [False, True], ids=["fixed-width", "elastic-width"])
 @pytest.mark.parametrize("which", ["smallest", "largest", "random"])
-def test_onnx_matches_torch(tmp_path, which):
-    net = Supernet(SPACE, 3, 5, kernel_mode="transform")
+def test_onnx_matches_torch(tmp_path, which, wide):
+    space = WIDE if wide else SPACE
+    net = Supernet(space, 3, 5, kernel_mode="transform")
     perturb(net, seed=3)
-    sub = SPACE.sample(random.Random(4)) if which == "random" else getattr(SPACE, which)()
+    sub = space.sample(random.Random(4)) if which == "random" else getattr(space, which)()
     net.set_subnet(sub)
     static = extract_subnet(net, sub)
     data = export_onnx(static, tmp_path / "m.onnx", 3, 16)

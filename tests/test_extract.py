@@ -1,4 +1,5 @@
-"""Extraction parity, gradient routing and BN recalibration over smallest, largest and random subnets."""
+"""Extraction parity, gradient routing and BN recalibration over smallest, largest and random subnets,
+in a space with fixed widths and in one with elastic width (stem and every stage)."""
 import random
 
 import pytest
@@ -10,15 +11,33 @@ from tightfit.model.supernet import Supernet
 from helpers import perturb, tiny_recipe
 
 SPACE = tiny_recipe().space
-SUBNETS = {"smallest": SPACE.smallest(), "largest": SPACE.largest(), "middle": SPACE.middle(),
-           **{f"random{i}": SPACE.sample(random.Random(i)) for i in range(5)}}
+WIDE = tiny_recipe(wide=True).space
+
+
+def _subnets(space, prefix: str = "") -> dict:
+    return {prefix + "smallest": space.smallest(), prefix + "largest": space.largest(), prefix + "middle": space.middle(),
+            **{f"{prefix}random{i}": space.sample(random.Random(i)) for i in range(5)}}
+
+
+SUBNETS = {**_subnets(SPACE), **_subnets(WIDE, "wide-")}
+
+
+def _space_of(name: str):
+    return WIDE if name.startswith("wide-") else SPACE
+
+
+def test_wide_subnets_differ_in_width():
+    # the property tests below exercise narrow stems and stages, not only the widest
+    widths = {SUBNETS[n].widths for n in SUBNETS if n.startswith("wide-")}
+    assert len(widths) >= 4 and all(len(w) == 4 for w in widths)
+    assert any(w[0] != w[1] for w in widths) and any(w[1] != w[2] for w in widths)
 
 
 @pytest.mark.parametrize("kernel_mode", ["centre", "transform"])
 @pytest.mark.parametrize("name", list(SUBNETS))
 def test_static_net_equals_supernet(name, kernel_mode):
     # Product quality bar: max abs diff <= 1e-5 in fp32, eval mode.
-    net = Supernet(SPACE, 3, 5, kernel_mode=kernel_mode)
+    net = Supernet(_space_of(name), 3, 5, kernel_mode=kernel_mode)
     perturb(net, seed=list(SUBNETS).index(name))  # fixed per subnet, the same in every process
     sub = SUBNETS[name]
     net.set_subnet(sub)
@@ -29,7 +48,7 @@ def test_static_net_equals_supernet(name, kernel_mode):
     with torch.no_grad():
         diff = (static(x) - net(x)).abs().max().item()
     assert diff <= 1e-5
-    assert count_params(static) < count_params(net) or name == "largest"
+    assert count_params(static) < count_params(net) or name.endswith("largest")
 
 
 def test_kernel_transform_starts_as_centre_crop():
@@ -43,13 +62,14 @@ def test_kernel_transform_starts_as_centre_crop():
     assert torch.equal(dw_a.active_weight(16, 3), dw_a.weight[:16, :, 2:5, 2:5])
 
 
-@pytest.mark.parametrize("name", ["smallest", "largest", "random1", "random3"])
+@pytest.mark.parametrize("name", ["smallest", "largest", "random1", "random3",
+                                  "wide-smallest", "wide-largest", "wide-random1", "wide-random3"])
 def test_gradients_reach_exactly_the_active_parameters(name):
     # Reference: the same subnet built from plain torch.nn layers, differentiated by torch
     # autograd. Centre-crop kernels map every active weight element to one static element, so the
     # supernet's gradient must equal the static net's element for element and be zero elsewhere:
     # equal non-zero counts and equal L1 mass (inactive elements would add to both).
-    net = Supernet(SPACE, 3, 5, kernel_mode="centre")
+    net = Supernet(_space_of(name), 3, 5, kernel_mode="centre")
     perturb(net)
     sub = SUBNETS[name]
     net.set_subnet(sub)
@@ -94,9 +114,9 @@ def test_bn_recalibration_is_deterministic_and_exact():
     assert all(torch.equal(first[k], v) for k, v in net.state_dict().items())
     # Stem BN statistics equal the mean of per-batch means (torch.nn.BatchNorm2d with momentum=None
     # keeps a cumulative average — PyTorch docs), computed here directly.
-    stem_conv = net.stem[0]
-    means = torch.stack([stem_conv(x).mean((0, 2, 3)) for x in batches]).mean(0)
-    assert torch.allclose(net.stem[1].running_mean, means.detach(), atol=1e-5)
+    stem_conv = net.stem.conv
+    means = torch.stack([stem_conv(x, net.stem.width).mean((0, 2, 3)) for x in batches]).mean(0)
+    assert torch.allclose(net.stem.bn.running_mean, means.detach(), atol=1e-5)
 
 
 def test_preserved_bn_stats_restores_buffers():

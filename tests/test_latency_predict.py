@@ -51,10 +51,15 @@ squeeze_excite = true
 """
 
 
-def tiny_recipe_text(head_channels: int = 24, stem_stride: int = 1) -> str:
+WIDE_STAGES = (STAGES.replace("channels = 8\n", "channels = [4, 8]\n").replace("channels = 12\n", "channels = [8, 12]\n")
+               .replace("channels = 16\n", "channels = [8, 12, 16]\n"))
+
+
+def tiny_recipe_text(head_channels: int = 24, stem_stride: int = 1, wide: bool = False) -> str:
+    """The tiny space; ``wide``: the same stages with elastic width in the stem and every stage."""
     return (f'name = "tiny-latency"\nseed = 0\n[data]\nsource = "builtin"\nimage_size = 15\nchannels = 3\n'
-            f'samples = 600\n[space]\nstem_channels = 8\nstem_stride = {stem_stride}\n'
-            f'head_channels = {head_channels}\n' + STAGES)
+            f'samples = 600\n[space]\nstem_channels = {"[4, 8]" if wide else 8}\nstem_stride = {stem_stride}\n'
+            f'head_channels = {head_channels}\n' + (WIDE_STAGES if wide else STAGES))
 
 
 @pytest.fixture(autouse=True)
@@ -95,18 +100,22 @@ def input_shapes(net, modules, in_channels: int, size: int) -> list[tuple[int, i
     return shapes
 
 
-@pytest.mark.parametrize("head_channels,stem_stride", [(24, 1), (0, 2)])
-def test_layer_ids_match_the_shapes_the_network_runs(tmp_path, head_channels, stem_stride):
+@pytest.mark.parametrize("head_channels,stem_stride,wide", [(24, 1, False), (0, 2, False), (24, 1, True), (0, 1, True)])
+def test_layer_ids_match_the_shapes_the_network_runs(tmp_path, head_channels, stem_stride, wide):
     """Property over random subnets: every layer id names a config whose input shape is what
     torch's forward hooks see in the extracted network (torch.nn.Module.register_forward_hook)."""
-    recipe, supernet = load_source(make_run(tmp_path, head_channels=head_channels, stem_stride=stem_stride))
-    configs = {c.id: c for c in layer_configs(recipe.space, 3, 15)}
-    per_block = [len(st.expansions) * len(st.kernels) for st in recipe.space.stages]
-    later = [max(st.depths) > 1 for st in recipe.space.stages]
-    assert len(configs) == 2 + sum(n * (1 + lt) for n, lt in zip(per_block, later))  # stem + head + blocks
+    recipe, supernet = load_source(make_run(tmp_path, head_channels=head_channels, stem_stride=stem_stride, wide=wide))
+    space = recipe.space
+    configs = {c.id: c for c in layer_configs(space, 3, 15)}
+    per_block = [len(st.expansions) * len(st.kernels) for st in space.stages]
+    later = [max(st.depths) > 1 for st in space.stages]
+    widths = [len(w) for w in space.width_options()]  # stem, then each stage
+    # one stem per stem width, one head per last width; a first block per (input width, width), a later per width
+    assert len(configs) == widths[0] + widths[-1] + sum(
+        n * (widths[i] * widths[i + 1] + widths[i + 1] * lt) for i, (n, lt) in enumerate(zip(per_block, later)))
     rng = random.Random(0)
-    for subnet in [recipe.space.largest(), recipe.space.smallest()] + [recipe.space.sample(rng) for _ in range(20)]:
-        ids = subnet_layer_ids(subnet)
+    for subnet in [space.largest(), space.smallest()] + [space.sample(rng) for _ in range(20)]:
+        ids = subnet_layer_ids(space, subnet)
         net = extract_subnet(supernet, subnet)
         # the head probe starts at the head conv, or at the pool when there is none
         seen = input_shapes(net, list(net.features) + ([] if head_channels else [net.pool]), 3, 15)
@@ -130,7 +139,7 @@ def test_bundle_is_valid_and_covers_random_subnets(bundle, run_dir):
     entries = {e.id: e for e in parsed.entries}
     rng = random.Random(1)
     for _ in range(40):
-        for eid in subnet_layer_ids(recipe.space.sample(rng)):
+        for eid in subnet_layer_ids(recipe.space, recipe.space.sample(rng)):
             assert entries[eid].kind == "layer"
     for e in parsed.entries:
         dims = [d.dim_value or d.dim_param for d in onnx.load(e.path).graph.input[0].type.tensor_type.shape.dim]
@@ -142,6 +151,27 @@ def test_bundle_is_valid_and_covers_random_subnets(bundle, run_dir):
     assert len(keys) == 4 == len(set(keys)) and recipe.space.largest().to_key() in keys
     zipped = write_bundle(run_dir, bundle.parent / "zipped", n_subnets=2, zip=True, progress=False)
     assert len(runner.open_bundle(zipped, bundle.parent / "unzipped").entries) == len(parsed.entries) - 2
+
+
+def test_elastic_width_bundle_covers_every_width_combination(tmp_path):
+    """With elastic width, every subnet's layer ids are in the bundle with the input shape the ONNX
+    file declares, including first blocks between every pair of neighbouring widths."""
+    run = make_run(tmp_path / "wide", wide=True)
+    parsed = runner.read_index(write_bundle(run, n_subnets=3, progress=False))
+    recipe, _ = load_source(run)
+    entries = {e.id: e for e in parsed.entries}
+    rng = random.Random(4)
+    used = set()
+    for subnet in [recipe.space.smallest(), recipe.space.largest()] + [recipe.space.sample(rng) for _ in range(60)]:
+        for eid in subnet_layer_ids(recipe.space, subnet):
+            assert entries[eid].kind == "layer"
+            used.add(eid)
+    pairs = {(entries[i].meta["in_channels"], entries[i].meta["out_channels"]) for i in used
+             if entries[i].meta["role"] == "block" and entries[i].meta["stage"] == 2 and entries[i].meta["first"]}
+    assert pairs == {(a, b) for a in (8, 12) for b in (8, 12, 16)}
+    for eid in used:
+        dims = [d.dim_value for d in onnx.load(entries[eid].path).graph.input[0].type.tensor_type.shape.dim]
+        assert dims[1:] == [entries[eid].meta["in_channels"], entries[eid].meta["resolution"], entries[eid].meta["resolution"]]
 
 
 def synthetic_table(bundle: Path, tmp: Path, fit=lambda x: x, **overrides) -> Path:
@@ -180,19 +210,19 @@ def test_predictor_sums_the_layers_a_subnet_runs(bundle, tmp_path):
                 for v in table.entries.values() if (m := v["meta"]).get("role") == "block"}
     rng = random.Random(3)
     for subnet in [recipe.space.largest()] + [recipe.space.sample(rng) for _ in range(15)]:
-        net, expected, res = extract_subnet(supernet, subnet), table.entries["stem"]["p50_ms"], 15
+        net, expected, res = extract_subnet(supernet, subnet), table.entries["stem-out8"]["p50_ms"], 15
         res = conv_out(res, recipe.space.stem_stride)
         for block in list(net.features)[1:1 + sum(subnet.depths)]:
             dw = next(m for m in block.modules() if isinstance(m, torch.nn.Conv2d) and m.groups > 1)
             expected += by_shape[(block.conv[0][0].in_channels, dw.in_channels, dw.kernel_size[0], dw.stride[0], res)]
             res = conv_out(res, dw.stride[0])
-        expected += table.entries["head"]["p50_ms"]
+        expected += table.entries["head-in16"]["p50_ms"]
         assert pred.layer_sum_ms(subnet) == pytest.approx(expected, rel=1e-12)
         def overhead(chs, res, skip):  # the passthrough once, minus its second copy
             return (2 * table.entries[overhead_id(chs, res, skip, 1)]["p50_ms"]
                     - table.entries[overhead_id(chs, res, skip, 2)]["p50_ms"])
         configs = {c.id: c for c in layer_configs(recipe.space, 3, 15)}
-        overheads = sum(overhead(c.in_channels, c.resolution, c.skip) for c in map(configs.get, subnet_layer_ids(subnet)))
+        overheads = sum(overhead(c.in_channels, c.resolution, c.skip) for c in map(configs.get, subnet_layer_ids(recipe.space, subnet)))
         assert pred.adjusted_sum_ms(subnet) == pytest.approx(expected - overheads + overhead(3, 15, False), rel=1e-12)
 
 
@@ -237,12 +267,12 @@ def test_bad_tables_are_refused(bundle, tmp_path):
     data = json.loads(good.read_text())
     for name, text in [("garbage", "{not json"), ("fmt", json.dumps({**data, "format": "x"})),
                        ("empty", json.dumps({**data, "entries": {}})),
-                       ("nan", json.dumps({**data, "entries": {"stem": {**data["entries"]["stem"], "p50_ms": None}}}))]:
+                       ("nan", json.dumps({**data, "entries": {"stem-out8": {**data["entries"]["stem-out8"], "p50_ms": None}}}))]:
         path = tmp_path / f"{name}.json"
         path.write_text(text)
         with pytest.raises(UserError, match=re.escape(str(path))):
             load_table(path)
-    del data["entries"]["head"]
+    del data["entries"]["head-in16"]
     (tmp_path / "missing.json").write_text(json.dumps(data))
     with pytest.raises(UserError, match="lacks 1 layer entries"):
         load_predictor(recipe, tmp_path / "missing.json")
@@ -289,13 +319,16 @@ def test_profile_host_end_to_end(run_dir, tmp_path):
     small, large = pred.predict_ms(recipe.space.smallest()), pred.predict_ms(recipe.space.largest())
     assert 0 < small < large and math.isfinite(large)
     quick = Protocol(**runner.QUICK)
-    result = check_predictor(run_dir, table_path, n=5, protocol=quick, progress=False)
+    result = check_predictor(run_dir, table_path, n=5, protocol=quick, progress=False, twice=True)
     assert result["subnets"] == 5 and not {r["key"] for r in result["rows"]} & set(pred.calibration_keys)
     # the check's figures are the definitions applied to its own rows (MAPE in percent; Kendall 1938 tau)
     pred_ms, meas_ms = [r["predicted_p50_ms"] for r in result["rows"]], [r["measured_p50_ms"] for r in result["rows"]]
     assert result["p50"]["mape"] == pytest.approx(100 * sum(abs(p - m) / m for p, m in zip(pred_ms, meas_ms)) / 5)
     assert result["p50"]["kendall_tau"] == pytest.approx(brute_force_tau_b(pred_ms, meas_ms), nan_ok=True)
     assert (run_dir / "latency" / "checks" / "testhost.json").is_file()
+    # a second measurement of the same files, scored like a predictor: the floor of any predictor's error
+    again = result["measurement_vs_measurement"]
+    assert set(again) == {"p50", "budget_stat"} and all(0 <= e["mape"] < 100 for e in again.values())
     # taking the calibration subnets' drift out rescales every prediction by the same factor
     drift = 1 + result["session_drift"]
     rescaled = [abs(drift * r["predicted_p50_ms"] - r["measured_p50_ms"]) / r["measured_p50_ms"] for r in result["rows"]]

@@ -13,7 +13,7 @@ import torch.nn.functional as F
 
 from helpers import perturb, tiny_recipe
 from tightfit.data.dataset import normalize
-from tightfit.model.elastic import ElasticBatchNorm, ElasticPointwise
+from tightfit.model.elastic import ElasticBatchNorm, ElasticConv
 from tightfit.model.supernet import build_supernet
 from tightfit.ondevice.timing import fits_budget
 from tightfit.search.choose import Tried, measure_and_choose
@@ -79,7 +79,7 @@ def test_recalibrated_batchnorm_is_the_exact_average_and_touches_only_active_cha
 def test_pointwise_uses_the_leading_channels():
     # Channel prefixes (Yu et al. 2019, slimmable networks): a width-k layer is the first k filters
     # over the first j inputs, so every narrower subnet shares the wider one's leading weights.
-    conv = ElasticPointwise(6, 5)
+    conv = ElasticConv(6, 5)
     with torch.no_grad():
         conv.weight.copy_(torch.arange(30.0).view(5, 6, 1, 1))
     w = conv.active_weight(2, 3)

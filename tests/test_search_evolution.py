@@ -99,3 +99,22 @@ def test_pareto_front_matches_brute_force(seed):
     assert {p[0] for p in front} == brute
     lat = [p[2] for p in front]
     assert lat == sorted(lat)
+
+
+def test_mutation_and_shrinking_cover_elastic_widths():
+    # With elastic width, children stay in the space, widths change as often as other decisions
+    # (each width is one decision with the same probability), and shrinking ends at the smallest.
+    from helpers import tiny_recipe
+    from tightfit.search.evolution import mutate, shrink
+    space = tiny_recipe(wide=True).space
+    rng = random.Random(0)
+    parent = space.largest()
+    children = [mutate(space, parent, rng, 0.3) for _ in range(300)]
+    assert all(space.contains(c) and c != parent for c in children)
+    changed = sum(c.widths != parent.widths for c in children)
+    assert 0.5 < changed / len(children) < 0.95  # 1 - 0.7^4 = 0.76 of children change some width
+    s = space.largest()
+    for _ in range(200):
+        s = shrink(space, s, rng)
+        assert space.contains(s)
+    assert s == space.smallest()

@@ -8,8 +8,9 @@ import torch
 
 
 
+@pytest.mark.parametrize("wide", [False, True], ids=["fixed-width", "elastic-width"])
 @pytest.mark.parametrize("room_bytes", [1 << 30, 300_000, 0])
-def test_cached_prefix_recalibration_matches_full(room_bytes):
+def test_cached_prefix_recalibration_matches_full(room_bytes, wide):
     # Reference: tightfit.recalibrate.recalibrate_bn, the plain procedure of Yu & Huang 2019
     # (Sec. 3.3: reset, then cumulative averages over fixed batches). The cached version must
     # give the same statistics in every BatchNorm of the extracted subnet, whether the shared
@@ -19,7 +20,7 @@ def test_cached_prefix_recalibration_matches_full(room_bytes):
     from tightfit.model.recalibrate import preserved_bn_stats, recalibrate_bn
     from tightfit.search.fitness import Recalibrator, fixed_stages
     from tightfit.model.supernet import Supernet
-    space = tiny_recipe().space
+    space = tiny_recipe(wide=wide).space
     assert fixed_stages(space) == 1
     sn = Supernet(space, 3, 5).eval()
     perturb(sn, seed=3)
@@ -28,7 +29,6 @@ def test_cached_prefix_recalibration_matches_full(room_bytes):
     subnets = [space.smallest(), space.largest()] + [space.sample(rng) for _ in range(2)] + [space.smallest()]
     before = {k: v.clone() for k, v in sn.state_dict().items()}
     recal = Recalibrator(sn, calib, room_bytes=room_bytes)
-    assert (recal.inputs is None) == (room_bytes == 0) and not sn.training
     for subnet in subnets:
         sn.set_subnet(subnet)
         with preserved_bn_stats(sn):
@@ -41,6 +41,9 @@ def test_cached_prefix_recalibration_matches_full(room_bytes):
         for k in want:
             assert torch.allclose(got[k].float(), want[k].float(), rtol=1e-5, atol=1e-6), (subnet.to_key(), k)
         assert all(torch.equal(v, sn.state_dict()[k]) for k, v in before.items())  # supernet left as it was
+    assert (not any(recal.prefixes.values())) == (room_bytes == 0) and not sn.training
+    if wide and room_bytes > 1 << 20:
+        assert len(recal.prefixes) > 1  # one shared prefix per (stem, first stage) width choice
     if room_bytes > 1 << 20:
         assert len([v for v in recal.variants.values() if v]) > 1  # first-block outputs were reused
 

@@ -11,6 +11,7 @@ from tightfit.model.space import Subnet
 from helpers import tiny_recipe
 
 SPACE = tiny_recipe().space
+WIDE = tiny_recipe(wide=True).space   # the same stages, elastic width in the stem and every stage
 
 
 def enumerate_all(space):
@@ -22,13 +23,37 @@ def enumerate_all(space):
         for d in s.depths:
             options += list(itertools.product(block_choices, repeat=d))
         per_stage.append(options)
-    return [Subnet(tuple(c)) for c in itertools.product(*per_stage)]
+    widths = list(itertools.product(*space.width_options())) if space.elastic_width else [()]
+    return [Subnet(tuple(c), w) for c in itertools.product(*per_stage) for w in widths]
 
 
-def test_size_matches_brute_force_enumeration():
-    every = enumerate_all(SPACE)
-    assert SPACE.size() == len(every) == len({s.to_key() for s in every})
-    assert all(SPACE.contains(s) for s in every)
+@pytest.mark.parametrize("space", [SPACE, WIDE], ids=["fixed-width", "elastic-width"])
+def test_size_matches_brute_force_enumeration(space):
+    every = enumerate_all(space)
+    assert space.size() == len(every) == len({s.to_key() for s in every})
+    assert all(space.contains(s) for s in every)
+
+
+def test_elastic_width_multiplies_the_space_and_keys_carry_widths():
+    assert WIDE.size() == SPACE.size() * 2 * 2 * 2 * 3
+    assert WIDE.largest().to_key() == "1:3/4:5,4:5/6:7,6:7,6:7@8-8-12-16"
+    assert WIDE.smallest().to_key() == "1:3/2:3/2:3@4-4-8-8"
+    assert SPACE.largest().widths == () and not SPACE.elastic_width
+    # a fixed-width key is not a subnet of the elastic space (widths must be named), and back
+    assert not WIDE.contains(SPACE.largest()) and not SPACE.contains(WIDE.largest())
+    for bad in ("1:3/2:3/2:3@4-4-8", "1:3/2:3/2:3@4-4-8-9", "1:3/2:3/2:3@", "1:3/2:3/2:3@4-4-8-x"):
+        with pytest.raises(UserError):
+            WIDE.parse_key(bad)
+
+
+def test_sampling_is_uniform_over_widths():
+    # Uniform over all subnets: the widths multiply the count independently of the blocks, so each
+    # stage's width is uniform over its choices (loose bound, as above; common practice).
+    rng = random.Random(1)
+    n = 3000
+    counts = Counter(WIDE.sample(rng).widths[3] for _ in range(n))
+    assert set(counts) == {8, 12, 16}
+    assert all(abs(c - n / 3) < 5 * (n / 3) ** 0.5 for c in counts.values())
 
 
 def test_sampling_is_uniform_over_depths():
@@ -51,10 +76,11 @@ def test_largest_and_smallest():
 
 
 @settings(max_examples=200, deadline=None)
-@given(st.integers(0, 2**32 - 1))
-def test_key_round_trip(seed):
-    sub = SPACE.sample(random.Random(seed))
-    assert SPACE.parse_key(sub.to_key()) == sub
+@given(st.integers(0, 2**32 - 1), st.booleans())
+def test_key_round_trip(seed, wide):
+    space = WIDE if wide else SPACE
+    sub = space.sample(random.Random(seed))
+    assert space.parse_key(sub.to_key()) == sub
     assert Subnet.from_key(sub.to_key()).to_key() == sub.to_key()
 
 

@@ -126,14 +126,28 @@ def _act(table: dict, key: str, where: str, default: str) -> str:
     return v
 
 
+def _widths(table: dict, key: str, where: str, default: int | None) -> tuple[int, tuple[int, ...]]:
+    """``channels = 40`` (fixed) or ``channels = [24, 32, 40]`` (elastic width: the choices, the
+    widest sizing the weights) → (widest, choices or ())."""
+    v = table.get(key, default)
+    if isinstance(v, list):
+        choices = _choices(table, key, where, int)
+        if min(choices) <= 0:
+            raise _fail(where + key, v, "every width must be an integer > 0")
+        return max(choices), (choices if len(choices) > 1 else ())
+    if isinstance(v, bool) or not isinstance(v, int) or v <= 0:
+        raise _fail(where + key, v, "must be an integer > 0, or a list of allowed widths such as [16, 24, 32]")
+    return v, ()
+
+
 def _stage(st: Any, i: int) -> StageSpec:
     where = f"space.stage[{i}]."
     if not isinstance(st, dict):
         raise UserError(f"recipe key 'space.stage[{i}]' must be a table ([[space.stage]])")
     _check_keys(st, {"channels", "stride", "depths", "expansions", "kernels", "activation", "squeeze_excite"}, where)
-    chs = _typed(st, "channels", where, int, None)
-    if chs is None or chs <= 0:
-        raise _fail(where + "channels", st.get("channels"), "must be an integer > 0")
+    if "channels" not in st:
+        raise _fail(where + "channels", None, "must be an integer > 0, or a list of allowed widths")
+    chs, widths = _widths(st, "channels", where, None)
     stride = _typed(st, "stride", where, int, 1)
     if stride not in (1, 2):
         raise _fail(where + "stride", stride, "must be 1 or 2")
@@ -147,13 +161,13 @@ def _stage(st: Any, i: int) -> StageSpec:
     if any(k < 1 or k % 2 == 0 for k in kernels):
         raise _fail(where + "kernels", list(kernels), "kernel sizes must be odd and >= 1 (e.g. 3, 5, 7)")
     return StageSpec(chs, stride, depths, exps, kernels, _act(st, "activation", where, "relu6"),
-                     _typed(st, "squeeze_excite", where, bool, False))
+                     _typed(st, "squeeze_excite", where, bool, False), widths)
 
 
 def _space(sp: dict) -> SpaceSpec:
     _check_keys(sp, {"stem_channels", "stem_stride", "stem_activation", "head_channels",
                      "head_activation", "dropout", "stage"}, "space.")
-    stem = _typed(sp, "stem_channels", "space.", int, 16, positive=True)
+    stem, stem_widths = _widths(sp, "stem_channels", "space.", 16)
     stem_stride = _typed(sp, "stem_stride", "space.", int, 1)
     if stem_stride not in (1, 2):
         raise _fail("space.stem_stride", stem_stride, "must be 1 or 2")
@@ -168,7 +182,7 @@ def _space(sp: dict) -> SpaceSpec:
         raise UserError("recipe needs at least one [[space.stage]] table")
     return SpaceSpec(stem, stem_stride, tuple(_stage(s, i) for i, s in enumerate(stages)), head,
                      _act(sp, "stem_activation", "space.", "relu6"), _act(sp, "head_activation", "space.", "relu6"),
-                     dropout)
+                     dropout, stem_widths)
 
 
 def parse_recipe(doc: dict, default_name: str = "recipe") -> Recipe:
@@ -225,5 +239,7 @@ def recipe_from_dict(d: dict[str, Any]) -> Recipe:
     """Rebuild a Recipe from ``Recipe.to_dict()`` (as stored in checkpoints)."""
     sp = dict(d["space"])
     sp["stages"] = tuple(StageSpec(**{**s, "depths": tuple(s["depths"]), "expansions": tuple(s["expansions"]),
-                                      "kernels": tuple(s["kernels"])}) for s in sp["stages"])
+                                      "kernels": tuple(s["kernels"]), "widths": tuple(s.get("widths", ()))})
+                         for s in sp["stages"])
+    sp["stem_widths"] = tuple(sp.get("stem_widths", ()))
     return Recipe(d["name"], d["seed"], DataConfig(**d["data"]), SpaceSpec(**sp), TrainConfig(**d["train"]))

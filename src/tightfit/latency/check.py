@@ -44,12 +44,14 @@ def _errors(predicted: list[float], measured: list[float]) -> dict[str, float]:
 
 # long: measurement, then one flat record of every figure the check reports
 def check_predictor(run_dir, table_path, n: int = 30, seed: int = 1, protocol=None,
-                    progress: bool = True) -> dict:
+                    progress: bool = True, twice: bool = False) -> dict:
     """Measure n held-out random subnets whole, interleaved in one session, against the predictor.
 
     The table's calibration subnets are measured in the same session as references: their
     ratio to the table shows how far this session's machine state sits from the table's,
-    which is not the predictor's error but does land in its MAPE.
+    which is not the predictor's error but does land in its MAPE. With ``twice``, the same
+    files are measured again and the second measurement scored against the first: the
+    error a perfect predictor would still show (the measurement's own reproducibility).
     """
     if n < 5:
         raise UserError(f"--subnets {n} is too few to judge a predictor; use at least 5 (30 is the default)")
@@ -74,6 +76,8 @@ def check_predictor(run_dir, table_path, n: int = 30, seed: int = 1, protocol=No
         paths = write_subnet_onnx(supernet, todo, Path(tmp), chs, size, progress)
         measured = measure_repeated(paths, protocol, int(table.protocol.get("chunk", 10)),
                                     progress=stderr_progress("check") if progress else None)
+        again = measure_repeated(paths[:len(subnets)], protocol, int(table.protocol.get("chunk", 10)),
+                                 progress=stderr_progress("check again") if progress else None) if twice else None
     rows = []
     for s, path in zip(subnets, paths):
         m = measured[path]
@@ -96,6 +100,9 @@ def check_predictor(run_dir, table_path, n: int = 30, seed: int = 1, protocol=No
         "p50_drift_corrected": _errors([drift * r["predicted_p50_ms"] for r in rows], [r["measured_p50_ms"] for r in rows]),
         "session_drift": None if drift_or_none is None else drift - 1.0,
         "load_average": {"before": list(load_before), "after": list(os.getloadavg())},
+        **({"measurement_vs_measurement": {
+            name: _errors([again[p][stat] for p in paths[:len(subnets)]], [measured[p][stat] for p in paths[:len(subnets)]])
+            for name, stat in (("p50", "p50_ms"), ("budget_stat", "budget_stat_ms"))}} if again is not None else {}),
         "rows": rows,
     }
     write_json(Path(run_dir) / "latency" / "checks" / f"{table.name}.json", result)

@@ -1,9 +1,11 @@
 """The distinct layers of a search space and their ids in a probe bundle (torch-free).
 
-A block's input resolution and input channels depend only on its stage and on whether
-it is the stage's first block, so the distinct blocks are, per stage, the first-block
-(expansion, kernel) choices and, when the stage can be deeper than one, the later-block
-choices. Stem and head (head conv + pool + classifier) are one entry each; passthrough
+A block's input resolution depends only on its stage and on whether it is the stage's
+first block; its channels on the widths chosen around it. So the distinct blocks are, per
+stage, the first-block (input width, output width, expansion, kernel) choices, the input
+width being one of the previous stage's (or the stem's), and, when the stage can be deeper
+than one, the later-block (width, expansion, kernel) choices. The stem is one entry per
+stem width, the head (head conv + pool + classifier) one per last-stage width; passthrough
 probes isolate the per-call overhead (latency/predict.py).
 """
 from __future__ import annotations
@@ -54,38 +56,52 @@ class LayerConfig:
         return {**asdict(self), "shape": self.shape()}
 
 
-def block_id(stage: int, first: bool, expansion: float, kernel: int) -> str:
-    return f"stage{stage}-{'first' if first else 'later'}-expansion{expansion:g}-kernel{kernel}"
+def block_id(stage: int, first: bool, in_channels: int, out_channels: int, expansion: float, kernel: int) -> str:
+    return (f"stage{stage}-{'first' if first else 'later'}-in{in_channels}-out{out_channels}"
+            f"-expansion{expansion:g}-kernel{kernel}")
+
+
+def stem_id(width: int) -> str:
+    return f"stem-out{width}"
+
+
+def head_id(in_channels: int) -> str:
+    return f"head-in{in_channels}"
 
 
 def layer_configs(space: SpaceSpec, in_channels: int, image_size: int) -> list[LayerConfig]:
     """Every distinct layer configuration of the space, in network order."""
     res = image_size
-    out = [LayerConfig("stem", "stem", in_channels, space.stem_channels, res, stride=space.stem_stride,
-                       activation=space.stem_activation)]
+    out = [LayerConfig(stem_id(w), "stem", in_channels, w, res, stride=space.stem_stride,
+                       activation=space.stem_activation) for w in space.stem_choices]
     res = conv_out(res, space.stem_stride)
+    widths_in = space.stem_choices
     for i, st in enumerate(space.stages):
-        positions = [(True, space.stage_in_channels(i), st.stride, res)]
+        positions = [(True, a, b, st.stride, res) for a in widths_in for b in st.width_choices]
         res = conv_out(res, st.stride)
         if max(st.depths) > 1:
-            positions.append((False, st.out_channels, 1, res))
-        for first, chs, stride, r in positions:
-            skip = stride == 1 and chs == st.out_channels
+            positions += [(False, w, w, 1, res) for w in st.width_choices]
+        for first, chs, width, stride, r in positions:
+            skip = stride == 1 and chs == width
             for e in st.expansions:
                 for k in st.kernels:
-                    out.append(LayerConfig(block_id(i, first, e, k), "block", chs, st.out_channels, r, i, first, e, k,
+                    out.append(LayerConfig(block_id(i, first, chs, width, e, k), "block", chs, width, r, i, first, e, k,
                                            hidden_channels(chs, e), stride, st.activation, st.squeeze_excite, skip))
-    last = space.stages[-1].out_channels
-    out.append(LayerConfig("head", "head", last, space.head_channels or last, res, activation=space.head_activation))
+        widths_in = st.width_choices
+    out += [LayerConfig(head_id(w), "head", w, space.head_channels or w, res, activation=space.head_activation)
+            for w in widths_in]
     return out
 
 
-def subnet_layer_ids(subnet: Subnet) -> list[str]:
+def subnet_layer_ids(space: SpaceSpec, subnet: Subnet) -> list[str]:
     """The layer entries whose latencies add up to this subnet's."""
-    ids = ["stem"]
-    for i, blocks in enumerate(subnet.stages):
-        ids += [block_id(i, j == 0, e, k) for j, (e, k) in enumerate(blocks)]
-    return ids + ["head"]
+    widths = space.widths_of(subnet)
+    ids, chs = [stem_id(widths[0])], widths[0]
+    for i, (blocks, width) in enumerate(zip(subnet.stages, widths[1:])):
+        for j, (e, k) in enumerate(blocks):
+            ids.append(block_id(i, j == 0, chs, width, e, k))
+            chs = width
+    return ids + [head_id(chs)]
 
 
 def overhead_id(chs: int, res: int, skip: bool, copies: int) -> str:

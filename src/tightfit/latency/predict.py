@@ -168,7 +168,7 @@ class LatencyPredictor:
     def _ids(self, subnet: Subnet) -> list[str]:
         if not self.space.contains(subnet):
             raise UserError(f"subnet {subnet.to_key()} is not in this search space")
-        return subnet_layer_ids(subnet)
+        return subnet_layer_ids(self.space, subnet)
 
     def layer_sum_ms(self, subnet: Subnet) -> float:
         """Plain sum of the isolated layers' latencies (no corrections)."""

@@ -17,7 +17,7 @@ from torch import nn
 from tightfit.errors import UserError
 from tightfit.export.onnx import onnx_bytes
 from tightfit.latency.layers import LayerConfig, calibration_subnets, layer_configs, overhead_configs
-from tightfit.model.extract import extract_block, extract_subnet
+from tightfit.model.extract import extract_block, extract_classifier, extract_conv_bn, extract_subnet
 from tightfit.model.space import space_hash
 from tightfit.model.supernet import Supernet, build_supernet
 from tightfit.ondevice.files import BUNDLE_FORMAT, atomic_write, write_bytes, write_json
@@ -28,10 +28,9 @@ from tightfit.train.rundir import load_trained
 class _Head(nn.Module):
     """Head conv (if any) → global average pool → classifier, exactly as StaticNet ends."""
 
-    def __init__(self, net: nn.Module, has_head_conv: bool):
+    def __init__(self, conv: nn.Module, classifier: nn.Module):
         super().__init__()
-        self.conv = net.features[-1] if has_head_conv else nn.Identity()
-        self.pool, self.classifier = net.pool, net.classifier
+        self.conv, self.pool, self.classifier = conv, nn.AdaptiveAvgPool2d(1), classifier
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         return self.classifier(self.pool(self.conv(x)).flatten(1))
@@ -58,15 +57,16 @@ class _Passthrough(nn.Module):
 
 def layer_module(supernet: Supernet, cfg: LayerConfig) -> nn.Module:
     """The static torch module for one layer configuration (eval mode, fp32, CPU)."""
-    space = supernet.space
     if cfg.role == "block":
-        return extract_block(supernet.stages[cfg.stage][0 if cfg.first else 1], cfg.expansion, cfg.kernel).eval()
+        return extract_block(supernet.stages[cfg.stage][0 if cfg.first else 1], cfg.expansion, cfg.kernel,
+                             cfg.in_channels, cfg.out_channels).eval()
     if cfg.role == "passthrough":
         return _Passthrough(cfg.in_channels, cfg.copies, cfg.skip).eval()
-    net = extract_subnet(supernet, space.smallest())
     if cfg.role == "stem":
-        return net.features[0]
-    return _Head(net, bool(space.head_channels)).eval()
+        return extract_conv_bn(supernet.stem, cfg.in_channels, cfg.out_channels).eval()
+    head = supernet.space.head_channels
+    conv = extract_conv_bn(supernet.head, cfg.in_channels, head) if head else nn.Identity()
+    return _Head(conv, extract_classifier(supernet, head or cfg.in_channels)).eval()
 
 
 def _class_count(recipe: Recipe) -> int:

@@ -28,27 +28,29 @@ def describe_architecture(space: SpaceSpec, subnet: Subnet, in_channels: int, im
     (convolutions and the classifier, as torch's FlopCounterMode counts them), enough to
     rebuild the network by hand and to size candidates without building them."""
     size = conv_out(image_size, space.stem_stride)
-    out: list[dict[str, Any]] = [{"type": "stem", "in_channels": in_channels, "out_channels": space.stem_channels,
+    widths = space.widths_of(subnet)
+    stem = widths[0]
+    out: list[dict[str, Any]] = [{"type": "stem", "in_channels": in_channels, "out_channels": stem,
                                   "kernel": 3, "stride": space.stem_stride, "activation": space.stem_activation, "out_size": size,
-                                  "params": 9 * in_channels * space.stem_channels + 2 * space.stem_channels,
-                                  "macs": 9 * in_channels * space.stem_channels * size * size}]
-    for i, (st, blocks) in enumerate(zip(space.stages, subnet.stages)):
-        chs = space.stage_in_channels(i)
+                                  "params": 9 * in_channels * stem + 2 * stem,
+                                  "macs": 9 * in_channels * stem * size * size}]
+    chs = stem
+    for i, (st, blocks, width) in enumerate(zip(space.stages, subnet.stages, widths[1:])):
         for j, (e, k) in enumerate(blocks):
             stride = st.stride if j == 0 else 1
             hidden, res = hidden_channels(chs, e), conv_out(size, stride)
-            params = hidden * k * k + 2 * hidden + hidden * st.out_channels + 2 * st.out_channels
-            macs = (hidden * k * k + hidden * st.out_channels) * res * res
+            params = hidden * k * k + 2 * hidden + hidden * width + 2 * width
+            macs = (hidden * k * k + hidden * width) * res * res
             if st.has_expand:
                 params, macs = params + chs * hidden + 2 * hidden, macs + chs * hidden * size * size
             if st.squeeze_excite:
                 sq = squeeze_channels(hidden)
                 params, macs = params + 2 * hidden * sq + sq + hidden, macs + 2 * hidden * sq
             out.append({"type": "inverted_residual", "stage": i, "block": j, "in_channels": chs,
-                        "hidden_channels": hidden, "out_channels": st.out_channels, "expansion": e, "kernel": k,
-                        "stride": stride, "activation": st.activation, "squeeze_excite": st.squeeze_excite, "skip": stride == 1 and chs == st.out_channels, "out_size": res,
-                        "params": params, "macs": macs})
-            chs, size = st.out_channels, res
+                        "hidden_channels": hidden, "out_channels": width, "expansion": e, "kernel": k,
+                        "stride": stride, "activation": st.activation, "squeeze_excite": st.squeeze_excite,
+                        "skip": stride == 1 and chs == width, "out_size": res, "params": params, "macs": macs})
+            chs, size = width, res
     if space.head_channels:
         out.append({"type": "head", "in_channels": chs, "out_channels": space.head_channels, "kernel": 1,
                     "activation": space.head_activation, "out_size": size, "params": chs * space.head_channels + 2 * space.head_channels,

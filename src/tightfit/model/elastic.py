@@ -1,8 +1,9 @@
 """Elastic layers: weights sized for the largest choice, sliced at run time.
 
-Width is elastic through the hidden (expanded) channels: a block with k hidden channels
-uses the first k output channels of the expand conv, the first k depthwise filters and
-the first k input channels of the projection. Kernel size is elastic in the depthwise
+Width is elastic as channel prefixes: a block with k hidden channels uses the first k
+output channels of the expand conv, the first k depthwise filters and the first k input
+channels of the projection; a stage (or the stem) of width w uses the first w output
+channels of its convs, and the next layer the first w of its inputs. Kernel size is elastic in the depthwise
 conv: a small kernel is the centre of the largest one, optionally passed through the
 kernel transformation of Cai et al. 2020 (Once-for-All, Sec. 3.2): one small learned
 linear map per kernel size, shared by all channels and initialised to identity.
@@ -16,19 +17,21 @@ from torch import nn
 from tightfit.model.arithmetic import squeeze_channels
 
 
-class ElasticPointwise(nn.Module):
-    """1x1 conv without bias; in/out channels taken as prefixes of the full weight."""
+class ElasticConv(nn.Module):
+    """Dense conv without bias (1x1 by default); in/out channels taken as prefixes of the full weight."""
 
-    def __init__(self, in_channels: int, out_channels: int):
+    def __init__(self, in_channels: int, out_channels: int, kernel: int = 1, stride: int = 1):
         super().__init__()
-        self.weight = nn.Parameter(torch.empty(out_channels, in_channels, 1, 1))
+        self.stride = stride
+        self.weight = nn.Parameter(torch.empty(out_channels, in_channels, kernel, kernel))
         nn.init.kaiming_normal_(self.weight, mode="fan_out")
 
     def active_weight(self, in_channels: int, out_channels: int) -> torch.Tensor:
         return self.weight[:out_channels, :in_channels]
 
     def forward(self, x: torch.Tensor, out_channels: int) -> torch.Tensor:
-        return F.conv2d(x, self.active_weight(x.shape[1], out_channels))
+        k = self.weight.shape[-1]
+        return F.conv2d(x, self.active_weight(x.shape[1], out_channels), stride=self.stride, padding=k // 2)
 
 
 class ElasticDepthwise(nn.Module):

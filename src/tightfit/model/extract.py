@@ -13,7 +13,7 @@ from torch.utils.flop_counter import FlopCounterMode
 from tightfit.model.arithmetic import hidden_channels, squeeze_channels
 from tightfit.model.elastic import ElasticSqueezeExcite
 from tightfit.model.space import Subnet
-from tightfit.model.supernet import ElasticInvertedResidual, Supernet, act_layer
+from tightfit.model.supernet import ElasticConvBN, ElasticInvertedResidual, Supernet
 
 
 class SqueezeExcite(nn.Module):
@@ -79,34 +79,54 @@ def _squeeze_excite(src: ElasticSqueezeExcite, chs: int) -> SqueezeExcite:
     return se
 
 
-def extract_block(b: ElasticInvertedResidual, expansion: float, kernel: int) -> InvertedResidual:
-    mid = hidden_channels(b.in_channels, expansion)
+@torch.no_grad()
+def extract_block(b: ElasticInvertedResidual, expansion: float, kernel: int, in_channels: int | None = None,
+                  out_channels: int | None = None) -> InvertedResidual:
+    """The block at these choices; widths default to the widest (the block's full weights)."""
+    chs_in = b.in_channels if in_channels is None else in_channels
+    chs_out = b.out_channels if out_channels is None else out_channels
+    mid = hidden_channels(chs_in, expansion)
     act = type(b.act)
     layers: list[nn.Module] = []
     if b.has_expand:
-        layers += [nn.Sequential(_conv(b.expand.active_weight(b.in_channels, mid)), _bn(b.bn1, mid), act())]
+        layers += [nn.Sequential(_conv(b.expand.active_weight(chs_in, mid)), _bn(b.bn1, mid), act())]
     layers += [nn.Sequential(_conv(b.dw.active_weight(mid, kernel), b.stride, groups=mid), _bn(b.bn2, mid), act())]
     if b.se is not None:
         layers.append(_squeeze_excite(b.se, mid))
-    layers += [_conv(b.project.active_weight(mid, b.out_channels)), _bn(b.bn3, b.out_channels)]
-    return InvertedResidual(nn.Sequential(*layers), b.use_skip)
+    layers += [_conv(b.project.active_weight(mid, chs_out)), _bn(b.bn3, chs_out)]
+    return InvertedResidual(nn.Sequential(*layers), b.stride == 1 and chs_in == chs_out)
+
+
+@torch.no_grad()
+def extract_conv_bn(src: ElasticConvBN, in_channels: int, out_channels: int) -> nn.Sequential:
+    """Stem or head conv at these widths: conv → BatchNorm → activation."""
+    conv = _conv(src.conv.active_weight(in_channels, out_channels), src.conv.stride)
+    return nn.Sequential(conv, _bn(src.bn, out_channels), type(src.act)())
+
+
+@torch.no_grad()
+def extract_classifier(supernet: Supernet, in_features: int) -> nn.Sequential:
+    """Dropout → linear on the first ``in_features`` inputs."""
+    lin = nn.Linear(in_features, supernet.classifier.out_features)
+    lin.weight.data.copy_(supernet.classifier.weight[:, :in_features])
+    lin.bias.data.copy_(supernet.classifier.bias)
+    return nn.Sequential(nn.Dropout(supernet.space.dropout), lin)
 
 
 @torch.no_grad()
 def extract_subnet(supernet: Supernet, subnet: Subnet) -> StaticNet:
     """Return the static network for ``subnet`` (eval mode, on the CPU, fp32)."""
-    stem_conv, stem_bn, _ = supernet.stem
-    features: list[nn.Module] = [nn.Sequential(_conv(stem_conv.weight, stem_conv.stride[0]),
-                                               _bn(stem_bn, stem_bn.num_features), act_layer(supernet.space.stem_activation)())]
-    for blocks, choice in zip(supernet.stages, subnet.stages):
-        features += [extract_block(b, e, k) for b, (e, k) in zip(blocks, choice)]
-    if isinstance(supernet.head, nn.Sequential):
-        conv, bn, _ = supernet.head
-        features.append(nn.Sequential(_conv(conv.weight), _bn(bn, bn.num_features), act_layer(supernet.space.head_activation)()))
-    lin = nn.Linear(supernet.classifier.in_features, supernet.classifier.out_features)
-    lin.weight.data.copy_(supernet.classifier.weight)
-    lin.bias.data.copy_(supernet.classifier.bias)
-    net = StaticNet(nn.Sequential(*features), nn.Sequential(nn.Dropout(supernet.space.dropout), lin))
+    widths = supernet.space.widths_of(subnet)
+    features: list[nn.Module] = [extract_conv_bn(supernet.stem, supernet.in_channels, widths[0])]
+    chs = widths[0]
+    for blocks, choice, width in zip(supernet.stages, subnet.stages, widths[1:]):
+        for b, (e, k) in zip(blocks, choice):
+            features.append(extract_block(b, e, k, chs, width))
+            chs = width
+    if isinstance(supernet.head, ElasticConvBN):
+        features.append(extract_conv_bn(supernet.head, chs, supernet.space.head_channels))
+        chs = supernet.space.head_channels
+    net = StaticNet(nn.Sequential(*features), extract_classifier(supernet, chs))
     return net.float().cpu().eval()
 
 

@@ -1,9 +1,12 @@
 """The search space: stages of inverted-residual blocks and the subnets they allow.
 
 A subnet picks one depth per stage and, for each active block, one expansion ratio
-and one depthwise kernel size. Subnets have a short text key that round-trips, e.g.
-``1:3,6:5/3:3,6:7,6:3/3:5``: each block ``expansion:kernel``, blocks within a stage
-joined by ``,``, stages by ``/`` (the coarser the boundary, the heavier the separator).
+and one depthwise kernel size; where the space has elastic width, it also picks the
+stem's and each stage's output channels. Subnets have a short text key that round-trips,
+e.g. ``1:3,6:5/3:3,6:7,6:3/3:5``: each block ``expansion:kernel``, blocks within a stage
+joined by ``,``, stages by ``/`` (the coarser the boundary, the heavier the separator);
+with elastic width the widths follow an ``@``, stem first: ``1:3/6:5,3:3@8-16-24``.
+Every character is safe in a shell word and a file name.
 """
 from __future__ import annotations
 
@@ -26,13 +29,18 @@ class BlockChoice(NamedTuple):
 
 @dataclass(frozen=True)
 class StageSpec:
-    out_channels: int
+    out_channels: int                # the widest choice: weights are sized for it
     stride: int
     depths: tuple[int, ...]          # allowed number of blocks
     expansions: tuple[float, ...]    # allowed expansion ratios (hidden = round(in_channels * ratio))
     kernels: tuple[int, ...]         # allowed depthwise kernel sizes (odd)
     activation: str = "relu6"
     squeeze_excite: bool = False     # squeeze-excite after the depthwise conv
+    widths: tuple[int, ...] = ()     # allowed output channels, each a prefix of out_channels; () = out_channels only
+
+    @property
+    def width_choices(self) -> tuple[int, ...]:
+        return self.widths or (self.out_channels,)
 
     @property
     def has_expand(self) -> bool:
@@ -49,8 +57,27 @@ class SpaceSpec:
     stem_activation: str = "relu6"
     head_activation: str = "relu6"
     dropout: float = 0.0
+    stem_widths: tuple[int, ...] = ()     # allowed stem output channels; () = stem_channels only
+
+    @property
+    def stem_choices(self) -> tuple[int, ...]:
+        return self.stem_widths or (self.stem_channels,)
+
+    def width_options(self) -> tuple[tuple[int, ...], ...]:
+        """Allowed widths of the stem, then of each stage."""
+        return (self.stem_choices,) + tuple(st.width_choices for st in self.stages)
+
+    @property
+    def elastic_width(self) -> bool:
+        """True when some width has more than one choice; only then do subnets carry widths."""
+        return any(len(w) > 1 for w in self.width_options())
+
+    def widths_of(self, subnet: "Subnet") -> tuple[int, ...]:
+        """Active output channels of the stem, then of each stage."""
+        return subnet.widths or (self.stem_channels,) + tuple(st.out_channels for st in self.stages)
 
     def stage_in_channels(self, i: int) -> int:
+        """Input channels of stage i at the widest choices (what its weights are sized for)."""
         return self.stem_channels if i == 0 else self.stages[i - 1].out_channels
 
     def size(self) -> int:
@@ -59,35 +86,47 @@ class SpaceSpec:
         for st in self.stages:
             per_block = len(st.expansions) * len(st.kernels)
             total *= sum(per_block ** d for d in st.depths)
+        for w in self.width_options():
+            total *= len(w)
         return total
+
+    def _widths(self, pick) -> tuple[int, ...]:
+        return tuple(pick(w) for w in self.width_options()) if self.elastic_width else ()
 
     def largest(self) -> "Subnet":
         return Subnet(tuple(tuple(BlockChoice(max(st.expansions), max(st.kernels)) for _ in range(max(st.depths)))
-                            for st in self.stages))
+                            for st in self.stages), self._widths(max))
 
     def smallest(self) -> "Subnet":
         return Subnet(tuple(tuple(BlockChoice(min(st.expansions), min(st.kernels)) for _ in range(min(st.depths)))
-                            for st in self.stages))
+                            for st in self.stages), self._widths(min))
 
     def middle(self) -> "Subnet":
         """The median choice everywhere: a reference point between smallest and largest."""
         def mid(xs):
             return xs[len(xs) // 2]
         return Subnet(tuple(tuple(BlockChoice(mid(st.expansions), mid(st.kernels)) for _ in range(mid(st.depths)))
-                            for st in self.stages))
+                            for st in self.stages), self._widths(mid))
 
     def sample(self, rng: random.Random) -> "Subnet":
         """Uniform over the whole space: a depth is drawn with weight equal to the
-        number of subnets it allows, then each block's choices uniformly."""
+        number of subnets it allows, then each block's choices uniformly, then each width
+        uniformly (widths multiply the count independently)."""
         stages = []
         for st in self.stages:
             per_block = len(st.expansions) * len(st.kernels)
             depth = rng.choices(st.depths, weights=[per_block ** d for d in st.depths])[0]
             stages.append(tuple(BlockChoice(rng.choice(st.expansions), rng.choice(st.kernels)) for _ in range(depth)))
-        return Subnet(tuple(stages))
+        return Subnet(tuple(stages), self._widths(rng.choice))
 
     def contains(self, subnet: "Subnet") -> bool:
         if len(subnet.stages) != len(self.stages):
+            return False
+        if self.elastic_width:
+            options = self.width_options()
+            if len(subnet.widths) != len(options) or any(w not in o for w, o in zip(subnet.widths, options)):
+                return False
+        elif subnet.widths:
             return False
         for st, blocks in zip(self.stages, subnet.stages):
             if len(blocks) not in st.depths:
@@ -100,42 +139,53 @@ class SpaceSpec:
         """Key → subnet, checked against this space (UserError if it does not belong)."""
         subnet = Subnet.from_key(key)
         if not self.contains(subnet):
-            raise UserError(f"subnet key {key!r} is not in this search space; use only the depths, expansions "
-                            f"and kernels the recipe allows, e.g. {self.smallest().to_key()!r}")
+            raise UserError(f"subnet key {key!r} is not in this search space; use only the depths, expansions, "
+                            f"kernels{' and widths' if self.elastic_width else ''} the recipe allows, "
+                            f"e.g. {self.smallest().to_key()!r}")
         return subnet
 
 
 @dataclass(frozen=True)
 class Subnet:
-    """One architecture: per stage, the choices of its active blocks."""
+    """One architecture: per stage, the choices of its active blocks; with elastic width, the
+    output channels of the stem and of each stage (empty where the space's widths are fixed)."""
     stages: tuple[tuple[BlockChoice, ...], ...]
+    widths: tuple[int, ...] = ()
 
     def __post_init__(self) -> None:
         # accept plain (expansion, kernel) pairs, store BlockChoice: equal subnets compare and hash equal
         object.__setattr__(self, "stages", tuple(tuple(BlockChoice(*b) for b in s) for s in self.stages))
+        object.__setattr__(self, "widths", tuple(int(w) for w in self.widths))
 
     @property
     def depths(self) -> tuple[int, ...]:
         return tuple(len(s) for s in self.stages)
 
     def to_key(self) -> str:
-        return "/".join(",".join(f"{e:g}:{k}" for e, k in blocks) for blocks in self.stages)
+        blocks = "/".join(",".join(f"{e:g}:{k}" for e, k in blocks) for blocks in self.stages)
+        return blocks + ("@" + "-".join(map(str, self.widths)) if self.widths else "")
 
     @classmethod
     def from_key(cls, key: str) -> "Subnet":
         try:
+            blocks_txt, _, widths_txt = key.partition("@")
+            widths = tuple(int(w) for w in widths_txt.split("-")) if widths_txt else ()
+            if key.endswith("@") or any(w <= 0 for w in widths):
+                raise ValueError(key)
             stages = []
-            for part in key.split("/"):
+            for part in blocks_txt.split("/"):
                 blocks = []
                 for b in part.split(","):
                     e_txt, k_txt = b.split(":")
                     e = float(e_txt)
                     blocks.append(BlockChoice(int(e) if e.is_integer() else e, int(k_txt)))
                 stages.append(tuple(blocks))
-            return cls(tuple(stages))
+            return cls(tuple(stages), widths)
         except ValueError:
             raise UserError(f"malformed subnet key {key!r}: expected blocks 'expansion:kernel' joined by ',' "
-                            "within a stage and stages joined by '/', e.g. '1:3/6:5,3:3/6:3'") from None
+                            "within a stage and stages joined by '/', e.g. '1:3/6:5,3:3/6:3', then, where widths "
+                            "are elastic, '@' and the stem's and stages' widths joined by '-', e.g. "
+                            "'1:3/6:5,3:3/6:3@8-8-16-24'") from None
 
     def __str__(self) -> str:
         return self.to_key()

@@ -32,7 +32,7 @@ class EvolutionSettings:
     population: int = 16          # P: size of the aging queue
     sample_size: int = 6          # S: tournament size (Real et al. 2019 use S < P)
     evaluations: int = 96         # distinct candidates evaluated, initial population included
-    change_probability: float = 0.1      # per decision: a stage's depth, a block's expansion, a block's kernel
+    change_probability: float = 0.1      # per decision: a stage's depth, a block's expansion or kernel, a width
     seed: int = 0
     sample_tries: int = 300       # rejection-sampling attempts before shrinking random draws instead
     redraws: int = 100            # mutation attempts before giving up on a parent this cycle
@@ -59,7 +59,8 @@ def fastest_check(space: SpaceSpec, latency: Latency, budget_ms: float, device: 
 def shrink(space: SpaceSpec, subnet: Subnet, rng: random.Random) -> Subnet:
     """One random step towards the smallest subnet: drop a block or lower one choice."""
     stages = [list(b) for b in subnet.stages]
-    moves = []
+    widths = list(subnet.widths)
+    moves = [("width", i, -1) for i, (w, options) in enumerate(zip(widths, space.width_options())) if w > min(options)]
     for i, (st, blocks) in enumerate(zip(space.stages, stages)):
         if len(blocks) > min(st.depths):
             moves.append(("depth", i, -1))
@@ -71,6 +72,9 @@ def shrink(space: SpaceSpec, subnet: Subnet, rng: random.Random) -> Subnet:
     if not moves:
         return subnet
     what, i, j = rng.choice(moves)
+    if what == "width":
+        widths[i] = max(x for x in space.width_options()[i] if x < widths[i])
+        return Subnet(subnet.stages, tuple(widths))
     st = space.stages[i]
     if what == "depth":
         stages[i] = stages[i][:max(d for d in st.depths if d < len(stages[i]))]
@@ -80,7 +84,7 @@ def shrink(space: SpaceSpec, subnet: Subnet, rng: random.Random) -> Subnet:
     else:
         e, k = stages[i][j]
         stages[i][j] = (e, max(x for x in st.kernels if x < k))
-    return Subnet(tuple(tuple(b) for b in stages))
+    return Subnet(tuple(tuple(b) for b in stages), subnet.widths)
 
 
 def sample_within(space: SpaceSpec, rng: random.Random, latency: Latency, budget_ms: float,
@@ -105,8 +109,8 @@ def sample_within(space: SpaceSpec, rng: random.Random, latency: Latency, budget
 
 
 def mutate(space: SpaceSpec, subnet: Subnet, rng: random.Random, prob: float) -> Subnet:
-    """Change each stage's depth, each block's expansion and each block's kernel with
-    probability ``prob``; at least one decision always changes."""
+    """Change each stage's depth, each block's expansion and kernel, and each width (stem and
+    stages, where elastic) with probability ``prob``; at least one decision always changes."""
     while True:
         stages = []
         for st, blocks in zip(space.stages, subnet.stages):
@@ -123,7 +127,9 @@ def mutate(space: SpaceSpec, subnet: Subnet, rng: random.Random, prob: float) ->
                     k = rng.choice([x for x in st.kernels if x != k])
                 blocks[j] = (e, k)
             stages.append(tuple(blocks))
-        child = Subnet(tuple(stages))
+        widths = tuple(rng.choice([x for x in options if x != w]) if len(options) > 1 and rng.random() < prob else w
+                       for w, options in zip(subnet.widths, space.width_options()))
+        child = Subnet(tuple(stages), widths)
         if child != subnet or space.size() == 1:
             return child
 

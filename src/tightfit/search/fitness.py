@@ -27,7 +27,7 @@ from tightfit.train.rundir import TrainedRun, checkpoint_path
 
 
 def fixed_stages(space: SpaceSpec) -> int:
-    """Leading stages with a single choice everywhere: every subnet shares them."""
+    """Leading stages with a single depth, expansion and kernel: subnets share them up to width."""
     n = 0
     while n < len(space.stages) and all(len(v) == 1 for v in (space.stages[n].depths, space.stages[n].expansions,
                                                                 space.stages[n].kernels)):
@@ -48,28 +48,25 @@ def _bn_state(bns: list[nn.BatchNorm2d]) -> list[tuple]:
     return [(bn, bn.running_mean.clone(), bn.running_var.clone(), bn.num_batches_tracked.clone()) for bn in bns]
 
 
+Cached = Optional[tuple[list[torch.Tensor], list[tuple]]]  # (outputs per calibration batch, BN statistics)
+
+
 class Recalibrator:
     """BN recalibration (tightfit.recalibrate.recalibrate_bn) that reuses what subnets share.
 
     In training mode a layer's output and batch statistics depend only on the layers before
-    it, so the outputs of the stem and fixed stages are computed once, and the outputs of
-    the first variable block once per (expansion, kernel) choice; only the rest is re-run.
-    Cached outputs are capped at ``room_bytes`` (big images): beyond it, plain recalibration."""
+    it, so the outputs of the stem and fixed stages are computed once per choice of their
+    widths, and the outputs of the first variable block once per (its input, its expansion,
+    kernel and width); only the rest is re-run. Cached outputs are capped at ``room_bytes``
+    (big images): beyond it, plain recalibration."""
 
     def __init__(self, supernet: Supernet, calib: list[torch.Tensor], room_bytes: int = 1 << 30):
         self.sn, self.calib, self.n, self.room_bytes = supernet, calib, fixed_stages(supernet.space), room_bytes
-        prefix = torch.nn.Sequential(supernet.stem, *[b for blocks in supernet.stages[:self.n] for b in blocks])
-        was_training = supernet.training
-        with preserved_bn_stats(prefix), torch.no_grad():
-            recalibrate_bn(prefix, calib)
-            self.prefix_stats = _bn_state(batch_norms(prefix))
-            prefix.train()
-            first = prefix(calib[0])  # (B, C, H, W) after the shared layers
-            self.inputs = [first] + [prefix(x) for x in calib[1:]] if self._take(first) else None
-        supernet.train(was_training)
-        self.variants: dict[tuple, tuple[list[torch.Tensor], list[tuple]]] = {}
+        self.prefix = torch.nn.Sequential(supernet.stem, *[b for blocks in supernet.stages[:self.n] for b in blocks])
+        self.prefixes: dict[tuple, Cached] = {}
+        self.variants: dict[tuple, Cached] = {}
         self.first = supernet.stages[self.n][0] if self.n < len(supernet.stages) else None
-        prefix_ids = {id(bn) for bn, *_ in self.prefix_stats}
+        prefix_ids = {id(bn) for bn in batch_norms(self.prefix)}
         self.rest = [bn for bn in batch_norms(supernet) if id(bn) not in prefix_ids]
         self.first_ids = {id(bn) for bn in batch_norms(self.first)} if self.first is not None else set()
 
@@ -81,28 +78,47 @@ class Recalibrator:
         self.room_bytes -= size
         return True
 
-    def _first_block(self) -> Optional[tuple[list[torch.Tensor], list[tuple]]]:
+    def _run(self, module: nn.Module, inputs: list[torch.Tensor]) -> tuple[list[torch.Tensor], list[tuple]]:
+        """Outputs of ``module`` in training mode and its exact BN statistics over ``inputs``; BN left as it was."""
+        bns = batch_norms(module)
+        was_training = self.sn.training
+        with preserved_bn_stats(module), torch.no_grad():
+            saved = _cumulative(bns)
+            module.train()
+            outs = [module(h) for h in inputs]
+            for bn, m in zip(bns, saved):
+                bn.momentum = m
+            stats = _bn_state(bns)
+        self.sn.train(was_training)
+        return outs, stats
+
+    def _prefix_key(self) -> tuple:
+        return (self.sn.stem.width,) + tuple(blocks[0].width for blocks in self.sn.stages[:self.n])
+
+    def _shared(self) -> Cached:
+        """Outputs and statistics of the stem and fixed stages at their current widths (cached)."""
+        key = self._prefix_key()
+        if key not in self.prefixes:
+            outs, stats = self._run(self.prefix, self.calib)
+            self.prefixes[key] = (outs, stats) if self._take(outs[0]) else None
+        return self.prefixes[key]
+
+    def _first_block(self, inputs: list[torch.Tensor]) -> Cached:
         """Outputs and statistics of the first variable block for its current choice (cached)."""
-        key = (self.first.expansion, self.first.kernel)
+        key = self._prefix_key() + (self.first.expansion, self.first.kernel, self.first.width)
         if key not in self.variants:
-            bns = batch_norms(self.first)
-            with preserved_bn_stats(self.first), torch.no_grad():
-                saved, was_training = _cumulative(bns), self.first.training
-                self.first.train()
-                outs = [self.first(h) for h in self.inputs]
-                self.first.train(was_training)
-                for bn, m in zip(bns, saved):
-                    bn.momentum = m
-                stats = _bn_state(bns)
+            outs, stats = self._run(self.first, inputs)
             self.variants[key] = (outs, stats) if self._take(outs[0]) else None
         return self.variants[key]
 
     def __call__(self) -> None:
         """Recalibrate the active subnet's BatchNorm statistics (call inside preserved_bn_stats)."""
-        if self.inputs is None:
+        shared = self._shared()
+        if shared is None:
             return recalibrate_bn(self.sn, self.calib)
-        cached = self._first_block() if self.first is not None else None
-        hs, keep = (cached[0], self.prefix_stats + cached[1]) if cached else (self.inputs, self.prefix_stats)
+        inputs, prefix_stats = shared
+        cached = self._first_block(inputs) if self.first is not None else None
+        hs, keep = (cached[0], prefix_stats + cached[1]) if cached else (inputs, prefix_stats)
         rest = [bn for bn in self.rest if not (cached and id(bn) in self.first_ids)]
         saved = _cumulative(rest)
         was_training = self.sn.training

@@ -11,7 +11,7 @@ from __future__ import annotations
 from dataclasses import dataclass, replace
 
 from tightfit.recipe import Recipe
-from tightfit.model.space import SpaceSpec, StageSpec
+from tightfit.model.space import BlockChoice, SpaceSpec, StageSpec, Subnet
 
 
 def make_divisible(value: float, divisor: int = 8, minimum: int = 8) -> int:
@@ -39,9 +39,20 @@ def _depth(stage: StageSpec, which: str) -> int:
 def member_space(space: SpaceSpec, member: Member) -> SpaceSpec:
     """A one-subnet space: the largest block choice per stage, scaled channels and depth."""
     stages = tuple(replace(st, out_channels=make_divisible(st.out_channels * member.width), depths=(_depth(st, member.depth),),
-                           expansions=(max(st.expansions),), kernels=(max(st.kernels),)) for st in space.stages)
+                           expansions=(max(st.expansions),), kernels=(max(st.kernels),), widths=()) for st in space.stages)
     head = make_divisible(space.head_channels * member.width) if space.head_channels else 0
-    return replace(space, stem_channels=make_divisible(space.stem_channels * member.width), stages=stages, head_channels=head)
+    return replace(space, stem_channels=make_divisible(space.stem_channels * member.width), stages=stages,
+                   head_channels=head, stem_widths=())
+
+
+def member_subnet(space: SpaceSpec, member: Member) -> Subnet:
+    """The member as a subnet of ``space`` (the same layers, so the same latency entries); a
+    space without the member's widths cannot hold it (check with ``space.contains``)."""
+    own = member_space(space, member)
+    stages = tuple(tuple(BlockChoice(max(st.expansions), max(st.kernels)) for _ in range(_depth(st, member.depth)))
+                   for st in space.stages)
+    widths = (own.stem_channels,) + tuple(st.out_channels for st in own.stages)
+    return Subnet(stages, widths if space.elastic_width else ())
 
 
 def member_recipe(recipe: Recipe, member: Member) -> Recipe:
@@ -49,5 +60,7 @@ def member_recipe(recipe: Recipe, member: Member) -> Recipe:
     return replace(recipe, name=f"{recipe.name}-{member.name}", space=member_space(recipe.space, member))
 
 
-DEFAULT_FAMILY = (Member("w1.0-max", 1.0, "max"), Member("w0.75-max", 0.75, "max"), Member("w0.5-mid", 0.5, "mid"),
-                  Member("w0.5-min", 0.5, "min"), Member("w0.35-min", 0.35, "min"))
+# Three width multipliers (as MobileNetV2's 1.0 / 0.75 / 0.5, Sandler et al. 2018) by depth: the widths
+# recipes/fashion-mnist.toml offers, so every member is also a subnet of its space.
+DEFAULT_FAMILY = (Member("w1.0-max", 1.0, "max"), Member("w0.75-max", 0.75, "max"), Member("w0.75-mid", 0.75, "mid"),
+                  Member("w0.5-mid", 0.5, "mid"), Member("w0.5-min", 0.5, "min"))
