@@ -18,8 +18,8 @@ of one setting show the noise level.
 With --json, every finished run is merged into that file at once (an existing label is
 replaced), so a long screen can be split over several invocations (--no-base skips the recipe
 as written). --finetune STEPS[,STEPS...] also fine-tunes the middle and smallest subnets of the
-as-written run from their inherited weights, distilling from its largest, and reports what those
-steps buy (a measurement only; the product does not fine-tune).
+as-written run (or of --finetune-run DIR) from their inherited weights, distilling from its
+largest, and reports what those steps buy (a measurement only; the product does not fine-tune).
 """
 from __future__ import annotations
 
@@ -147,6 +147,52 @@ def merge_json(path: Path, label: str, record: dict, meta: dict) -> None:
     path.write_text(json.dumps(doc, indent=1) + "\n")
 
 
+COLUMNS = ("largest", "middle", "smallest", "mean_random")
+
+
+def _figures(rec: dict) -> dict[str, float]:
+    return {**rec["acc"], **({"mean_random": rec["mean_random"]} if "mean_random" in rec else {})}
+
+
+def summarise(doc: dict, baselines: tuple[str, ...] = ("as written", "seed=1")) -> list[dict]:
+    """Each run against the mean of the baseline seeds, in points, with a verdict against their noise.
+
+    Noise: sigma, one run's standard deviation, from the two seeds' differences d over the four
+    columns (sigma^2 = mean(d^2) / 2). A run minus the two-seed mean has sd sigma * sqrt(1.5);
+    an effect is clear beyond 2 * sigma * sqrt(1.5) ("threshold"). Verdict on the mean of the four
+    columns: "adopt" if it is above the threshold and no column is below -threshold, "no" if it is
+    below -threshold, "unclear" otherwise. Alone runs show the gap their subnet leaves."""
+    runs = doc["runs"]
+    base = [_figures(runs[b]) for b in baselines]
+    mean = {c: sum(b[c] for b in base) / len(base) for c in COLUMNS}
+    sigma = math.sqrt(sum((base[0][c] - base[1][c]) ** 2 for c in COLUMNS) / len(COLUMNS) / 2)
+    threshold = 2 * sigma * math.sqrt(1.5)
+    base_s = sum(runs[b]["train_s"] for b in baselines) / len(baselines)
+    rows = []
+    for label, rec in runs.items():
+        fig = _figures(rec)
+        delta = {c: fig[c] - mean[c] for c in COLUMNS if c in fig}
+        row = {"label": label, "delta": delta, "train_s": rec["train_s"], "delta_s": rec["train_s"] - base_s,
+               "sigma": sigma, "threshold": threshold}
+        if len(delta) == len(COLUMNS) and label not in baselines:
+            avg = sum(delta.values()) / len(delta)
+            row["mean_delta"] = avg
+            row["verdict"] = ("adopt" if avg > threshold and min(delta.values()) > -threshold
+                              else "no" if avg < -threshold else "unclear")
+        rows.append(row)
+    return rows
+
+
+def print_summary(doc: dict) -> None:
+    rows = summarise(doc)
+    print(f"noise: sigma {rows[0]['sigma']:.2f} points per run, threshold {rows[0]['threshold']:.2f}")
+    print(f"{'':<40} " + " ".join(f"{c:>11}" for c in COLUMNS) + f" {'mean':>7} {'train s':>8} {'d s':>6}  verdict")
+    for r in rows:
+        cells = " ".join(f"{r['delta'][c]:>+11.2f}" if c in r["delta"] else f"{'':>11}" for c in COLUMNS)
+        mean = f"{r['mean_delta']:>+7.2f}" if "mean_delta" in r else f"{'':>7}"
+        print(f"{r['label'][:40]:<40} {cells} {mean} {r['train_s']:>8.0f} {r['delta_s']:>+6.0f}  {r.get('verdict', '')}")
+
+
 def print_table(results: dict) -> None:
     print(f"{'':<32} {'smallest':>9} {'middle':>9} {'largest':>9} {'mean rand':>9} {'train s':>8} {'CPU s':>8}")
     for label, r in results.items():
@@ -159,20 +205,28 @@ def print_table(results: dict) -> None:
 # long: the argument list and the three kinds of run (variants, alone, fine-tune) read best in one place
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    ap.add_argument("recipe")
+    ap.add_argument("recipe", nargs="?", help="the recipe (not needed with --summarise)")
+    ap.add_argument("--summarise", default="", metavar="JSON",
+                    help="print a --json file's runs as differences from the two-seed baseline and exit")
     ap.add_argument("--variant", action="append", default=[], help="[train] changes, e.g. lr=0.025,distill=false")
     ap.add_argument("--epochs", type=float, default=None, help="override train.epochs for every run")
     ap.add_argument("--max-train-images", type=int, default=None, help="override data.max_train_images")
     ap.add_argument("--alone", nargs="?", const="largest", default="",
                     help="also train these subnets by themselves (comma list of largest, middle, smallest; default largest)")
     ap.add_argument("--no-base", action="store_true", help="skip the recipe as written")
-    ap.add_argument("--finetune", default="", help="fine-tune steps, e.g. 50,200 (needs the as-written run)")
+    ap.add_argument("--finetune", default="", help="fine-tune steps, e.g. 50,200, from the as-written run")
+    ap.add_argument("--finetune-run", default="", help="the trained run to fine-tune from (default: this invocation's as-written run)")
     ap.add_argument("--finetune-lr", type=float, default=0.01)
     ap.add_argument("--random", type=int, default=8, help="fixed random subnets to average (default 8)")
     ap.add_argument("--threads", type=int, default=1, help="torch threads (default 1)")
     ap.add_argument("--json", default="", help="merge every finished run into this file")
     ap.add_argument("--out", default="runs/train-settings")
     args = ap.parse_args(argv)
+    if args.summarise:
+        print_summary(json.loads(Path(args.summarise).read_text()))
+        return 0
+    if not args.recipe:
+        ap.error("a recipe is needed (or --summarise JSON)")
     torch.set_num_threads(args.threads)
     variants = {} if args.no_base else {"as written": {}}
     variants.update({v: parse_variant(v) for v in args.variant})
@@ -211,9 +265,9 @@ def main(argv: list[str] | None = None) -> int:
         record(f"{which} alone", {"run": str(out), "train_s": wall, "train_cpu_s": cpu,
                                   "acc": evaluate(out, ds, {which: alone.space.largest()}, base.seed)})
     for steps in [int(s) for s in filter(None, args.finetune.split(","))]:
-        if "as written" not in results:
-            raise SystemExit("error: --finetune needs the as-written run in this invocation (drop --no-base)")
-        run_dir = Path(results["as written"]["run"])
+        if not args.finetune_run and "as written" not in results:
+            raise SystemExit("error: --finetune needs --finetune-run or the as-written run (drop --no-base)")
+        run_dir = Path(args.finetune_run or results["as written"]["run"])
         for which in ("middle", "smallest"):
             ft = finetune(run_dir, ds, subnets[which], steps, base.seed, args.finetune_lr)
             record(f"{which} fine-tuned {steps} steps", {"run": str(run_dir), "train_s": ft["seconds"],
