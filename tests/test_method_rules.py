@@ -49,6 +49,24 @@ def test_sandwich_gradient_is_label_loss_of_largest_plus_distillation_of_the_oth
         torch.testing.assert_close(got[n], want[n], rtol=1e-4, atol=1e-6, msg=n)
 
 
+def test_kl_distillation_with_temperature_is_the_hand_computed_divergence():
+    # Hinton et al. 2015: T^2 * sum_c p_c (log p_c - log q_c), p = softmax(teacher / T), q = softmax(student / T).
+    import math
+    from tightfit.train.sandwich import distill_loss
+    student, teacher = [1.0, 0.0, -1.0], [2.0, 0.5, 0.0]
+    T = 2.0
+    def softmax(v):
+        e = [math.exp(a / T) for a in v]
+        return [a / sum(e) for a in e]
+    p, q = softmax(teacher), softmax(student)
+    want = T * T * sum(pc * (math.log(pc) - math.log(qc)) for pc, qc in zip(p, q))
+    s, t = torch.tensor([student]), torch.tensor([teacher])
+    assert distill_loss(s, t, "kl", T).item() == pytest.approx(want, rel=1e-5)
+    cross = T * T * -sum(pc * math.log(qc) for pc, qc in zip(p, q))
+    assert distill_loss(s, t, "soft_ce", T).item() == pytest.approx(cross, rel=1e-5)
+    assert distill_loss(t, t, "kl", T).item() == pytest.approx(0.0, abs=1e-6)
+
+
 def test_sandwich_draws_depend_on_seed_and_step_and_differ_within_a_step():
     # Common practice for resumable training: the draw is a function of (seed, step) only.
     space = tiny_recipe().space

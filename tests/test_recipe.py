@@ -57,6 +57,13 @@ BAD = [
     ("data.channels", 2, "1 (grey) or 3"),
     ("data.val_fraction", 0.95, "[0, 0.9)"),
     ("space.stem_stride", 4, "1 or 2"),
+    ("train.lr_end", 1.0, "[0, 1)"),
+    ("train.largest_dropout", -0.1, "[0, 1)"),
+    ("train.random_macs_target", 1.5, "[0, 1)"),
+    ("train.largest_only_epochs", 1.0, "below train.epochs"),
+    ("train.distill_loss", "mse", "soft_ce"),
+    ("train.distill_temperature", 0.0, "> 0"),
+    ("train.random_candidates", 0, ">= 1"),
 ]
 
 
@@ -110,3 +117,19 @@ def test_random_invalid_stages_raise_user_error_only(garbage):
         parse_recipe(doc)
     except UserError as e:
         assert "\n" not in str(e)
+
+
+def test_training_levers_at_their_defaults_keep_the_recipe_hash():
+    # Checkpoints, caches and manifests are keyed by Recipe.hash(): recipes that do not use the
+    # training levers keep the hash they had before the levers existed; setting one changes it.
+    import dataclasses
+    import hashlib
+    import json
+    recipe = parse_recipe(TINY)
+    d = recipe.to_dict()
+    for key in ("zero_init_residual", "largest_dropout", "lr_end", "largest_only_epochs", "distill_loss",
+                "distill_temperature", "random_macs_target", "random_candidates"):
+        del d["train"][key]
+    assert recipe.hash() == hashlib.sha256(json.dumps(d, sort_keys=True).encode()).hexdigest()[:16]
+    changed = dataclasses.replace(recipe, train=dataclasses.replace(recipe.train, lr_end=0.05))
+    assert changed.hash() != recipe.hash()

@@ -6,8 +6,9 @@ import torch
 from tightfit.train.checkpoint import load_checkpoint, save_checkpoint
 from tightfit.data.dataset import load_dataset
 from tightfit.errors import Interrupted, UserError
-from tightfit.train.loop import lr_at, sandwich, train
-from helpers import tiny_recipe
+from tightfit.train.loop import train
+from tightfit.train.sandwich import lr_at, macs_distance, sandwich, sandwich_backward, step_subnets
+from helpers import TINY, tiny_recipe
 
 
 def test_sandwich_is_largest_smallest_then_random_and_seeded_by_step():
@@ -25,6 +26,86 @@ def test_schedule_warms_up_then_follows_cosine():
     assert lr_at(9, 100, 10, 1.0) == pytest.approx(1.0)
     assert lr_at(55, 100, 10, 1.0) == pytest.approx(0.5 * (1 + math.cos(math.pi * 45 / 90)))
     assert lr_at(100, 100, 10, 1.0) == pytest.approx(0.0)
+
+
+def test_schedule_can_end_at_a_fraction_of_the_base_lr():
+    # Loshchilov & Hutter 2017, Eq. 5 with eta_min = 0.05 * eta_max (a floor as in Yu et al. 2020).
+    import math
+    assert lr_at(100, 100, 10, 2.0, end=0.05) == pytest.approx(0.1)
+    assert lr_at(55, 100, 10, 2.0, end=0.05) == pytest.approx(0.1 + 0.5 * 1.9 * (1 + math.cos(math.pi * 45 / 90)))
+    assert lr_at(10, 100, 10, 2.0, end=0.05) == pytest.approx(2.0)
+    assert lr_at(3, 100, 10, 2.0, end=0.05) == pytest.approx(0.8)   # the warm-up is unchanged
+
+
+def test_zero_init_residual_zeroes_bn3_gamma_of_exactly_the_skip_blocks():
+    # Goyal et al. 2017 (Sec. 5.1): gamma = 0 in the last BN of each residual branch, and nowhere else.
+    # Stage 0 here widens 8 -> 12 at stride 1: no skip, so it must keep gamma = 1.
+    from tightfit.model.supernet import build_supernet
+    from tightfit.recipe import parse_recipe
+    from tightfit.train.initialise import zero_init_residual
+    doc = {**TINY, "space": {**TINY["space"], "stage": [{**TINY["space"]["stage"][0], "channels": 12},
+                                                         *TINY["space"]["stage"][1:]]}}
+    model = build_supernet(parse_recipe(doc), 5)
+    assert zero_init_residual(model) == 3
+    zeroed = {(i, j) for i, blocks in enumerate(model.stages) for j, b in enumerate(blocks)
+              if torch.count_nonzero(b.bn3.weight) == 0}
+    assert zeroed == {(1, 1), (2, 1), (2, 2)}
+    for i, blocks in enumerate(model.stages):
+        for j, b in enumerate(blocks):
+            assert torch.equal(b.bn2.weight, torch.ones_like(b.bn2.weight))
+            if (i, j) not in zeroed:
+                assert torch.equal(b.bn3.weight, torch.ones_like(b.bn3.weight))
+    x = torch.randn(2, 3, 16, 16)
+    model.eval()
+    block = model.stages[1][1]
+    assert torch.equal(block(x.new_ones(2, 12, 8, 8)), x.new_ones(2, 12, 8, 8))  # starts as the identity
+
+
+def test_largest_only_epochs_train_the_largest_alone_then_the_full_sandwich():
+    recipe = tiny_recipe(epochs=3, largest_only_epochs=1.0, random_subnets=2)
+    space = recipe.space
+    assert step_subnets(recipe, 0, 10) == [space.largest()]
+    assert step_subnets(recipe, 9, 10) == [space.largest()]
+    full = step_subnets(recipe, 10, 10)
+    assert full == sandwich(space, 10, recipe.seed, 2) and len(full) == 4
+    assert step_subnets(tiny_recipe(random_subnets=2), 0, 10) == sandwich(space, 0, 0, 2)  # default: no warm-up
+
+
+def test_macs_target_draws_the_nearest_of_the_candidates():
+    # Each random subnet is the candidate (of `random_candidates` uniform draws) nearest the target fraction.
+    import random
+    from tightfit.model.arithmetic import architecture_size
+    recipe = tiny_recipe(random_subnets=3, random_macs_target=0.3, random_candidates=5)
+    space = recipe.space
+    macs = lambda s: architecture_size(space, s, 3, 16, 12)[1]
+    lo, hi = macs(space.smallest()), macs(space.largest())
+    distance = macs_distance(recipe, 12, 0.3)
+    assert distance(space.smallest()) == pytest.approx(0.3) and distance(space.largest()) == pytest.approx(0.7)
+    got = step_subnets(recipe, 4, 10, distance)
+    rng = random.Random(recipe.seed * 7_919 + 4)
+    for s in got[2:]:
+        draws = [space.sample(rng) for _ in range(5)]
+        assert s == min(draws, key=lambda d: abs((macs(d) - lo) / (hi - lo) - 0.3))
+    uniform = [s for st in range(40) for s in sandwich(space, st, 0, 3)[2:]]
+    biased = [s for st in range(40) for s in sandwich(space, st, 0, 3, distance=distance, candidates=5)[2:]]
+    assert sum(map(distance, biased)) < 0.5 * sum(map(distance, uniform))
+
+
+def test_largest_dropout_applies_to_the_largest_pass_only():
+    # Yu et al. 2020: regularise the largest only; the other passes see no dropout at all.
+    from tightfit.model.supernet import build_supernet
+    recipe = tiny_recipe(largest_dropout=0.5)
+    space = recipe.space
+    gen = torch.Generator().manual_seed(0)
+    x, y = torch.randn(8, 3, 16, 16, generator=gen), torch.randint(0, 5, (8,), generator=gen)
+    model = build_supernet(recipe, 5)
+    model.train()
+    seen = []
+    model.dropout.register_forward_hook(lambda m, i, o: seen.append((m.p, torch.equal(i[0], o))))
+    sandwich_backward(model, x, y, [space.largest(), space.smallest(), space.largest()], recipe.train)
+    assert seen[0] == (0.5, False)                   # the largest: dropout active
+    assert seen[1:] == [(0.0, True), (0.0, True)]    # the others pass straight through
+    assert model.dropout.p == space.dropout          # left as built
 
 
 def _weights(run):

@@ -18,6 +18,7 @@ from tightfit.model.space import ACTIVATIONS, SpaceSpec, StageSpec
 DATA_SOURCES = ("builtin", "folder", "fashion-mnist")
 OPTIMIZERS = ("sgd", "adamw")
 KERNEL_MODES = ("transform", "centre")
+DISTILL_LOSSES = ("soft_ce", "kl")
 
 
 @dataclass(frozen=True)
@@ -51,6 +52,22 @@ class TrainConfig:
     recalibration_batches: int = 20
     checkpoint_every: int = 0      # steps; 0 = only at the end of every epoch
     eval_batch_size: int = 512
+    # Training levers for short schedules; each default is the behaviour before they existed.
+    zero_init_residual: bool = False   # last BN gamma of every skip block starts at 0 (Goyal et al. 2017)
+    largest_dropout: float = 0.0   # > 0: dropout before the classifier in the largest's pass only, none in the others
+    lr_end: float = 0.0            # cosine ends at lr * lr_end, not zero (Yu et al. 2020)
+    largest_only_epochs: float = 0.0   # first epochs train the largest subnet alone
+    distill_loss: str = "soft_ce"  # "soft_ce" (soft-label cross-entropy) or "kl" (Hinton et al. 2015)
+    distill_temperature: float = 1.0   # softens teacher and student; the loss is scaled by T^2
+    random_macs_target: float = 0.0    # > 0: each random subnet is the draw nearest this MACs fraction
+    random_candidates: int = 4     # draws per random subnet when random_macs_target > 0
+
+
+# Added after recipes, checkpoints and caches were keyed by Recipe.hash(): left out of the hash while
+# at their defaults, so every recipe that does not use them keeps its hash.
+_LEVERS = ("zero_init_residual", "largest_dropout", "lr_end", "largest_only_epochs", "distill_loss",
+           "distill_temperature", "random_macs_target", "random_candidates")
+_LEVER_DEFAULTS = {f.name: f.default for f in fields(TrainConfig) if f.name in _LEVERS}
 
 
 @dataclass(frozen=True)
@@ -65,7 +82,9 @@ class Recipe:
         return asdict(self)
 
     def hash(self) -> str:
-        blob = json.dumps(self.to_dict(), sort_keys=True).encode()
+        d = self.to_dict()
+        d["train"] = {k: v for k, v in d["train"].items() if k not in _LEVER_DEFAULTS or v != _LEVER_DEFAULTS[k]}
+        blob = json.dumps(d, sort_keys=True).encode()
         return hashlib.sha256(blob).hexdigest()[:16]
 
 
@@ -218,7 +237,22 @@ def parse_recipe(doc: dict, default_name: str = "recipe") -> Recipe:
             raise _fail("train." + key, getattr(train, key), "must be >= 0")
     if not 0 <= train.label_smoothing < 1:
         raise _fail("train.label_smoothing", train.label_smoothing, "must be in [0, 1)")
+    _check_levers(train)
     return Recipe(name, seed, data, _space(doc["space"]), train)
+
+
+def _check_levers(train: TrainConfig) -> None:
+    for key in ("largest_dropout", "lr_end", "random_macs_target"):
+        if not 0 <= getattr(train, key) < 1:
+            raise _fail("train." + key, getattr(train, key), "must be in [0, 1)")
+    if not 0 <= train.largest_only_epochs < train.epochs:
+        raise _fail("train.largest_only_epochs", train.largest_only_epochs, "must be >= 0 and below train.epochs")
+    if train.distill_loss not in DISTILL_LOSSES:
+        raise _fail("train.distill_loss", train.distill_loss, f"choose one of {', '.join(DISTILL_LOSSES)}")
+    if train.distill_temperature <= 0:
+        raise _fail("train.distill_temperature", train.distill_temperature, "must be > 0")
+    if train.random_candidates < 1:
+        raise _fail("train.random_candidates", train.random_candidates, "must be >= 1")
 
 
 def load_recipe(path: str | Path) -> Recipe:

@@ -24,7 +24,8 @@ from tightfit.model.supernet import Supernet, build_supernet
 from tightfit.ondevice.files import append_jsonl, read_jsonl, write_bytes, write_text
 from tightfit.recipe import Recipe
 from tightfit.train.rundir import checkpoint_path
-from tightfit.train.sandwich import lr_at, make_optimizer, sandwich, train_step
+from tightfit.train.initialise import zero_init_residual
+from tightfit.train.sandwich import lr_at, macs_distance, make_optimizer, step_subnets, train_step
 
 
 class _StopFlag:
@@ -88,6 +89,8 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, recipe_p
         ds = ds or load_dataset(recipe.data, recipe.seed)
         torch.manual_seed(recipe.seed)
         model = build_supernet(recipe, ds.num_classes).to(dev)
+        if recipe.train.zero_init_residual:
+            zero_init_residual(model)
         if recipe.train.channels_last:
             model = model.to(memory_format=torch.channels_last)
         opt = make_optimizer(model, recipe.train)
@@ -133,6 +136,7 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
     total = max(1, int(round(cfg.epochs * spe)))
     warmup = int(cfg.warmup_epochs * spe)
     rows = local_rows(cfg.batch_size, ranks)
+    distance = macs_distance(recipe, ds.num_classes, cfg.random_macs_target) if cfg.random_macs_target else None
     main = ranks.is_main
     metrics = run_dir / "metrics.jsonl"
     if main:
@@ -151,13 +155,12 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
                 x, y = x[rows].to(dev, non_blocking=True), y[rows].to(dev, non_blocking=True)
                 if cfg.channels_last:
                     x = x.contiguous(memory_format=torch.channels_last)
-                lr = lr_at(step, total, warmup, cfg.lr)
+                lr = lr_at(step, total, warmup, cfg.lr, cfg.lr_end)
                 for g in opt.param_groups:
                     g["lr"] = lr
                 if ranks.launched:
                     torch.manual_seed(step_seed(recipe.seed, ranks.rank, step))
-                losses = train_step(model, opt, x, y, sandwich(recipe.space, step, recipe.seed, cfg.random_subnets),
-                                    cfg, sync)
+                losses = train_step(model, opt, x, y, step_subnets(recipe, step, spe, distance), cfg, sync)
                 step += 1
                 ips = seen / (time.perf_counter() - t0)
                 bar.update(1)

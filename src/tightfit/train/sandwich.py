@@ -5,6 +5,7 @@ largest's detached soft predictions; gradients accumulate and one optimizer step
 """
 from __future__ import annotations
 
+import functools
 import math
 import random
 from typing import Callable
@@ -13,18 +14,50 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
+from tightfit.model.arithmetic import architecture_size
 from tightfit.model.space import SpaceSpec, Subnet
 from tightfit.model.supernet import Supernet
-from tightfit.recipe import TrainConfig
+from tightfit.recipe import Recipe, TrainConfig
 
 
-def sandwich(space: SpaceSpec, step: int, seed: int, n_random: int) -> list[Subnet]:
+def sandwich(space: SpaceSpec, step: int, seed: int, n_random: int, *, largest_only: bool = False,
+             distance: Callable[[Subnet], float] | None = None, candidates: int = 1) -> list[Subnet]:
     """[largest, smallest, n random]; the draw depends only on (seed, step).
-    A one-subnet space (a fixed network, e.g. a hand-scaled baseline) trains as a plain network."""
-    if space.size() == 1:
+    A one-subnet space (a fixed network, e.g. a hand-scaled baseline) trains as a plain network,
+    and so does any space while ``largest_only`` (the warm-up phase of ``largest_only_epochs``).
+    With ``distance``, each random subnet is the nearest of ``candidates`` uniform draws (first on ties)."""
+    if space.size() == 1 or largest_only:
         return [space.largest()]
     rng = random.Random(seed * 7_919 + step)
-    return [space.largest(), space.smallest()] + [space.sample(rng) for _ in range(n_random)]
+
+    def draw() -> Subnet:
+        if distance is None:
+            return space.sample(rng)
+        return min((space.sample(rng) for _ in range(candidates)), key=distance)
+    return [space.largest(), space.smallest()] + [draw() for _ in range(n_random)]
+
+
+def macs_distance(recipe: Recipe, num_classes: int, target: float) -> Callable[[Subnet], float]:
+    """|f - target|, f being a subnet's multiply-adds placed between the smallest's (0) and the
+    largest's (1): biases random subnets toward the size region budgets pick from (a simple form of
+    sampling toward a region of the space, after Wang et al. 2021)."""
+    def macs(s: Subnet) -> int:
+        return architecture_size(recipe.space, s, recipe.data.channels, recipe.data.image_size, num_classes)[1]
+    lo, hi = macs(recipe.space.smallest()), macs(recipe.space.largest())
+
+    @functools.lru_cache(maxsize=4096)
+    def distance(s: Subnet) -> float:
+        return abs((macs(s) - lo) / max(1, hi - lo) - target)
+    return distance
+
+
+def step_subnets(recipe: Recipe, step: int, steps_per_epoch: int,
+                 distance: Callable[[Subnet], float] | None = None) -> list[Subnet]:
+    """The sandwich of ``step`` under the recipe's [train] settings (warm-up phase, biased draws)."""
+    cfg = recipe.train
+    warm = step < int(round(cfg.largest_only_epochs * steps_per_epoch))
+    return sandwich(recipe.space, step, recipe.seed, cfg.random_subnets, largest_only=warm,
+                    distance=distance, candidates=cfg.random_candidates)
 
 
 def param_groups(model: nn.Module, weight_decay: float) -> list[dict]:
@@ -42,17 +75,27 @@ def make_optimizer(model: nn.Module, cfg: TrainConfig) -> torch.optim.Optimizer:
     return torch.optim.AdamW(groups, lr=cfg.lr)
 
 
-def lr_at(step: int, total: int, warmup: int, base: float) -> float:
-    """Linear warm-up, then cosine decay to zero (Loshchilov & Hutter 2017)."""
+def lr_at(step: int, total: int, warmup: int, base: float, end: float = 0.0) -> float:
+    """Linear warm-up, then cosine decay to ``base * end`` (Loshchilov & Hutter 2017, eta_min = base * end;
+    a floor above zero as in Yu et al. 2020)."""
     if step < warmup:
         return base * (step + 1) / warmup
     t = (step - warmup) / max(1, total - warmup)
-    return base * 0.5 * (1 + math.cos(math.pi * min(1.0, t)))
+    return base * (end + (1 - end) * 0.5 * (1 + math.cos(math.pi * min(1.0, t))))
 
 
-def distill_loss(logits: torch.Tensor, soft_targets: torch.Tensor) -> torch.Tensor:
-    """Cross-entropy against the teacher's probabilities (in-place distillation)."""
-    return -(soft_targets * F.log_softmax(logits, 1)).sum(1).mean()
+def distill_loss(logits: torch.Tensor, teacher_logits: torch.Tensor, kind: str = "soft_ce",
+                 temperature: float = 1.0) -> torch.Tensor:
+    """In-place distillation against the teacher's (detached) logits, both divided by T and the loss
+    scaled by T^2 (Hinton et al. 2015). "soft_ce": cross-entropy against the teacher's probabilities;
+    "kl": KL(teacher || student), the same minus the teacher's entropy (same gradient at T = 1)."""
+    t = temperature
+    log_q = F.log_softmax(logits / t, 1)
+    p = F.softmax(teacher_logits / t, 1)
+    per_row = -(p * log_q).sum(1)
+    if kind == "kl":
+        per_row = per_row + (p * F.log_softmax(teacher_logits / t, 1)).sum(1)
+    return per_row.mean() * t * t
 
 
 def sandwich_backward(model: Supernet, x: torch.Tensor, y: torch.Tensor, subnets: list[Subnet],
@@ -60,21 +103,25 @@ def sandwich_backward(model: Supernet, x: torch.Tensor, y: torch.Tensor, subnets
     """Forward and backward every subnet of the sandwich, gradients summing in .grad;
     returns the largest's and smallest's losses."""
     losses = {}
-    soft = None
+    teacher = None
     for i, subnet in enumerate(subnets):
         model.set_subnet(subnet)
+        if cfg.largest_dropout > 0:  # regularise the largest only (Yu et al. 2020)
+            model.dropout.p = cfg.largest_dropout if i == 0 else 0.0
         # Mixed precision on CUDA only; CPU trains in fp32 so results are exactly reproducible.
         with torch.autocast("cuda", dtype=torch.bfloat16, enabled=x.is_cuda):
             logits = model(x).float()
         if i == 0 or not cfg.distill:
             loss = F.cross_entropy(logits, y, label_smoothing=cfg.label_smoothing)
         else:
-            loss = distill_loss(logits, soft)
+            loss = distill_loss(logits, teacher, cfg.distill_loss, cfg.distill_temperature)
         if i == 0:
-            soft = logits.detach().softmax(1)
+            teacher = logits.detach()
         loss.backward()
         if i < 2:
             losses["loss_largest" if i == 0 else "loss_smallest"] = loss.item()
+    if cfg.largest_dropout > 0:
+        model.dropout.p = model.space.dropout
     return losses
 
 
