@@ -87,7 +87,7 @@ def test_protocol_round_trip_records_session_settings():
     d = p.to_dict()
     assert Protocol.from_dict(d) == p
     assert d["graph_optimization"] == "ORT_ENABLE_ALL" and d["execution_mode"] == "ORT_SEQUENTIAL"
-    assert d["layer_timed_seconds"] == 0.2 and d["timed_runs"] == 200 and d["batch"] == 1
+    assert d["layer_timed_seconds"] == 0.05 and d["timed_runs"] == 200 and d["batch"] == 1
 
 
 def test_random_input_uses_batch_for_symbolic_axis(models):
