@@ -59,6 +59,9 @@ def test_zero_init_residual_zeroes_bn3_gamma_of_exactly_the_skip_blocks():
     model.eval()
     block = model.stages[1][1]
     assert torch.equal(block(x.new_ones(2, 12, 8, 8)), x.new_ones(2, 12, 8, 8))  # starts as the identity
+    # elastic width: stem [4, 8] -> stage 0 [4, 8] at stride 1 shares widths, so its skip is used (4 -> 4)
+    wide = build_supernet(tiny_recipe(wide=True), 5)
+    assert zero_init_residual(wide) == 4 and torch.count_nonzero(wide.stages[0][0].bn3.weight) == 0
 
 
 def test_largest_only_epochs_train_the_largest_alone_then_the_full_sandwich():
