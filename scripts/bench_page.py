@@ -16,30 +16,41 @@ def _end_commit(result: dict) -> str:
     return f", finished at `{end}`" if end and end != result["commit"] else ""
 
 
+def _devices(result: dict) -> list[str]:
+    return list(dict.fromkeys(r["device"] for r in result["budgets"]))
+
+
+def _on(m: dict, device: str) -> dict:
+    return {**m, **m["latency"][device]}
+
+
 def plot(result: dict, path: Path) -> Path:
     import matplotlib
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
-    fig, ax = plt.subplots(figsize=(7.5, 4.8), dpi=120)
-    models = result["models"]
-    base = sorted((m for m in models if m["kind"] == "baseline"), key=lambda m: m["p90_ms"])
-    picks = [m for m in models if m["kind"] == "pick"]
-    ax.plot([m["p90_ms"] for m in base], [m["test_acc"] for m in base], "s--", color="tab:gray",
-            label="hand-scaled family (each trained alone)")
-    for m in base:
-        ax.annotate(m["name"], (m["p90_ms"], m["test_acc"]), textcoords="offset points", xytext=(4, -11), fontsize=7,
-                    color="tab:gray")
-    ax.plot([m["p90_ms"] for m in picks], [m["test_acc"] for m in picks], "o", color="tab:blue", ms=8,
-            label="tightfit picks (one supernet)")
-    for r in result["budgets"]:
-        ax.axvline(r["budget_ms"], color="tab:red", lw=0.8, ls=":")
-        ax.annotate(f"budget {r['budget_ms']:g} ms", (r["budget_ms"], 1.0), xycoords=("data", "axes fraction"),
-                    rotation=90, fontsize=7, color="tab:red", xytext=(-9, -4), textcoords="offset points", va="top")
-    ax.set_xlabel("measured p90 latency, ms (ONNX Runtime, batch 1, 1 thread)")
-    ax.set_ylabel("test accuracy, % (Fashion-MNIST test split)")
-    ax.set_title("Fashion-MNIST: accuracy vs measured latency")
-    ax.grid(alpha=0.3)
-    ax.legend(loc="lower right", fontsize=8)
+    devices = _devices(result)
+    fig, axes = plt.subplots(1, len(devices), figsize=(6.2 * len(devices), 4.8), dpi=110, squeeze=False)
+    for ax, device in zip(axes[0], devices):
+        models = [_on(m, device) for m in result["models"]]
+        base = sorted((m for m in models if m["kind"] == "baseline"), key=lambda m: m["p90_ms"])
+        picks = [m for m in models if m["kind"] == "pick" and m["device"] == device]
+        ax.plot([m["p90_ms"] for m in base], [m["test_acc"] for m in base], "s--", color="tab:gray",
+                label="hand-scaled family (each trained alone)")
+        for m in base:
+            ax.annotate(m["name"], (m["p90_ms"], m["test_acc"]), textcoords="offset points", xytext=(4, -11),
+                        fontsize=7, color="tab:gray")
+        ax.plot([m["p90_ms"] for m in picks], [m["test_acc"] for m in picks], "o", color="tab:blue", ms=8,
+                label="tightfit picks (one supernet)")
+        for r in (r for r in result["budgets"] if r["device"] == device):
+            ax.axvline(r["budget_ms"], color="tab:red", lw=0.8, ls=":")
+            ax.annotate(f"budget {r['budget_ms']:g} ms", (r["budget_ms"], 1.0), xycoords=("data", "axes fraction"),
+                        rotation=90, fontsize=7, color="tab:red", xytext=(-9, -4), textcoords="offset points", va="top")
+        threads = result["protocols"][device]["threads"]
+        ax.set_xlabel(f"measured p90 latency, ms (ONNX Runtime, batch 1, {threads} thread{'s' * (threads > 1)})")
+        ax.set_ylabel("test accuracy, % (Fashion-MNIST test split)")
+        ax.set_title(f"{device}: accuracy vs measured latency", fontsize=10)
+        ax.grid(alpha=0.3)
+        ax.legend(loc="best", fontsize=8)
     fig.tight_layout()
     path.parent.mkdir(parents=True, exist_ok=True)
     fig.savefig(path)
@@ -52,13 +63,31 @@ def _row(r: dict) -> str:
     base = (f"{b['name']} | {b['test_acc']:.2f} | {b['p90_ms']:.3f} | {b['params']:,} | {b['macs'] / 1e6:.2f}"
             if b else "none fits | | | |")
     gain = f"{r['gain_points']:+.2f}" if r["gain_points"] is not None else "n/a"
-    return (f"| {r['budget_ms']:g} | {p['test_acc']:.2f} | {p['p90_ms']:.3f} | {p['params']:,} | {p['macs'] / 1e6:.2f} | "
-            f"{base} | {gain} |")
+    return (f"| {r['budget_ms']:g} | `{p['key']}` | {p['test_acc']:.2f} | {p['p90_ms']:.3f} | {p['params']:,} | "
+            f"{p['macs'] / 1e6:.2f} | {base} | {gain} |")
+
+
+def _device_section(result: dict, device: str) -> list[str]:
+    threads = result["protocols"][device]["threads"]
+    rows = [r for r in result["budgets"] if r["device"] == device]
+    notes = [f"- The {r['budget_ms']:g} ms budget was placed above {r['placed_above']}, which measured over it in "
+             "the final session: the comparison is with a smaller member, which flatters the pick."
+             for r in rows if r.get("placed_above_fits") is False]
+    return [f"### {device} ({threads} intra-op thread{'s' * (threads > 1)})", "",
+            "| budget ms (p90) | pick | test % | p90 ms | params | MMACs | best fitting family member | "
+            "test % | p90 ms | params | MMACs | gain (points) |",
+            "|---|---|---|---|---|---|---|---|---|---|---|---|",
+            *[_row(r) for r in rows], "", *notes, *([""] if notes else [])]
+
+
+def _fmt(v, spec: str, none: str = "none") -> str:
+    return none if v is None else format(v, spec)
 
 
 def page_text(result: dict, plot_name: str) -> str:
     t = result["targets"]
     c, mach, dev, sw = result["cpu_seconds"], result["machinery"], result["device"], result["software"]
+    devices, eq = _devices(result), result["equal_compute"]
     lines = [
         "# Benchmark: one supernet vs a hand-scaled family (Fashion-MNIST, CPU)",
         "",
@@ -70,43 +99,50 @@ def page_text(result: dict, plot_name: str) -> str:
         "Latency and accuracy here were measured on one machine under the conditions below; they are not a "
         "guarantee on another device, and test accuracy is not field performance.",
         "",
-        "## Picks vs the best fitting baseline, per budget",
+        "## Picks vs the best fitting family member, per device and budget",
         "",
-        "| budget ms (p90) | pick test % | pick p90 ms | pick params | pick MMACs | best fitting baseline | "
-        "test % | p90 ms | params | MMACs | gain (points) |",
-        "|---|---|---|---|---|---|---|---|---|---|---|",
-        *[_row(r) for r in result["budgets"]],
+        f"Budgets: {result['budget_rule']} (the family measured before the supernet was trained). Equal compute: "
+        f"the family cost {eq['family_cpu_s']:.0f} CPU-s (training at {eq['family_epochs']:g} epochs each, plus "
+        f"measuring every member on each device); {100 * eq['reserve_share']:.0f} % of that was kept for profiling "
+        f"and search and the rest bought the supernet {eq['epochs']:g} epochs at ~{eq['epoch_cpu_s']:.0f} CPU-s each "
+        "(sampled from real sandwich steps).",
         "",
+        *[line for d in devices for line in _device_section(result, d)],
         f"![accuracy vs latency]({plot_name})",
         "",
-        "All models were measured in one interleaved session under the same protocol "
-        "(ONNX Runtime CPU, batch 1, 1 intra-op thread, median over fresh processes) and evaluated on the same "
+        "On each device every model was measured in one interleaved session under that device's protocol "
+        "(ONNX Runtime CPU, batch 1, pooled runs from fresh processes) and all were evaluated on the same "
         f"{result['test_images']:,}-image test split, which neither the search nor the selection saw.",
         "",
         "## Targets",
         "",
-        "- pick at least as accurate as the best fitting baseline at every budget: "
-        f"{'yes' if t['pick_at_least_baseline_every_budget'] else 'NO'}",
+        f"- gain at every (device, budget) >= +{t['gain_target']} points: "
+        f"{'yes' if t['gain_at_every_budget'] else 'NO'} (smallest gain {_fmt(t['min_gain_points'], '+.2f')})",
         f"- best pick test accuracy {t['best_pick_test_acc']:.2f} % (target {t['best_pick_target']} %)",
-        "- best pick under 100K parameters: " + (f"{t['best_small_pick_test_acc']:.2f} %" if t["best_small_pick_test_acc"]
-                                                   is not None else "none") + f" (target {t['small_pick_target']} %)",
-        f"- CPU time (supernet + search) / family: {t['cpu_ratio_supernet_search_over_family']:.2f} (target <= 1)",
+        f"- best pick under 100K parameters: {_fmt(t['best_small_pick_test_acc'], '.2f')} % (target {t['small_pick_target']} %)",
+        f"- CPU time (supernet + profiling + search) / family: {t['cpu_ratio_supernet_search_over_family']:.2f} (target <= 1)",
+        f"- profiling + search / supernet training: {t['search_share_of_training']:.2f} (aim <= {t['search_share_aim']})",
         "",
         "## Every model",
         "",
-        "| model | key | params | MMACs | test % | p50 ms | p90 ms | stable |",
-        "|---|---|---|---|---|---|---|---|",
+        "| model | key | params | MMACs | test % | " + " | ".join(f"p50 / p90 ms {d}" for d in devices) + " | stable |",
+        "|---|---|---|---|---|" + "---|" * len(devices) + "---|",
         *[f"| {m['name']} | `{m['key']}` | {m['params']:,} | {m['macs'] / 1e6:.2f} | {m['test_acc']:.2f} | "
-          f"{m['p50_ms']:.3f} | {m['p90_ms']:.3f} | {'yes' if m['stable'] else 'no: ' + m['note']} |"
-          for m in result["models"]],
+          + " | ".join(f"{m['latency'][d]['p50_ms']:.3f} / {m['latency'][d]['p90_ms']:.3f}" for d in devices)
+          + " | " + "; ".join(f"{d}: {'yes' if m['latency'][d]['stable'] else m['latency'][d]['note']}" for d in devices)
+          + " |" for m in result["models"]],
         "",
         "## Cost",
         "",
-        f"- CPU-seconds, supernet training: {c['supernet_training']:.0f}; profiling + search of all budgets: "
-        f"{c['search']:.0f}; together {c['supernet_plus_search']:.0f}.",
-        f"- CPU-seconds, training the {len(result['family'])}-member family: {c['family_training']:.0f}.",
-        f"- Ratio (supernet + search) / family: {c['supernet_plus_search'] / max(c['family_training'], 1e-9):.2f}.",
-        "- Search time per budget (wall, s): " + ", ".join(f"{k} ms: {v:.0f}" for k, v in result["picks_search_s"].items()),
+        f"- CPU-seconds, supernet training: {c['supernet_training']:.0f}; profiling + search of every device and "
+        f"budget: {c['search']:.0f}; together {c['supernet_plus_search']:.0f}.",
+        f"- CPU-seconds, the {len(result['family'])}-member family: training {c['family_training']:.0f}, measuring "
+        f"on each device {c['family_measuring']:.0f}; together {c['family']:.0f}.",
+        f"- Ratio (supernet side) / family: {c['supernet_plus_search'] / max(c['family'], 1e-9):.2f}.",
+        "- Search time per (device, budget) (wall, s): "
+        + ", ".join(f"{k} ms: {v:.0f}" for k, v in result["picks_search_s"].items()),
+        "- Per phase (wall s / CPU-s): " + "; ".join(f"{k} {v['wall_s']:.0f} / {v['cpu_s']:.0f}"
+                                                   for k, v in result["phases"].items() if v["wall_s"] >= 1),
         "",
         "## The machinery itself",
         "",
@@ -127,35 +163,42 @@ def page_text(result: dict, plot_name: str) -> str:
         "",
         *[f"- {e['op']}: {100 * e['share']:.1f} %" for e in mach["profile_largest_step"]],
         "",
-        "Search timing per budget (from `tightfit search`):",
+        *_ranking_lines(result.get("ranking_check")),
+        "Search timing per (device, budget) (from `tightfit search`):",
         "",
         *[f"- {k} ms: {'; '.join(v)}" for k, v in result["search_timing"].items()],
         "",
-        *_drift_lines(result.get("session_drift") or {}, result.get("measured_over_predicted") or {}),
+        *_ratio_lines(result.get("measured_over_predicted") or {}),
         "## Machine and software",
         "",
         f"- CPU: {dev.get('cpu_model')}, {dev.get('logical_cores', dev.get('cores'))} logical cores; OS: {dev.get('os')}",
         "- " + ", ".join(f"{k} {v}" for k, v in sw.items()),
-        f"- recipe `{result['recipe']['name']}` (hash {result['recipe_hash']}), "
-        f"{result['recipe']['train']['epochs']} epochs for the supernet and for every family member.",
+        f"- recipe `{result['recipe']['name']}` (hash {result['recipe_hash']}): the supernet at "
+        f"{result['recipe']['train']['epochs']:g} epochs, every family member at {eq['family_epochs']:g}.",
         "",
     ]
     return "\n".join(lines)
 
 
-def _drift_lines(drift: dict, ratio: dict) -> list[str]:
-    """How far the machine had moved from its latency table: the drift check's reading before each
-    budget's search (when on) and what the measured top candidates showed (measured / predicted p90)."""
-    out = []
-    if any(v is not None for v in drift.values()):
-        shown = ", ".join(f"{k} ms {'not checked' if v is None else f'{v:.3f} x'}" for k, v in drift.items())
-        out += [f"Drift check before each budget's search (the table's calibration subnets, time now / time when "
-                f"profiled; beyond ±3 % the search limit is rescaled): {shown}.", ""]
-    if any(v is not None for v in ratio.values()):
-        shown = ", ".join(f"{k} ms {'-' if v is None else f'{v:.3f} x'}" for k, v in ratio.items())
-        out += [f"The measured top candidates against their predictions (median measured / predicted p90, "
-                f"last search of each budget): {shown}.", ""]
-    return out
+def _ranking_lines(r: dict | None) -> list[str]:
+    """The search's cheap score against the whole validation split, over random subnets."""
+    if not r:
+        return []
+    return [f"The search ranks candidates on {r['images']:,} validation images and re-scores the best on all "
+            f"{r['whole_images']:,}. Over {r['subnets']} random subnets the cheap score against the whole split: "
+            f"Kendall τ {_fmt(r['kendall_tau'], '.3f', 'undefined')}, mean |difference| {r['mean_abs_diff_points']:.2f} points; the best by "
+            f"the whole split was {'' if r['best_whole_in_cheap_top'] else 'NOT '}among the cheap score's top "
+            f"re-scored; CPU-s per subnet {r['cheap_cpu_s_per_subnet']:.2f} (cheap) vs {r['whole_cpu_s_per_subnet']:.2f} "
+            "(whole, with a second BN recalibration that reuses the first's cached prefix).", ""]
+
+
+def _ratio_lines(ratio: dict) -> list[str]:
+    """How far the machine had moved from its latency table: what the measured top candidates showed."""
+    if not any(v is not None for v in ratio.values()):
+        return []
+    shown = ", ".join(f"{k} ms {'-' if v is None else f'{v:.3f} x'}" for k, v in ratio.items())
+    return [f"The measured top candidates against their predictions (median measured / predicted p90, "
+            f"last search of each budget): {shown}.", ""]
 
 
 NOTES = Path(__file__).resolve().parents[1] / "benchmarks" / "fashion-mnist-notes.md"

@@ -29,21 +29,31 @@ def test_benchmark_smoke(tmp_path):
     assert result["smoke"] is True
     models = result["models"]
     assert {m["kind"] for m in models} == {"pick", "baseline"}
+    devices = {"host-1-thread", "host-2-threads"}
     for m in models:
-        assert 0 <= m["test_acc"] <= 100 and m["p90_ms"] >= m["p50_ms"] > 0 and m["params"] > 0 and m["macs"] > 0
+        assert 0 <= m["test_acc"] <= 100 and m["params"] > 0 and m["macs"] > 0 and set(m["latency"]) == devices
+        assert all(f["p90_ms"] >= f["p50_ms"] > 0 for f in m["latency"].values())
+    assert {r["device"] for r in result["budgets"]} == devices  # budgets on each device, picks searched for it
     for row in result["budgets"]:
         base = row["baseline"]
-        if base is not None:  # the best fitting baseline really fits and is the most accurate that does
+        assert row["pick"]["device"] == row["device"]
+        assert row["pick"]["p90_ms"] == next(m for m in models if m["name"] == row["pick"]["name"])["latency"][row["device"]]["p90_ms"]
+        if base is not None:  # the best fitting baseline really fits on that device and is the most accurate that does
             assert base["p90_ms"] <= row["budget_ms"]
-            fitting = [m["test_acc"] for m in models if m["kind"] == "baseline" and m["p90_ms"] <= row["budget_ms"]]
+            fitting = [m["test_acc"] for m in models
+                       if m["kind"] == "baseline" and m["latency"][row["device"]]["p90_ms"] <= row["budget_ms"]]
             assert base["test_acc"] == max(fitting)
             assert row["gain_points"] == pytest.approx(row["pick"]["test_acc"] - base["test_acc"], abs=0.011)
     # the search measured its top candidates here and recorded how far off the predictions were
     ratios = result["measured_over_predicted"].values()
     assert ratios and all(0.2 < r < 5 for r in ratios)
     c = result["cpu_seconds"]
-    assert c["supernet_training"] > 0 and c["family_training"] > 0
+    assert c["supernet_training"] > 0 and c["family_training"] > 0 and c["family_measuring"] > 0
     assert c["supernet_plus_search"] == pytest.approx(c["supernet_training"] + c["search"])
+    assert c["family"] == pytest.approx(c["family_training"] + c["family_measuring"])
+    # equal compute: the supernet's epochs follow from the family's CPU-seconds (smoke keeps 1 epoch, records the figure)
+    eq = result["equal_compute"]
+    assert eq["family_cpu_s"] == pytest.approx(c["family"], rel=0.01) and eq["epoch_cpu_s"] > 0
     page = (docs / "benchmarks.md").read_text()
     assert "SMOKE" in page and (docs / "benchmarks-fashion-mnist.png").stat().st_size > 10_000
     # resuming a finished benchmark skips every phase and rewrites the same table

@@ -222,7 +222,8 @@ def _drive(tmp_path, monkeypatch, use: float, ratio: float):
     compute = SimpleNamespace(phases=lambda latency: {"validation": 0.0})
     settings = SearchSettings(population=8, evaluations=40, slack=0.1, guard=0.05)
     ctx = SimpleNamespace(run_dir=tmp_path, run=SimpleNamespace(recipe=SimpleNamespace(space=space)),
-                          settings=settings, compute=compute, fitness=None, progress=False, say=lambda s: None)
+                          settings=settings, compute=compute, fitness=None, progress=False, say=lambda s: None,
+                          whole=None)
     (tmp_path / "search").mkdir()
     table = FakeTable("this-host", describe_hardware())
     picks = driver._search_device(ctx, table, FakePredictor(space), [1.0])
@@ -243,3 +244,28 @@ def test_a_pick_far_under_budget_earns_one_corrected_search_with_half_the_evalua
 def test_a_pick_that_uses_its_budget_is_searched_once(tmp_path, monkeypatch):
     calls, picks = _drive(tmp_path, monkeypatch, use=0.9, ratio=0.8)
     assert [c[1] for c in calls] == [40] and len(picks) == 1
+
+
+def test_capped_scores_choose_what_is_rescored_and_the_whole_split_orders_it():
+    # This project's rule (search/driver.py measuring_order): the best `rescore` candidates by the capped score are
+    # scored again on the whole split and measured in that order (front first); the rest follow unchanged.
+    from types import SimpleNamespace
+    from tightfit.search.driver import measuring_order
+    from tightfit.search.evolution import Candidate
+    space = wide_space()
+    subs = [space.smallest(), space.middle(), space.largest()]
+    cheap = [Candidate(s.to_key(), s, f, ms, 0) for s, f, ms in zip(subs, (90.0, 89.0, 70.0), (1.0, 1.0, 1.0))]
+    whole_acc = {subs[0].to_key(): 85.0, subs[1].to_key(): 88.0}
+    asked = []
+
+    def whole(subnet):
+        asked.append(subnet.to_key())
+        return whole_acc[subnet.to_key()]
+    whole.fresh = 0
+    ctx = SimpleNamespace(settings=SearchSettings(val_images=100, rescore=2), whole=whole, say=lambda s: None)
+    order = measuring_order(ctx, cheap)
+    assert asked == [subs[0].to_key(), subs[1].to_key()]          # only the best two by the capped score
+    assert [c.key for c in order] == [subs[1].to_key(), subs[0].to_key(), subs[2].to_key()]
+    assert [c.fitness for c in order] == [88.0, 85.0, 70.0]
+    off = SimpleNamespace(settings=SearchSettings(), whole=None, say=lambda s: None)
+    assert [c.key for c in measuring_order(off, cheap)] == [c.key for c in cheap]

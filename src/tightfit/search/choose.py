@@ -40,6 +40,7 @@ class SearchContext:
     compute: RunAccuracy
     progress: bool
     say: Callable[[str], None]
+    whole: Optional[CachedAccuracy] = None  # the whole validation split, when ``compute`` sees a capped part
 
 
 UNVERIFIED = "unverified: measure on the device with tightfit verify"
@@ -182,7 +183,8 @@ class _Measurer:
 
 def choose_and_export(ctx: SearchContext, table: LatencyTable, ranked: list[Candidate], budget_ms: float,
                       latency: CachedLatency, verifiable: bool) -> dict[str, Any]:
-    """Verify (when the table is for this host), export the pick, and return its picks.json row."""
+    """Verify (when the table is for this host), export the pick, and return its picks.json row.
+    ``ranked``: the order in which candidates are measured (tightfit.search.driver.measuring_order)."""
     label = f"{device_name(table.name)}-{budget_label(budget_ms)}"
     staging = ctx.run_dir / "search" / "staging" / label
     shutil.rmtree(staging, ignore_errors=True)
@@ -196,7 +198,7 @@ def choose_and_export(ctx: SearchContext, table: LatencyTable, ranked: list[Cand
     if verifiable:
         top = ctx.settings.top
         ctx.say(f"  measuring the top {min(top, len(ranked))} candidates directly ({protocol.repeats} repeats)")
-        choice = measure_and_choose(front_first(ranked), budget_ms, measurer, top, fallback, ctx.say,
+        choice = measure_and_choose(ranked, budget_ms, measurer, top, fallback, ctx.say,
                                     guard=ctx.settings.guard)
         pick, fits, note, ratio, hardware = choice.pick, choice.fits, choice.note, choice.ratio(), describe_hardware()
         guard = {"share": round(guard_of(pick, ctx.settings.guard), 4),

@@ -57,6 +57,7 @@ def _cmd_search(args: Any) -> int:
     settings = SearchSettings(population=_positive("population", args.population, 2),
                               evaluations=_positive("evaluations", args.evaluations), seed=args.seed,
                               top=_positive("top", args.top), val_images=_positive("val-images", args.val_images, 0),
+                              rescore=_positive("rescore", args.rescore, 0),
                               backend=args.eval_backend, slack=_slack(args.slack),
                               drift_check=args.drift_check, guard=_guard(args.guard))
     from tightfit.search.driver import run_search  # torch: only once the arguments are known good
@@ -100,7 +101,12 @@ def add_search_parser(sub: Any) -> None:
     s.add_argument("--seed", type=int, default=0, help="seed of the evolution's random draws (default 0)")
     s.add_argument("--top", type=int, default=4, help="candidates measured directly per budget (default 4)")
     s.add_argument("--val-images", type=int, default=0,
-                   help="validation images per accuracy evaluation (default 0 = the whole validation split)")
+                   help="validation images per accuracy evaluation (default 0 = the whole validation split); "
+                        "a few hundred make the search several times cheaper, see --rescore")
+    s.add_argument("--rescore", type=int, default=8,
+                   help="with --val-images: score the best N candidates of each budget again on the whole "
+                        "validation split before measuring them, so the pick is not chosen on a small sample "
+                        "(default 8; 0 = off)")
     s.add_argument("--slack", type=float, default=None,
                    help="search up to this many percent over each budget (predicted) when picks are measured here "
                         "(default: the predictor's leave-one-out error, 5-25)")

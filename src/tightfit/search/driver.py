@@ -28,7 +28,7 @@ from tightfit.budgets import budget_label, parse_budget
 from tightfit.progress import bar
 from tightfit.search.cache import AccuracyCache, CachedAccuracy, CachedLatency
 from tightfit.ondevice.hardware import same_host
-from tightfit.search.choose import DEFAULT_GUARD, SearchContext, choose_and_export
+from tightfit.search.choose import DEFAULT_GUARD, SearchContext, choose_and_export, front_first
 from tightfit.search.evolution import Candidate, fastest_check, pareto_front, regularized_evolution
 from tightfit.search.fitness import RunAccuracy
 from tightfit.search.settings import SearchSettings
@@ -123,6 +123,21 @@ def ranked_within(candidates: list[Candidate], budget_ms: float) -> list[Candida
     return sorted(seen.values(), key=lambda c: (-c.fitness, c.latency_ms))
 
 
+def measuring_order(ctx: SearchContext, ranked: list[Candidate]) -> list[Candidate]:
+    """The order in which candidates are measured: Pareto front first (choose.front_first). When the
+    search scored a capped part of the validation split, its best ``rescore`` candidates are scored
+    again on the whole split and only they are ordered by that; the rest follow, reached only if none
+    of them fits. A cheap ranking's noise then picks what is re-scored, not the pick."""
+    n = ctx.settings.rescore
+    if ctx.whole is None or n <= 0:
+        return front_first(ranked)
+    t0, fresh = time.perf_counter(), ctx.whole.fresh
+    head = sorted((replace(c, fitness=ctx.whole(c.subnet)) for c in ranked[:n]), key=lambda c: (-c.fitness, c.latency_ms))
+    ctx.say(f"  re-scored the best {len(head)} on the whole validation split ({ctx.whole.fresh - fresh} new) "
+            f"in {time.perf_counter() - t0:.1f} s")
+    return front_first(head) + ranked[n:]
+
+
 def time_report(r: BudgetResult, phases: dict[str, float]) -> str:
     """Where one budget's search time went."""
     n = len(r.candidates)
@@ -161,9 +176,14 @@ def run_search(run_dir: str | Path, table_paths: list[str], budgets: list[str], 
             fastest_check(cfg.space, predictor.predict_ms, b, table.name)
     compute = RunAccuracy(run, ds, settings.val_images, settings.backend)
     fitness = CachedAccuracy(AccuracyCache(run_dir / "search" / "accuracy_cache.jsonl", compute.tag(run_dir)), compute)
-    ctx = SearchContext(run_dir, run, ds, settings, fitness, compute, progress, say)
+    whole = None
+    if settings.rescore > 0 and compute.images < len(ds.val_y):
+        full = RunAccuracy(run, ds, 0, settings.backend, recalibrator=compute.recalibrate)
+        whole = CachedAccuracy(AccuracyCache(run_dir / "search" / "accuracy_cache.jsonl", full.tag(run_dir)), full)
+    ctx = SearchContext(run_dir, run, ds, settings, fitness, compute, progress, say, whole)
     say(f"fitness: validation top-1 on {compute.images} of {len(ds.val_y)} validation images ({compute.backend}) "
-        f"after BN recalibration on {len(compute.calib)} training batches; {len(fitness.cache.entries)} cached")
+        f"after BN recalibration on {len(compute.calib)} training batches; {len(fitness.cache.entries)} cached"
+        + (f"; the best {settings.rescore} per budget scored again on all {len(ds.val_y)}" if whole else ""))
     picks: list[dict[str, Any]] = []
     for table, predictor in tables:
         picks += _search_device(ctx, table, predictor, budget_ms)
@@ -197,7 +217,7 @@ def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPr
             say(time_report(result, {k: v - before[k] for k, v in compute.phases(latency).items()}))
             seen += result.candidates
             write_front(out / f"front-{device_name(table.name)}.json", table.name, out / "candidates.jsonl")
-            row = choose_and_export(ctx, table, ranked_within(seen, limit), b, latency, verifiable)
+            row = choose_and_export(ctx, table, measuring_order(ctx, ranked_within(seen, limit)), b, latency, verifiable)
             row["session_drift"] = drift
             again = corrected_limit(row, base, limit) if attempt == 0 else None
             if again is None:

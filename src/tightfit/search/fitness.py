@@ -147,7 +147,8 @@ class RunAccuracy:
     3-4x faster than eager torch here, same predictions (export parity <= 1e-4 is checked
     for every pick by tightfit.export.cut). Backend "torch" is tightfit.recalibrate.subnet_accuracy."""
 
-    def __init__(self, run: TrainedRun, ds: Dataset, val_images: int = 0, backend: str = "onnxruntime", skip: int = 0):
+    def __init__(self, run: TrainedRun, ds: Dataset, val_images: int = 0, backend: str = "onnxruntime", skip: int = 0,
+                 recalibrator: Optional[Recalibrator] = None):
         if backend not in ("onnxruntime", "torch"):
             raise UserError(f"evaluation backend {backend!r} is unknown: use 'onnxruntime' or 'torch'")
         cfg = run.recipe
@@ -161,7 +162,7 @@ class RunAccuracy:
         part = slice(skip, skip + self.images)
         self.val = list(eval_batches(ds.val_x[part], ds.val_y[part], ds, max(cfg.train.eval_batch_size, 512)))
         self.recal_s = self.export_s = self.val_s = 0.0
-        self.recalibrate = Recalibrator(run.supernet, self.calib)
+        self.recalibrate = recalibrator or Recalibrator(run.supernet, self.calib)  # shared: its caches are per weights
 
     def tag(self, run_dir: Path) -> dict[str, Any]:
         """What the cached figures depend on: recipe, the exact weights, recalibration and images."""

@@ -15,6 +15,8 @@ class SearchSettings:
     seed: int = 0
     top: int = 4                  # candidates measured directly per budget
     val_images: int = 0           # cap on validation images per evaluation (0 = the whole split)
+    rescore: int = 8              # with val_images: the best N candidates per budget are scored again on the
+    #                               whole split before measurement, so a cheap ranking does not decide the pick
     backend: str = "onnxruntime"  # validation pass: "onnxruntime" (fast) or "torch"
     slack: Optional[float] = None # search up to budget x (1 + slack) when picks are measured here;
     #                               None: the predictor's leave-one-out error, clamped to 5-25 %
