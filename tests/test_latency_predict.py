@@ -347,3 +347,23 @@ def test_profile_host_end_to_end(run_dir, tmp_path):
     (tmp_path / "foreign.json").write_text(json.dumps(foreign))
     with pytest.raises(UserError, match="can only check a table of this machine"):
         check_predictor(run_dir, tmp_path / "foreign.json", n=5, protocol=quick, progress=False)
+
+
+def test_inspect_shows_the_space_and_the_latency_range_a_table_predicts(bundle, run_dir, tmp_path):
+    # Issue "users choose budgets blind": `tightfit inspect RECIPE --table T --subnet KEY`. Sizes are checked against
+    # torch's own parameter count of the extracted network (sum of numel), latencies against the predictor.
+    from tightfit.report.inspect import inspect
+    recipe, supernet = load_source(bundle.parent)
+    table = synthetic_table(bundle, tmp_path)
+    key = recipe.space.middle().to_key()
+    text = inspect(str(run_dir / "recipe.toml"), [str(table)], [key], front=False)
+    assert f"space: {recipe.space.size():,} subnets" in text
+    pred = LatencyPredictor(load_table(table), recipe.space, 3, 15)
+    for name in ("smallest", "middle", "largest"):
+        sub = getattr(recipe.space, name)()
+        params = sum(p.numel() for p in extract_subnet(supernet, sub).parameters())
+        assert re.search(rf"{name}\s+{params:,} params", text), (name, params, text)
+        assert f"{pred.predict_ms(sub):.3f} ms ({name})" in text
+    assert f"subnet {key}:" in text and f"predicted p90 {pred.predict_ms(recipe.space.middle()):.3f} ms" in text
+    with pytest.raises(UserError, match="neither a recipe file nor a run directory"):
+        inspect(str(tmp_path / "missing"), [], [], front=False)

@@ -254,3 +254,53 @@ def test_runner_works_with_torch_unimportable(tmp_path, models):
     assert not marker.exists(), "something in the on-device path tried to import torch"
     table = check_table(out)
     assert all(len(e["repeats"]) == 2 for e in table["entries"].values())
+
+
+def device_env(tmp_path: Path) -> dict:
+    """A device as the README describes it: Python with numpy and onnxruntime, nothing else (run with
+    ``python -S``, so site-packages -- torch, tightfit -- is not on the path; PYTHONPATH links the two)."""
+    import onnxruntime
+    site = tmp_path / "device-site"
+    site.mkdir()
+    for module in (np, onnxruntime):
+        pkg = Path(module.__file__).parent
+        for d in (pkg, pkg.with_name(pkg.name + ".libs")):
+            if d.is_dir():
+                (site / d.name).symlink_to(d)
+    env = {k: v for k, v in os.environ.items() if k != "PYTHONPATH"}
+    env["PYTHONPATH"] = str(site)
+    probe = subprocess.run([sys.executable, "-S", "-c", "import numpy, onnxruntime\ntry:\n import tightfit\nexcept "
+                            "ImportError:\n pass\nelse:\n raise SystemExit(3)\ntry:\n import torch\nexcept ImportError:\n"
+                            " pass\nelse:\n raise SystemExit(4)"], env=env, cwd=tmp_path, capture_output=True)
+    assert probe.returncode == 0, probe.stderr  # numpy and onnxruntime import; tightfit and torch do not
+    return env
+
+
+def test_the_probe_bundle_runs_alone_where_only_numpy_and_onnxruntime_are_installed(tmp_path, tiny_run):
+    # README "Many target devices": copy the bundle, run `python probe.zip --out DEVICE.json` there, and QA runs
+    # `python probe.zip verify EXPORT_DIR` with the bundle's own copy of the on-device code.
+    import shutil
+    from tightfit.export.by_hand import cut_subnets
+    from tightfit.latency.probe import write_bundle
+    zipped = write_bundle(tiny_run, tmp_path / "host" / "probe", n_subnets=2, zip=True, progress=False)
+    cut = cut_subnets(tiny_run, ["smallest"], tmp_path / "host" / "exports", budget_ms=1000.0)[0]
+    device = tmp_path / "device"
+    device.mkdir()
+    shutil.copy(zipped, device / "probe.zip")
+    shutil.copytree(cut.onnx_path.parent, device / "export")
+    env = device_env(tmp_path)
+    proc = subprocess.run([sys.executable, "-S", "probe.zip", "--out", "dev.json", *TINY_FLAGS, "--repeats", "2"],
+                          env=env, cwd=device, capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    table = json.loads((device / "dev.json").read_text())
+    index = json.loads(zipfile.ZipFile(zipped).read("probe/index.json"))
+    assert set(table["entries"]) == {e["id"] for e in index["entries"]}
+    qa = subprocess.run([sys.executable, "-S", "probe.zip", "verify", "export", "--quick", "--repeats", "1"],
+                        env=env, cwd=device, capture_output=True, text=True, timeout=300)
+    assert qa.returncode == 0 and "PASS" in qa.stdout + qa.stderr, qa.stderr[-3000:]
+    assert json.loads((device / "verdict.json").read_text())["pass"] is True
+    # the unpacked folder runs the same way
+    folder = subprocess.run([sys.executable, "-S", str(tmp_path / "host" / "probe"), "--out", "dev2.json",
+                             *TINY_FLAGS, "--repeats", "1"], env=env, cwd=device, capture_output=True, text=True,
+                            timeout=300)
+    assert folder.returncode == 0 and (device / "dev2.json").is_file(), folder.stderr[-3000:]

@@ -133,3 +133,21 @@ def test_training_levers_at_their_defaults_keep_the_recipe_hash():
     assert recipe.hash() == hashlib.sha256(json.dumps(d, sort_keys=True).encode()).hexdigest()[:16]
     changed = dataclasses.replace(recipe, train=dataclasses.replace(recipe.train, lr_end=0.05))
     assert changed.hash() != recipe.hash()
+
+
+def test_the_recipe_reference_is_generated_from_the_dataclasses_and_documents_every_key():
+    # This project's rule (src/tightfit/recipe_reference.py): docs/recipe-reference.md is generated, every key the
+    # parser accepts is in it with a meaning, so a new key without a comment fails here.
+    from dataclasses import fields
+    from tightfit.recipe import SPACE_KEYS, STAGE_KEYS, DataConfig, TrainConfig
+    from tightfit.recipe_reference import field_notes, reference_markdown
+    text = reference_markdown()
+    committed = (Path(__file__).resolve().parents[1] / "docs" / "recipe-reference.md").read_text("utf-8")
+    assert committed == text + "\n", "docs/recipe-reference.md is stale: python -m tightfit.recipe_reference > docs/recipe-reference.md"
+    for cls in (DataConfig, TrainConfig):
+        notes = field_notes(cls)
+        missing = [f.name for f in fields(cls) if not notes.get(f.name)]
+        assert not missing, f"{cls.__name__} fields without a trailing comment: {missing}"
+        assert all(f"| `{f.name}` |" in text for f in fields(cls))
+    assert all(f"| `{k}` |" in text and m for k, (_, m) in {**SPACE_KEYS, **STAGE_KEYS}.items())
+    assert "| `random_subnets` | `2` |" in text and "| `shift` | `2` |" in text  # defaults come from the dataclass

@@ -15,7 +15,7 @@ from tightfit.export.commands import add_cut_parser
 from tightfit.latency.commands import add_latency_check_parser, add_probe_parser, add_profile_parser
 from tightfit.ondevice.reproduce import add_reproduce_parser
 from tightfit.ondevice.verify import add_verify_parser
-from tightfit.report.commands import add_report_parser
+from tightfit.report.commands import add_inspect_parser, add_report_parser
 from tightfit.search.commands import add_search_parser
 from tightfit.train.commands import add_train_parser
 
@@ -26,6 +26,7 @@ measured latency budget, exports it to ONNX with a manifest, and lets QA re-meas
 
 the day, in pipeline order:
   tightfit train recipes/demo.toml --run runs/demo          1. train the supernet once
+  tightfit inspect runs/demo                                   (space, accuracies, latency range: pick budgets)
   tightfit profile runs/demo --name this-host               2. latency table of this machine
   tightfit probe runs/demo --zip                               (or: a probe bundle for another device)
   tightfit search runs/demo --table runs/demo/latency/this-host.json --budget 0.3ms
@@ -55,6 +56,7 @@ def build_parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
 
     add_train_parser(sub)
+    add_inspect_parser(sub)
     add_probe_parser(sub)
     add_profile_parser(sub)
     add_latency_check_parser(sub)

@@ -23,10 +23,10 @@ DISTILL_LOSSES = ("soft_ce", "kl")
 
 @dataclass(frozen=True)
 class DataConfig:
-    source: str = "builtin"
+    source: str = "builtin"        # "builtin" (generated inspection images), "folder" or "fashion-mnist"
     path: str = ""                 # image folder root, or folder holding the Fashion-MNIST IDX files
-    image_size: int = 32
-    channels: int = 3
+    image_size: int = 32           # side of the square input in pixels (folders: shorter side resized, centre crop)
+    channels: int = 3              # 1 (grey) or 3 (RGB)
     samples: int = 12000           # builtin only: images generated in total
     val_fraction: float = 0.1      # carved from the training data
     test_fraction: float = 0.15    # builtin/folder only (Fashion-MNIST has its own test set)
@@ -37,21 +37,21 @@ class DataConfig:
 
 @dataclass(frozen=True)
 class TrainConfig:
-    epochs: float = 3.0
-    batch_size: int = 128
-    optimizer: str = "sgd"
-    lr: float = 0.1
-    momentum: float = 0.9
-    weight_decay: float = 4e-5
-    warmup_epochs: float = 0.2
-    label_smoothing: float = 0.1
+    epochs: float = 3.0            # may be fractional; the cosine schedule spans them
+    batch_size: int = 128          # the global batch (split over processes under torchrun)
+    optimizer: str = "sgd"         # "sgd" (Nesterov momentum) or "adamw"
+    lr: float = 0.1                # peak learning rate, after a linear warm-up
+    momentum: float = 0.9          # sgd only
+    weight_decay: float = 4e-5     # not applied to BatchNorm and bias parameters
+    warmup_epochs: float = 0.2     # linear warm-up from 0 to lr
+    label_smoothing: float = 0.1   # on hard-label losses: the largest's (every subnet's without distill)
     random_subnets: int = 2        # sandwich: largest + smallest + this many random subnets per step
     distill: bool = True           # in-place distillation from the largest subnet
     kernel_mode: str = "centre"    # "centre" crop or learned "transform" (Cai et al. 2020)
-    channels_last: bool = False
-    recalibration_batches: int = 20
+    channels_last: bool = False    # NHWC memory format in training (faster on CPU here)
+    recalibration_batches: int = 20    # training batches that re-estimate BN statistics per evaluated subnet
     checkpoint_every: int = 0      # steps; 0 = only at the end of every epoch
-    eval_batch_size: int = 512
+    eval_batch_size: int = 512     # batch of validation passes (no effect on results)
     # Training levers for short schedules; each default is the behaviour before they existed.
     zero_init_residual: bool = False   # last BN gamma of every skip block starts at 0 (Goyal et al. 2017)
     largest_dropout: float = 0.0   # > 0: dropout before the classifier in the largest's pass only, none in the others
@@ -159,11 +159,33 @@ def _widths(table: dict, key: str, where: str, default: int | None) -> tuple[int
     return v, ()
 
 
+# The [space] and [[space.stage]] keys (TOML names differ from SpaceSpec/StageSpec fields): key -> (default, meaning).
+SPACE_KEYS = {
+    "stem_channels": ("16", "stem conv output channels, or a list of allowed widths such as [8, 16] (elastic width)"),
+    "stem_stride": ("1", "1 or 2"),
+    "stem_activation": ('"relu6"', "activation after the stem conv: " + ", ".join(ACTIVATIONS)),
+    "head_channels": ("0", "1x1 conv before pooling; 0 = none"),
+    "head_activation": ('"relu6"', "activation after the head conv"),
+    "dropout": ("0.0", "dropout before the classifier, in [0, 1)"),
+    "stage": ("(required)", "one [[space.stage]] table per stage, input to output"),
+}
+STAGE_KEYS = {
+    "channels": ("(required)", "output channels, or a list of allowed widths such as [24, 32, 40] (the widest sizes "
+                               "the weights; a narrower choice uses the first channels)"),
+    "stride": ("1", "stride of the stage's first block: 1 or 2"),
+    "depths": ("(required)", "allowed numbers of blocks, e.g. [1, 2, 3]"),
+    "expansions": ("(required)", "allowed expansion ratios (hidden = round(input channels x ratio)); 1 = no expand conv"),
+    "kernels": ("(required)", "allowed depthwise kernel sizes, odd, e.g. [3, 5]"),
+    "activation": ('"relu6"', "activation in the stage's blocks: " + ", ".join(ACTIVATIONS)),
+    "squeeze_excite": ("false", "squeeze-excite after the depthwise conv"),
+}
+
+
 def _stage(st: Any, i: int) -> StageSpec:
     where = f"space.stage[{i}]."
     if not isinstance(st, dict):
         raise UserError(f"recipe key 'space.stage[{i}]' must be a table ([[space.stage]])")
-    _check_keys(st, {"channels", "stride", "depths", "expansions", "kernels", "activation", "squeeze_excite"}, where)
+    _check_keys(st, set(STAGE_KEYS), where)
     if "channels" not in st:
         raise _fail(where + "channels", None, "must be an integer > 0, or a list of allowed widths")
     chs, widths = _widths(st, "channels", where, None)
@@ -184,8 +206,7 @@ def _stage(st: Any, i: int) -> StageSpec:
 
 
 def _space(sp: dict) -> SpaceSpec:
-    _check_keys(sp, {"stem_channels", "stem_stride", "stem_activation", "head_channels",
-                     "head_activation", "dropout", "stage"}, "space.")
+    _check_keys(sp, set(SPACE_KEYS), "space.")
     stem, stem_widths = _widths(sp, "stem_channels", "space.", 16)
     stem_stride = _typed(sp, "stem_stride", "space.", int, 1)
     if stem_stride not in (1, 2):

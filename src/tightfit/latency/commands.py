@@ -11,8 +11,9 @@ def _cmd_probe(args: argparse.Namespace) -> int:
     from tightfit.latency.probe import write_bundle
     out = write_bundle(args.run, args.out, n_subnets=args.subnets, zip=args.zip)
     print(f"probe bundle: {out}")
-    print(f"on the device: python -m tightfit.ondevice.runner {out.name} --out DEVICE.json, "
-          f"then copy DEVICE.json to {args.run}/latency/")
+    print(f"copy {out.name} to the device (Python 3 with numpy and onnxruntime; the bundle carries its own code) "
+          f"and run there:\n  python {out.name} --out DEVICE.json\nthen copy DEVICE.json to {args.run}/latency/ "
+          f"(QA on the device: python {out.name} verify EXPORT_DIR)")
     return 0
 
 
@@ -20,6 +21,9 @@ def _cmd_profile(args: argparse.Namespace) -> int:
     from tightfit.latency.table import profile_host
     out = profile_host(args.run, args.name, threads=args.threads, quick=args.quick, n_subnets=args.subnets)
     print(f"latency table: {out}")
+    from tightfit.latency.predict import predicted_range
+    from tightfit.train.rundir import load_trained
+    print(predicted_range(load_trained(args.run).recipe, out))
     return 0
 
 

@@ -187,3 +187,13 @@ def load_predictor(recipe: Recipe, table_path, target: str = "budget_stat_ms") -
     chs, size = recipe.data.channels, recipe.data.image_size
     table = load_table(table_path, space_hash(recipe.space, chs, size))
     return LatencyPredictor(table, recipe.space, chs, size, target=target)
+
+
+def predicted_range(recipe: Recipe, table_path) -> str:
+    """One line a user reads before choosing budgets: what the table predicts for the smallest, middle
+    and largest subnet (the budget percentile, p90 by default)."""
+    pred = load_predictor(recipe, table_path)
+    sp, pct = recipe.space, int(pred.table.percentile)
+    lo, mid, hi = (pred.predict_ms(s) for s in (sp.smallest(), sp.middle(), sp.largest()))
+    return (f"{pred.table.name}: predicted p{pct} {lo:.3f} ms (smallest) .. {mid:.3f} ms (middle) .. {hi:.3f} ms "
+            f"(largest); budgets between these can be searched ({len(pred.table.entries)} table entries)")

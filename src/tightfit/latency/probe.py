@@ -143,13 +143,25 @@ def _replace_folder(tmp: Path, out: Path) -> None:
         tmp.rename(out)
 
 
+def _copy_device_code(folder: Path) -> None:
+    """The torch-free on-device code (runner, verify) and ``__main__.py``, so the bundle runs alone."""
+    package = Path(__file__).resolve().parents[1]  # src/tightfit
+    for f in [package / "__init__.py", *sorted((package / "ondevice").glob("*.py"))]:
+        write_bytes(folder / "tightfit" / f.relative_to(package), f.read_bytes())
+    write_bytes(folder / "__main__.py", (package / "ondevice" / "bundle_main.py").read_bytes())
+
+
 def _zip_folder(folder: Path, dest: Path) -> Path:
-    """Zip the bundle with one top-level folder (the runner accepts that layout)."""
+    """Zip the bundle: the data under one top-level folder (the runner accepts that layout), the code
+    and ``__main__.py`` at the root, so that ``python probe.zip`` runs it."""
+    code = {"__main__.py", "tightfit"}
+
     def write(tmp: str) -> None:
         with zipfile.ZipFile(tmp, "w", zipfile.ZIP_DEFLATED) as zf:
             for f in sorted(folder.rglob("*")):
                 if f.is_file():
-                    zf.write(f, Path(folder.name) / f.relative_to(folder))
+                    rel = f.relative_to(folder)
+                    zf.write(f, rel if rel.parts[0] in code else Path(folder.name) / rel)
     return atomic_write(dest, write)
 
 
@@ -184,6 +196,7 @@ def write_bundle(source: str | Path, out: str | Path | None = None, n_subnets: i
             "recipe": {"name": recipe.name, "hash": recipe.hash()},
             "input": {"channels": recipe.data.channels, "image_size": recipe.data.image_size},
             "entries": entries})
+        _copy_device_code(tmp)
         _replace_folder(tmp, out)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)

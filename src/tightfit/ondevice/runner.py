@@ -92,9 +92,9 @@ def _find_root(folder: Path, source: Path) -> Path:
     """The folder holding index.json: the top, or a zip's single top-level folder."""
     if (folder / "index.json").is_file():
         return folder
-    subdirs = [d for d in folder.iterdir() if d.is_dir() and d.name != "__MACOSX"]
-    if len(subdirs) == 1 and (subdirs[0] / "index.json").is_file():
-        return subdirs[0]
+    roots = [d for d in folder.iterdir() if d.is_dir() and (d / "index.json").is_file()]
+    if len(roots) == 1:  # a zip's one data folder (its code sits beside it)
+        return roots[0]
     raise BundleError(f"{source} has no index.json, so it is not a probe bundle; "
                       "pass the folder written by the probe exporter (see --help for the layout)")
 

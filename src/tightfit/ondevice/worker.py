@@ -33,7 +33,8 @@ def run_in_fresh_process(paths: list[str], protocol: Protocol, chunk: int,
                                 "protocol": protocol.to_dict(), "label": label})
         env = dict(os.environ)
         env["PYTHONPATH"] = os.pathsep.join(filter(None, [_PACKAGE_ROOT, env.get("PYTHONPATH")]))
-        proc = subprocess.run([sys.executable, "-m", "tightfit.ondevice.worker",
+        flags = ["-S"] if sys.flags.no_site else []  # a child sees the same packages as its parent
+        proc = subprocess.run([sys.executable, *flags, "-m", "tightfit.ondevice.worker",
                                str(job), str(result)], env=env, stdin=subprocess.DEVNULL)
         data = json.loads(result.read_text("utf-8")) if result.exists() else {}
         if proc.returncode != 0 or "results" not in data:

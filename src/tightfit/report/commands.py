@@ -21,3 +21,23 @@ def add_report_parser(sub: argparse._SubParsersAction) -> None:
     r.add_argument("run", help="run directory")
     r.add_argument("--out", default=None, help="folder for the report (default RUN_DIR/report)")
     r.set_defaults(func=_cmd_report)
+
+
+def _cmd_inspect(args: argparse.Namespace) -> int:
+    from tightfit.report.inspect import inspect
+    print(inspect(args.target, args.table or [], args.subnet or [], args.front))
+    return 0
+
+
+def add_inspect_parser(sub: argparse._SubParsersAction) -> None:
+    r = sub.add_parser("inspect", help="what a recipe, a run and its latency tables offer (before choosing budgets)",
+                       description="For a recipe file: the space's size and the params / MACs of its smallest, "
+                                   "middle and largest subnets. For a run directory also: whether training "
+                                   "finished and its last validation accuracies, the latency each table in "
+                                   "RUN/latency predicts for the smallest, middle and largest subnet (the range "
+                                   "budgets can be searched in), and the picks of earlier searches.")
+    r.add_argument("target", help="recipe .toml or run directory")
+    r.add_argument("--table", action="append", help="latency table to predict with (default: RUN/latency/*.json)")
+    r.add_argument("--subnet", action="append", help="a subnet key: its params, MACs and predicted latency")
+    r.add_argument("--front", action="store_true", help="also list the Pareto front each search found")
+    r.set_defaults(func=_cmd_inspect)

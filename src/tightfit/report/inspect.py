@@ -1,0 +1,95 @@
+"""`tightfit inspect`: what a recipe's space, a run and its latency tables offer, before choosing budgets.
+
+Users otherwise choose budgets blind: this prints the space's size and its params / MACs range,
+the predicted latency range on each table, one subnet's figures on demand, the front a search
+found and the picks it made.
+"""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Optional
+
+from tightfit.errors import UserError
+from tightfit.latency.predict import load_predictor, predicted_range
+from tightfit.latency.probe import _class_count
+from tightfit.model.arithmetic import architecture_size
+from tightfit.ondevice.files import read_jsonl
+from tightfit.recipe import Recipe, load_recipe
+
+
+def space_lines(recipe: Recipe, num_classes: int) -> list[str]:
+    sp, data = recipe.space, recipe.data
+    widths = ", elastic width" if sp.elastic_width else ""
+    lines = [f"space: {sp.size():,} subnets over {len(sp.stages)} stages{widths}; input {data.channels}x"
+             f"{data.image_size}x{data.image_size}, {num_classes} classes"]
+    for name in ("smallest", "middle", "largest"):
+        s = getattr(sp, name)()
+        params, macs = architecture_size(sp, s, data.channels, data.image_size, num_classes)
+        lines.append(f"  {name:<8} {params:>10,} params {macs / 1e6:>8.2f} M MACs   {s.to_key()}")
+    return lines
+
+
+def subnet_lines(recipe: Recipe, num_classes: int, key: str, tables: list[Path]) -> list[str]:
+    sp, data = recipe.space, recipe.data
+    subnet = sp.parse_key(key)
+    params, macs = architecture_size(sp, subnet, data.channels, data.image_size, num_classes)
+    lines = [f"subnet {subnet.to_key()}: {params:,} params, {macs / 1e6:.2f} M MACs"]
+    for t in tables:
+        pred = load_predictor(recipe, t)
+        lines.append(f"  {pred.table.name}: predicted p{int(pred.table.percentile)} {pred.predict_ms(subnet):.3f} ms")
+    return lines
+
+
+def training_lines(run_dir: Path, complete: bool, epochs: float) -> list[str]:
+    evals = [r for r in read_jsonl(run_dir / "metrics.jsonl")[0] if "val_acc_largest" in r]
+    state = "complete" if complete else "NOT complete (interrupted: resume with tightfit train ... --resume)"
+    line = f"training: {state}; {epochs:g} epochs in the recipe"
+    if evals:
+        e = evals[-1]
+        line += (f"; after epoch {e['epoch']:g}: largest {e['val_acc_largest']:.2f} %, smallest "
+                 f"{e['val_acc_smallest']:.2f} % validation")
+    return [line]
+
+
+def search_lines(run_dir: Path, front: bool) -> list[str]:
+    lines = []
+    picks = run_dir / "search" / "picks.json"
+    if picks.is_file():
+        for p in json.loads(picks.read_text("utf-8")):
+            got = p.get("measured") or {}
+            meas = f"measured {got['budget_stat_ms']:.3f} ms" if got.get("budget_stat_ms") else "not measured here"
+            lines.append(f"pick {p['device']} {p['budget_ms']:g} ms: {p['key']}  val {p['val_acc']:.2f} %, {meas}, "
+                         f"{'fits' if p['fits'] else 'DOES NOT FIT'}")
+    for path in sorted((run_dir / "search").glob("front-*.json")) if front else []:
+        rows = json.loads(path.read_text("utf-8"))
+        lines.append(f"front on {path.stem.removeprefix('front-')} ({len(rows)} subnets, predicted ms, validation %):")
+        lines += [f"  {r['predicted_ms']:.4f} ms  {r['val_acc']:6.2f} %  {r['key']}" for r in rows]
+    return lines
+
+
+def inspect(target: str, tables: list[str], subnets: list[str], front: bool) -> str:
+    """The text of `tightfit inspect TARGET`: TARGET is a recipe file or a run directory."""
+    path = Path(target)
+    run_dir: Optional[Path] = None
+    if path.is_dir():
+        from tightfit.train.rundir import load_trained
+        run = load_trained(path)
+        recipe, classes, run_dir = run.recipe, len(run.class_names), path
+    elif path.is_file():
+        recipe = load_recipe(path)
+        classes = _class_count(recipe)
+    else:
+        raise UserError(f"{target} is neither a recipe file nor a run directory")
+    table_paths = [Path(t) for t in tables] or (sorted((run_dir / "latency").glob("*.json")) if run_dir else [])
+    lines = space_lines(recipe, classes)
+    if run_dir is not None:
+        lines += training_lines(run_dir, run.complete, recipe.train.epochs)
+    lines += [predicted_range(recipe, t) for t in table_paths]
+    if run_dir is not None and not table_paths:
+        lines.append(f"no latency table yet: tightfit profile {run_dir} (this machine) or tightfit probe (another device)")
+    for key in subnets:
+        lines += subnet_lines(recipe, classes, key, table_paths)
+    if run_dir is not None:
+        lines += search_lines(run_dir, front)
+    return "\n".join(lines)
