@@ -59,7 +59,8 @@ def test_manifest_fields_and_sha256(tmp_path):
     assert written["architecture"]["key"] == subnet.to_key() and written["input"]["shape"] == [None, 3, 16, 16]
     # parameter count as torch itself counts it (sum of Parameter.numel over the shipped network)
     assert written["architecture"]["params"] == sum(p.numel() for p in net.parameters())
-    assert written["budget"] == {"ms": 0.15, "percentile": 90.0, "device": "this-host"}
+    assert {k: written["budget"][k] for k in ("ms", "percentile", "device")} == {"ms": 0.15, "percentile": 90.0, "device": "this-host"}
+    assert "p90" in written["budget"]["rule"]
     assert [d for d in written["architecture"]["description"] if d["type"] == "inverted_residual"].__len__() == \
         sum(subnet.depths)
     state = torch.load(folder / "state_dict.pt", weights_only=True)

@@ -63,7 +63,7 @@ def describe_hardware() -> dict[str, Any]:
         "usable_cores": _usable_cores(),
         "cpu_frequency": _cpu_frequency(),
         "os": platform.system(),
-        "kernel": platform.release(),
+        "os_release": platform.release(),
         "platform": platform.platform(),
         "python": sys.version.split()[0],
         "python_implementation": platform.python_implementation(),

@@ -55,7 +55,7 @@ class Protocol:
     rewarm_runs: int = 1  # untimed runs at the start of each chunk, after switching models
     repeats: int = 5  # fresh processes, pooled
     percentile: float = 90.0  # a budget is met when this percentile <= budget
-    max_repeat_spread: float = 0.10  # a figure whose repeats' percentiles differ by more is flagged
+    reproduce_tolerance: float = 0.10  # stable: a later pooled figure lands within this share (95 % bound, repeats.py)
 
     def to_dict(self) -> dict[str, Any]:
         """Fields plus the fixed session settings, for the table header."""

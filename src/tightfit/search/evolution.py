@@ -155,7 +155,7 @@ def _fresh_within(space: SpaceSpec, rng: random.Random, ledger: _Ledger, budget_
                   floor_ms: float = 0.0) -> Subnet:
     """A within-budget subnet not evaluated yet when one turns up in a few dozen draws."""
     s = sample_within(space, rng, ledger.latency, budget_ms, tries, floor_ms)
-    for _ in range(50):
+    for _ in range(10):
         if s.to_key() not in ledger.seen:
             break
         s = sample_within(space, rng, ledger.latency, budget_ms, tries, floor_ms)
@@ -195,13 +195,15 @@ def regularized_evolution(space: SpaceSpec, fitness: Fitness, latency: Latency, 
     for _ in range(min(cfg.population, cfg.evaluations)):
         population.append(ledger.evaluate(_fresh_within(space, rng, ledger, budget_ms, cfg.sample_tries, floor_ms), 0))
     cycle, stalls = 0, 0
-    while len(ledger.seen) < cfg.evaluations and stalls < 10 * cfg.evaluations:
+    # Consecutive cycles without a new subnet: the budget admits too few to find more. Each such cycle
+    # costs thousands of draws, and 10 x evaluations of them once took 56 s of a 59 s search.
+    while len(ledger.seen) < cfg.evaluations and stalls < max(cfg.population, 8):
         tournament = rng.sample(list(population), min(cfg.sample_size, len(population)))
         parent = max(tournament, key=lambda c: c.fitness)
         before = len(ledger.seen)
         child = ledger.evaluate(_child(space, parent.subnet, rng, ledger, budget_ms, cfg, floor_ms),
                                 1 + cycle // max(cfg.population, 1))
-        stalls += len(ledger.seen) == before  # the budget admits too few subnets to find new ones
+        stalls = stalls + 1 if len(ledger.seen) == before else 0
         population.append(child)
         population.popleft()
         cycle += 1
