@@ -92,3 +92,12 @@ def test_each_candidate_keeps_its_own_measured_guard():
     assert pick(["steady", "jumpy", "slow-ok"]) == "steady"
     assert pick(["jumpy", "slow-ok"]) == "slow-ok"           # 0.93 > 1 - 0.09
     assert pick(["steady", "jumpy", "slow-ok"], guard=0.05) == "jumpy"   # --guard 5 overrides both
+
+
+def test_a_miss_without_a_positive_prediction_still_falls_back():
+    # A calibration fit can predict <= 0 ms for a tiny subnet (seen in the benchmark's smoke setting): with no
+    # measured/predicted ratio the round must still say what it saw and go on, not fail formatting it.
+    ranked, smallest = [Candidate("a", None, 90.0, 0.0, 0)], Candidate("smallest", None, 70.0, 0.0, -1)
+    said = []
+    choice = measure_and_choose(ranked, 1.0, _measured_as({"a": 1.3, "smallest": 0.4}), 1, lambda: smallest, said.append)
+    assert choice.pick.cand.key == "smallest" and choice.fits and "x predicted" not in said[0]

@@ -127,8 +127,9 @@ def measure_and_choose(ranked: list[Candidate], budget_ms: float, measure: Measu
             note = "" if attempt == 0 else "the most accurate candidates measured over budget: fell back to faster ones"
             return Choice(_most_accurate(fitting), True, note, tried)
         ratio = measured_ratio(tried)
+        vs = "" if ratio is None else f"; measured = {ratio:.2f} x predicted"  # None: no positive prediction
         say(f"  none of {len(tried)} measured candidates fits the budget less its guard "
-            f"({_guards_text(tried, guard)}; measured = {ratio:.2f} x predicted): trying faster ones")
+            f"({_guards_text(tried, guard)}{vs}): trying faster ones")
     within = [t for t in tried if t.measured["budget_stat_ms"] <= budget_ms]
     if within:
         return Choice(_most_accurate(within), True, "no candidate kept its guard; this one fits the budget", tried)
