@@ -69,7 +69,7 @@ def layer_module(supernet: Supernet, cfg: LayerConfig) -> nn.Module:
     return _Head(conv, extract_classifier(supernet, head or cfg.in_channels)).eval()
 
 
-def _class_count(recipe: Recipe) -> int:
+def class_count(recipe: Recipe) -> int:
     """Classes the recipe's data has, without loading it (only the classifier's width depends on it)."""
     if recipe.data.source == "builtin":
         from tightfit.data.synthetic import CLASS_NAMES
@@ -102,7 +102,7 @@ def load_source(source: str | Path) -> tuple[Recipe, Supernet]:
         source = source / "recipe.toml"
     recipe = load_recipe(source)
     torch.manual_seed(recipe.seed)
-    return recipe, build_supernet(recipe, _class_count(recipe)).eval()
+    return recipe, build_supernet(recipe, class_count(recipe)).eval()
 
 
 @contextmanager

@@ -12,7 +12,7 @@ from typing import Optional
 
 from tightfit.errors import UserError
 from tightfit.latency.predict import load_predictor, predicted_range
-from tightfit.latency.probe import _class_count
+from tightfit.latency.probe import class_count
 from tightfit.model.arithmetic import architecture_size
 from tightfit.ondevice.files import read_jsonl
 from tightfit.recipe import Recipe, load_recipe
@@ -78,7 +78,7 @@ def inspect(target: str, tables: list[str], subnets: list[str], front: bool) -> 
         recipe, classes, run_dir = run.recipe, len(run.class_names), path
     elif path.is_file():
         recipe = load_recipe(path)
-        classes = _class_count(recipe)
+        classes = class_count(recipe)
     else:
         raise UserError(f"{target} is neither a recipe file nor a run directory")
     table_paths = [Path(t) for t in tables] or (sorted((run_dir / "latency").glob("*.json")) if run_dir else [])
