@@ -39,9 +39,9 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     p.add_argument("--smoke", action="store_true",
                    help="smallest setting (a few hundred images, tiny search) to check the script end to end")
     p.add_argument("--threads", type=int, default=None, help="torch threads for training (default: all cores)")
-    p.add_argument("--reserve", type=float, default=0.3,
+    p.add_argument("--reserve", type=float, default=0.33,
                    help="share of the family's CPU-seconds kept for profiling + search; the rest buys supernet "
-                        "epochs (default 0.3)")
+                        "epochs (default 0.33)")
     return p.parse_args(argv)
 
 
@@ -118,7 +118,7 @@ def throughput(run: Path) -> dict:
 
 DEVICES = (("host-1-thread", 1), ("host-2-threads", 2))  # two latency profiles of this machine (intra-op threads)
 BUDGET_MEMBERS = ("w0.5-min", "w0.5-mid", "w0.75-max")     # a budget sits just above each of these members
-BUDGET_ROOM = 1.08  # x the member's measured p90: it still fits when the final session runs a few % slower
+BUDGET_ROOM = 1.12  # x the member's measured p90: at 1.08 the final session (8 % slower, 9300263) pushed 4 of 6 over
 
 
 def budgets_at_members(family_p90: dict[str, float], names: tuple[str, ...]) -> dict[float, str]:
@@ -128,10 +128,10 @@ def budgets_at_members(family_p90: dict[str, float], names: tuple[str, ...]) -> 
 
 
 def search_settings(smoke: bool):
-    """Cheap ranking (1,000 validation images), the best 8 re-scored on all 6,000, 3 measured per budget."""
+    """Cheap ranking (3,000 validation images), the best 8 re-scored on all 6,000, 3 measured per budget."""
     from tightfit.search.settings import SearchSettings
     return (SearchSettings(population=4, evaluations=8, top=1, val_images=200, rescore=2) if smoke
-            else SearchSettings(population=12, evaluations=48, top=3, val_images=1000, rescore=8))
+            else SearchSettings(population=12, evaluations=48, top=3, val_images=3000, rescore=8))
 
 
 def search(run: Path, table: Path, budgets: list[float], smoke: bool) -> list[dict]:
@@ -159,7 +159,7 @@ def search(run: Path, table: Path, budgets: list[float], smoke: bool) -> list[di
                         if any(w in ln for w in ("evaluations/s", "re-scored", "after the search"))]} for p in picks]
 
 
-def sample_epoch_cpu(recipe, smoke: bool, steps: int = 14, skip: int = 3) -> dict:
+def sample_epoch_cpu(recipe, smoke: bool, steps: int = 30, skip: int = 3) -> dict:
     """CPU-seconds of one epoch of sandwich training, from a few real steps (first ``skip`` not counted)."""
     import torch
     from tightfit.data.dataset import load_dataset, steps_per_epoch, train_batches

@@ -89,6 +89,19 @@ def test_guard_covers_a_later_measurement_95_percent_of_the_time():
     assert 0.93 <= covered / 4000 <= 0.985
 
 
+def test_guard_of_ten_repeats_against_a_later_five_still_covers_95_percent():
+    # A candidate measured twice (10 repeats pooled, search/choose.py) meets QA's 5: the difference of the two
+    # means has standard deviation s * sqrt(1/10 + 1/5), wider than sqrt(2/10) would assume. Same simulation.
+    rng = np.random.default_rng(5)
+    covered = narrow = 0
+    for _ in range(4000):
+        now, later = 1 + 0.05 * rng.standard_normal(10), 1 + 0.05 * rng.standard_normal(5)
+        figure = float(now.mean())
+        covered += later.mean() <= figure * (1 + guard_from_spread(list(now), figure, later=5))
+        narrow += later.mean() <= figure * (1 + guard_from_spread(list(now), figure))
+    assert 0.93 <= covered / 4000 <= 0.985 and narrow < covered
+
+
 def test_states_are_described_in_words():
     rng = np.random.default_rng(3)
     two = describe_states(two_state_runs(5000, 0.38, rng))

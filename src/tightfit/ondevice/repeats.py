@@ -36,6 +36,15 @@ def measure_repeated(paths: list[str], protocol: Protocol, chunk: int = 10,
     A process's median can sit several percent (sometimes tens of percent) away
     from another's, so one process is one sample. repeats <= 1 runs in-process.
     """
+    runs = repeat_summaries(paths, protocol, chunk, layers, progress)
+    return {p: combine_repeats(runs[p], protocol) for p in paths}
+
+
+def repeat_summaries(paths: list[str], protocol: Protocol, chunk: int = 10,
+                     layers: Collection[str] = (), progress: Optional[Progress] = None,
+                     ) -> dict[str, list[dict[str, Any]]]:
+    """Each path's per-repeat summaries (with their run times), not yet pooled: a caller that measures
+    again later pools the old repeats with the new ones (combine_repeats)."""
     absolute = {p: os.path.abspath(p) for p in paths}
     abs_layers = {os.path.abspath(p) for p in layers}
     todo = list(dict.fromkeys(absolute.values()))
@@ -44,7 +53,7 @@ def measure_repeated(paths: list[str], protocol: Protocol, chunk: int = 10,
     else:
         runs = [run_in_fresh_process(todo, protocol, chunk, abs_layers, f"repeat {i + 1}/{protocol.repeats}")
                 for i in range(protocol.repeats)]
-    return {p: combine_repeats([r[a] for r in runs], protocol) for p, a in absolute.items()}
+    return {p: [r[a] for r in runs] for p, a in absolute.items()}
 
 
 def combine_repeats(summaries: list[dict[str, Any]], protocol: Protocol) -> dict[str, Any]:
@@ -55,27 +64,28 @@ def combine_repeats(summaries: list[dict[str, Any]], protocol: Protocol) -> dict
     figures = [float(s["budget_stat_ms"]) for s in summaries]
     out["repeat_figures_ms"] = [round(f, 6) for f in figures]
     out["repeat_spread"] = float((max(figures) - min(figures)) / out["budget_stat_ms"]) if len(figures) > 1 else None
-    out["guard"] = guard_from_spread(figures, out["budget_stat_ms"])
+    out["guard"] = guard_from_spread(figures, out["budget_stat_ms"], later=max(1, protocol.repeats))
     out["states"] = describe_states(pooled_ms, protocol.percentile)
     out["stable"], out["note"] = assess(out, summaries, protocol)
     out["repeats"] = [{k: v for k, v in s.items() if k != "times_ms"} for s in summaries]
     return out
 
 
-def guard_from_spread(figures: Sequence[float], figure: float) -> Optional[float]:
-    """Share of `figure` a pick must keep free so that a later measurement of the same kind (pooled
-    over as many fresh processes) still fits, with 95 % confidence.
+def guard_from_spread(figures: Sequence[float], figure: float, later: Optional[int] = None) -> Optional[float]:
+    """Share of `figure` a pick must keep free so that a later measurement pooled over ``later`` fresh
+    processes (default: as many as now) still fits, with 95 % confidence.
 
     Treat each repeat's figure as one draw with standard deviation s; a pooled figure of n repeats
-    then varies by about s / sqrt(n), and the difference of two such figures by s * sqrt(2 / n). The
-    one-sided 95 % bound uses Student's t with n - 1 degrees of freedom (s is estimated from n
-    draws). Never below MIN_GUARD; None with one repeat (the spread is unknown)."""
+    then varies by about s / sqrt(n), and the difference of this figure and a later one of m repeats by
+    s * sqrt(1/n + 1/m). The one-sided 95 % bound uses Student's t with n - 1 degrees of freedom (s is
+    estimated from n draws). Never below MIN_GUARD; None with one repeat (the spread is unknown)."""
     n = len(figures)
     if n < 2 or figure <= 0:
         return None
+    m = n if later is None else later
     t = _T95[min(n - 1, len(_T95)) - 1] if n - 1 <= len(_T95) else 1.645
     s = float(np.std(figures, ddof=1))
-    return max(MIN_GUARD, t * s * math.sqrt(2.0 / n) / figure)
+    return max(MIN_GUARD, t * s * math.sqrt(1.0 / n + 1.0 / m) / figure)
 
 
 def describe_states(times_ms: np.ndarray, percentile: float = 90.0) -> dict[str, Any]:
