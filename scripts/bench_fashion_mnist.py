@@ -159,7 +159,7 @@ def search(run: Path, table: Path, budgets: list[float], smoke: bool) -> list[di
                         if any(w in ln for w in ("evaluations/s", "re-scored", "after the search"))]} for p in picks]
 
 
-def sample_epoch_cpu(recipe, smoke: bool, steps: int = 30, skip: int = 3) -> dict:
+def sample_epoch_cpu(recipe, steps: int = 30, skip: int = 3) -> dict:
     """CPU-seconds of one epoch of sandwich training, from a few real steps (first ``skip`` not counted)."""
     import torch
     from tightfit.data.dataset import load_dataset, steps_per_epoch, train_batches
@@ -482,7 +482,7 @@ def main(argv: list[str] | None = None) -> int:
     budgets = {d: list(targeted[d]) for d, _ in DEVICES}
     for d, bs in budgets.items():
         print(f"budgets {d}: {bs} ms ({BUDGET_ROOM:g} x the measured p90 of {', '.join(names)})")
-    epoch_cpu = state.phase("sample supernet step cost", lambda: sample_epoch_cpu(recipe, args.smoke))
+    epoch_cpu = state.phase("sample supernet step cost", lambda: sample_epoch_cpu(recipe))
     compute = supernet_epochs(side_cpu(state, FAMILY_SIDE), epoch_cpu["cpu_s_per_epoch"], args.reserve,
                               recipe.train.epochs)
     if args.smoke:  # the wiring only: one epoch whatever the family cost

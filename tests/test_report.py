@@ -121,6 +121,20 @@ def test_plotted_front_is_the_non_dominated_set(tmp_path):
         assert plotted == expected and 3 <= len(expected) < len(points)
 
 
+def test_latency_axis_spans_the_data_not_zero(tmp_path):
+    # Plotting practice (a range that shows where the points lie): the fake run's points sit at 0.08-2.4 ms, so
+    # the axis must not start at 0 when the data start well above it, and must still show every budget line.
+    run = fake_run(tmp_path / "run")
+    data = report.load_run(run)
+    for c in data.candidates:  # move every point far from 0, as the demo's (0.05-0.1 ms on a 0-0.1 axis)
+        c["predicted_ms"] += 1.0
+        c["budget_ms"] += 1.0
+    data.picks.clear()
+    data.baselines.clear()
+    lo, hi = report.plot_accuracy_latency(data).axes[0].get_xlim()
+    assert lo > 0.5 and hi >= max(c["predicted_ms"] for c in data.candidates)
+
+
 def test_pareto_front_keeps_one_of_equal_points():
     # Equal points do not dominate each other (Deb et al. 2002 definition); the plot needs one copy.
     assert front_points([(1.0, 50.0), (1.0, 50.0), (2.0, 40.0), (0.5, 30.0)]) == [(0.5, 30.0), (1.0, 50.0)]
