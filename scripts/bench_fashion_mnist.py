@@ -8,9 +8,11 @@ Phases (each recorded in RUN/bench_state.json as it finishes, so an interrupted 
 where it stopped; training itself resumes from its last checkpoint):
   1. train each member of the hand-scaled family alone (recipe's epochs, same data, augmentation, schedule),
   2. measure the family on each device, as its user must, and place budgets just above three members,
-  3. equal compute: the family's CPU-seconds, less a reserve for profiling + search, buy supernet
-     epochs at the CPU cost of real sandwich steps sampled here; train the supernet,
-  4. profile each device (probe bundle + runner), search its budgets, export + verify the picks,
+  3. equal compute: the family's CPU-seconds, less a reserve for profiling + search and the picks'
+     fine-tunes (estimated from sampled steps), buy supernet epochs at the CPU cost of real sandwich
+     steps sampled here; train the supernet,
+  4. profile each device (probe bundle + runner), search its budgets, export + verify the picks, fine-tune
+     each pick from its inherited weights (tightfit search --finetune-steps),
   5. measure every model (picks and family) on each device in one interleaved session and evaluate
      all on the test split (never used by search or selection),
   6. machinery figures (elastic overhead, throughput, memory) and the search's cheap-score check.
@@ -127,11 +129,18 @@ def budgets_at_members(family_p90: dict[str, float], names: tuple[str, ...]) -> 
     return dict(sorted((round(family_p90[n] * BUDGET_ROOM, 4), n) for n in names if n in family_p90))
 
 
+FINETUNE_STEPS = 200  # per pick, from its inherited weights (DEVELOPERS.md, "Fine-tuning the picks")
+FINETUNE_LR = 0.03
+
+
 def search_settings(smoke: bool):
-    """Cheap ranking (3,000 validation images), the best 8 re-scored on all 6,000, 3 measured per budget."""
+    """Cheap ranking (3,000 validation images), the best 8 re-scored on all 6,000, 3 measured per budget,
+    each pick fine-tuned FINETUNE_STEPS steps."""
     from tightfit.search.settings import SearchSettings
-    return (SearchSettings(population=4, evaluations=8, top=1, val_images=200, rescore=2) if smoke
-            else SearchSettings(population=12, evaluations=48, top=3, val_images=3000, rescore=8))
+    return (SearchSettings(population=4, evaluations=8, top=1, val_images=200, rescore=2, finetune_steps=2,
+                           finetune_lr=FINETUNE_LR) if smoke
+            else SearchSettings(population=12, evaluations=48, top=3, val_images=3000, rescore=8,
+                                finetune_steps=FINETUNE_STEPS, finetune_lr=FINETUNE_LR))
 
 
 def search(run: Path, table: Path, budgets: list[float], smoke: bool) -> list[dict]:
@@ -154,7 +163,7 @@ def search(run: Path, table: Path, budgets: list[float], smoke: bool) -> list[di
     print(format_picks(picks))
     return [{"device": p["device"], "budget_ms": p["budget_ms"], "key": p["key"], "export_dir": p["export_dir"],
              "val_acc": p["val_acc"], "fits": p["fits"], "search_s": t[str(p["budget_ms"])],
-             "measured_over_predicted": p.get("measured_over_predicted"),
+             "measured_over_predicted": p.get("measured_over_predicted"), "finetune": p.get("finetune"),
              "timing": [ln.strip() for ln in said.get(str(p["budget_ms"]), [])
                         if any(w in ln for w in ("evaluations/s", "re-scored", "after the search"))]} for p in picks]
 
@@ -190,13 +199,33 @@ def sample_epoch_cpu(recipe, steps: int = 30, skip: int = 3) -> dict:
             "cpu_s_per_epoch": per_step * spe}
 
 
-def supernet_epochs(family_cpu: float, epoch_cpu: float, reserve: float, family_epochs: float) -> dict:
-    """Equal compute: the family's CPU-seconds, less a reserve for profiling + search, buy supernet epochs
-    (0.1 epoch steps, at least the family's own epochs' worth of a minimum of 1)."""
-    room = family_cpu * (1.0 - reserve)
+def sample_finetune_cpu(recipe, steps: int = 15) -> dict:
+    """CPU-seconds of one fine-tune step (teacher forward + the middle subnet's step), from a few real steps
+    of tightfit.train.finetune on an untrained supernet (its setup and final recalibration included: a
+    slight overestimate)."""
+    from tightfit.data.dataset import calibration_batches, load_dataset
+    from tightfit.model.supernet import build_supernet
+    from tightfit.train.finetune import FinetuneSettings, finetune, inherited_net
+    from tightfit.train.rundir import TrainedRun
+    import torch
+    ds = load_dataset(recipe.data, recipe.seed)
+    run = TrainedRun(build_supernet(recipe, ds.num_classes), recipe, ds.class_names, ds.mean, ds.std, False)
+    calib = calibration_batches(ds, recipe.train.batch_size, recipe.train.recalibration_batches, recipe.seed)
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)  # as in the search phases, where the fine-tunes run
+    rec = finetune(run, ds, inherited_net(run, recipe.space.middle(), calib), FinetuneSettings(steps=steps, lr=0.01))
+    torch.set_num_threads(threads)
+    return {"steps_timed": steps, "cpu_s_per_step": rec["cpu_s"] / steps}
+
+
+def supernet_epochs(family_cpu: float, epoch_cpu: float, reserve: float, family_epochs: float,
+                    finetune_cpu: float = 0.0) -> dict:
+    """Equal compute: the family's CPU-seconds, less a reserve for profiling + search and the picks'
+    estimated fine-tunes, buy supernet epochs (0.1 epoch steps, at least 1)."""
+    room = family_cpu * (1.0 - reserve) - finetune_cpu
     epochs = max(1.0, int(10 * room / max(epoch_cpu, 1e-9)) / 10)
     return {"family_cpu_s": round(family_cpu, 1), "reserve_share": reserve, "epoch_cpu_s": round(epoch_cpu, 1),
-            "epochs": epochs, "family_epochs": family_epochs}
+            "finetune_cpu_s_estimate": round(finetune_cpu, 1), "epochs": epochs, "family_epochs": family_epochs}
 
 
 def train_member(recipe, member, family_dir: Path, smoke: bool) -> dict:
@@ -283,9 +312,12 @@ def measure_all(picks: list[dict], members: list[dict], run: Path, recipe, smoke
     models = []
     for p in picks:
         m = json.loads((Path(p["export_dir"]) / "manifest.json").read_text())
+        inherited = (m.get("finetune") or {}).get("inherited_accuracy")
         models.append({"kind": "pick", "name": f"pick-{p['device']}-{p['budget_ms']:g}ms", "key": p["key"],
                        "onnx": str(Path(p["export_dir"]) / "model.onnx"), "params": m["architecture"]["params"],
-                       "macs": m["architecture"]["macs"], "budget_ms": p["budget_ms"], "device": p["device"]})
+                       "macs": m["architecture"]["macs"], "budget_ms": p["budget_ms"], "device": p["device"],
+                       "test_acc_inherited": None if smoke or not inherited else round(inherited["test"]["top1"], 2),
+                       "finetune": p.get("finetune")})
     models += family_models(members, run)
     for m in models:
         m["test_acc"] = round(ort_accuracy(Path(m["onnx"]), ds), 2)
@@ -409,7 +441,7 @@ def best_fitting(models: list[dict], budget: float) -> dict | None:
     return max(fits, key=lambda m: m["test_acc"]) if fits else None
 
 
-SUPERNET_SIDE = ("train supernet", "profile ", "search ")
+SUPERNET_SIDE = ("train supernet", "profile ", "search ")  # a search phase includes its picks' fine-tunes
 FAMILY_SIDE = ("train baseline ", "measure family ")
 
 
@@ -429,10 +461,13 @@ def summarize(state: State, measured: dict, budgets: dict[str, list[float]], tar
             base = best_fitting(models, b)
             aimed = targeted[device].get(b)
             aimed_row = next((m for m in models if m["name"] == aimed), None)
+            inherited = pick.get("test_acc_inherited")
             rows.append({"device": device, "budget_ms": b, "pick": pick, "baseline": base, "placed_above": aimed,
                          "placed_above_fits": None if aimed_row is None else aimed_row["p90_ms"] <= b,
                          "pick_fits": pick["p90_ms"] <= b,
-                         "gain_points": round(pick["test_acc"] - base["test_acc"], 2) if base else None})
+                         "gain_points": round(pick["test_acc"] - base["test_acc"], 2) if base else None,
+                         "gain_points_inherited": round(inherited - base["test_acc"], 2)
+                         if base and inherited is not None else None})
     cpu_sn, cpu_family = side_cpu(state, SUPERNET_SIDE), side_cpu(state, FAMILY_SIDE)
     cpu_train = state.cpu("train supernet")
     picks = [m for m in measured["models"] if m["kind"] == "pick"]
@@ -483,12 +518,14 @@ def main(argv: list[str] | None = None) -> int:
     for d, bs in budgets.items():
         print(f"budgets {d}: {bs} ms ({BUDGET_ROOM:g} x the measured p90 of {', '.join(names)})")
     epoch_cpu = state.phase("sample supernet step cost", lambda: sample_epoch_cpu(recipe))
+    ft_cpu = state.phase("sample fine-tune step cost", lambda: sample_finetune_cpu(recipe))
+    ft_estimate = sum(len(bs) for bs in budgets.values()) * search_settings(args.smoke).finetune_steps * ft_cpu["cpu_s_per_step"]
     compute = supernet_epochs(side_cpu(state, FAMILY_SIDE), epoch_cpu["cpu_s_per_epoch"], args.reserve,
-                              recipe.train.epochs)
+                              recipe.train.epochs, ft_estimate)
     if args.smoke:  # the wiring only: one epoch whatever the family cost
         compute["epochs"] = recipe.train.epochs
     print(f"equal compute: family {compute['family_cpu_s']:.0f} CPU-s, {100 * args.reserve:.0f} % kept for profiling "
-          f"+ search, one supernet epoch ~{compute['epoch_cpu_s']:.0f} CPU-s: {compute['epochs']:g} epochs")
+          f"+ search and ~{ft_estimate:.0f} for fine-tuning the picks, one supernet epoch ~{compute['epoch_cpu_s']:.0f} CPU-s: {compute['epochs']:g} epochs")
     sn_recipe = replace(recipe, train=replace(recipe.train, epochs=compute["epochs"]))
     state.phase("train supernet", lambda: train_supernet(sn_recipe, run, args.smoke))
     tables = {d: Path(state.phase(f"profile {d}", lambda d=d, t=t: str(profile_host(
@@ -501,7 +538,10 @@ def main(argv: list[str] | None = None) -> int:
     write_baselines(run, [on_device(m, DEVICES[0][0]) for m in measured["models"]], sn_recipe)
     result = summarize(state, measured, budgets, targeted)
     result.update({"machinery": mach, "ranking_check": ranking, "supernet": state.data["train supernet"]["result"], "family": members,
-                   "equal_compute": {**compute, "sampled": epoch_cpu}, "family_p90_ms": family_p90,
+                   "equal_compute": {**compute, "sampled": epoch_cpu, "sampled_finetune": ft_cpu},
+                   "finetune_cpu_s": round(sum((p.get("finetune") or {}).get("cpu_s", 0.0) for p in picks
+                                               if not (p.get("finetune") or {}).get("reused")), 1),
+                   "family_p90_ms": family_p90,
                    "budget_rule": f"{BUDGET_ROOM:g} x the measured p90 of {', '.join(names)} on each device",
                    "devices": {d: {"intra_op_threads": t, "table": str(tables[d])} for d, t in DEVICES},
                    "search_settings": asdict(search_settings(args.smoke)),

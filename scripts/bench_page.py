@@ -63,8 +63,10 @@ def _row(r: dict) -> str:
     base = (f"{b['name']} | {b['test_acc']:.2f} | {b['p90_ms']:.3f} | {b['params']:,} | {b['macs'] / 1e6:.2f}"
             if b else "none fits | | | |")
     gain = f"{r['gain_points']:+.2f}" if r["gain_points"] is not None else "n/a"
-    return (f"| {r['budget_ms']:g} | `{p['key']}` | {p['test_acc']:.2f} | {p['p90_ms']:.3f} | {p['params']:,} | "
-            f"{p['macs'] / 1e6:.2f} | {base} | {gain} |")
+    inherited = _fmt(p.get("test_acc_inherited"), ".2f", "-")
+    gain_inherited = _fmt(r.get("gain_points_inherited"), "+.2f", "-")
+    return (f"| {r['budget_ms']:g} | `{p['key']}` | {inherited} | {p['test_acc']:.2f} | {p['p90_ms']:.3f} | {p['params']:,} | "
+            f"{p['macs'] / 1e6:.2f} | {base} | {gain_inherited} | {gain} |")
 
 
 def _device_section(result: dict, device: str) -> list[str]:
@@ -74,9 +76,9 @@ def _device_section(result: dict, device: str) -> list[str]:
              "the final session: the comparison is with a smaller member, which flatters the pick."
              for r in rows if r.get("placed_above_fits") is False]
     return [f"### {device} ({threads} intra-op thread{'s' * (threads > 1)})", "",
-            "| budget ms (p90) | pick | test % | p90 ms | params | MMACs | best fitting family member | "
-            "test % | p90 ms | params | MMACs | gain (points) |",
-            "|---|---|---|---|---|---|---|---|---|---|---|---|",
+            "| budget ms (p90) | pick | test %, inherited weights | test %, fine-tuned | p90 ms | params | MMACs | "
+            "best fitting family member | test % | p90 ms | params | MMACs | gain, inherited (points) | gain (points) |",
+            "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|",
             *[_row(r) for r in rows], "", *notes, *([""] if notes else [])]
 
 
@@ -104,8 +106,8 @@ def page_text(result: dict, plot_name: str) -> str:
         f"Budgets: {result['budget_rule']} (the family measured before the supernet was trained). Equal compute: "
         f"the family cost {eq['family_cpu_s']:.0f} CPU-s (training at {eq['family_epochs']:g} epochs each, plus "
         f"measuring every member on each device); {100 * eq['reserve_share']:.0f} % of that was kept for profiling "
-        f"and search and the rest bought the supernet {eq['epochs']:g} epochs at ~{eq['epoch_cpu_s']:.0f} CPU-s each "
-        "(sampled from real sandwich steps).",
+        f"and search{_finetune_reserve(eq)} and the rest bought the supernet {eq['epochs']:g} epochs at "
+        f"~{eq['epoch_cpu_s']:.0f} CPU-s each (sampled from real sandwich steps).{_finetune_text(result)}",
         "",
         *[line for d in devices for line in _device_section(result, d)],
         f"![accuracy vs latency]({plot_name})",
@@ -178,6 +180,21 @@ def page_text(result: dict, plot_name: str) -> str:
         "",
     ]
     return "\n".join(lines)
+
+
+def _finetune_reserve(eq: dict) -> str:
+    est = eq.get("finetune_cpu_s_estimate")
+    return f", {est:.0f} CPU-s for fine-tuning the picks (estimated from sampled steps)," if est else ","
+
+
+def _finetune_text(result: dict) -> str:
+    s = result.get("search_settings") or {}
+    if not s.get("finetune_steps"):
+        return ""
+    return (f" Each pick was fine-tuned {s['finetune_steps']} steps (lr {s['finetune_lr']:g}, cosine to zero) from its "
+            "inherited weights, distilling from the supernet's largest subnet; a subnet picked for two budgets was "
+            f"fine-tuned once. The fine-tunes cost {result.get('finetune_cpu_s', 0):.0f} CPU-s, counted in the search "
+            "phases. Both the inherited and the fine-tuned accuracy are shown; the gain is the fine-tuned pick's.")
 
 
 def _ranking_lines(r: dict | None) -> list[str]:

@@ -19,13 +19,12 @@ With --json, every finished run is merged into that file at once (an existing la
 replaced), so a long screen can be split over several invocations (--no-base skips the recipe
 as written). --finetune STEPS[,STEPS...] also fine-tunes the middle and smallest subnets of the
 as-written run (or of --finetune-run DIR) from their inherited weights, distilling from its
-largest, and reports what those steps buy (a measurement only; the product does not fine-tune).
+largest, and reports what those steps buy (the product's fine-tune: tightfit search --finetune-steps).
 """
 from __future__ import annotations
 
 import argparse
 import dataclasses
-import itertools
 import json
 import math
 import random
@@ -35,14 +34,13 @@ from pathlib import Path
 
 import torch
 
-from tightfit.data.dataset import calibration_batches, eval_batches, load_dataset, train_batches
-from tightfit.model.extract import extract_subnet
-from tightfit.model.recalibrate import accuracy, recalibrate_bn, subnet_accuracy
+from tightfit.data.dataset import calibration_batches, eval_batches, load_dataset
+from tightfit.model.recalibrate import accuracy, subnet_accuracy
 from tightfit.model.space import SpaceSpec, Subnet
 from tightfit.recipe import Recipe, TrainConfig, load_recipe
 from tightfit.train.loop import train
 from tightfit.train.rundir import load_trained
-from tightfit.train.sandwich import distill_loss, param_groups
+from tightfit.train.finetune import FinetuneSettings, finetuned_subnet
 
 
 def parse_variant(text: str) -> dict:
@@ -101,42 +99,12 @@ def timed_train(recipe: Recipe, out: Path, ds) -> tuple[float, float]:
     return time.perf_counter() - t0, time.process_time() - c0
 
 
-def finetune(run_dir: Path, ds, subnet: Subnet, steps: int, calib_seed: int, lr: float) -> dict:
-    """Fine-tune ``subnet`` (static, from inherited weights) for ``steps`` steps: soft-label distillation
-    from the run's largest subnet (BN recalibrated, frozen), SGD with Nesterov momentum, cosine from
-    ``lr`` to zero, the recipe's batches and augmentation; then BN recalibration and validation."""
-    run = load_trained(run_dir)
-    cfg = run.recipe.train
-    calib = calibration_batches(ds, cfg.batch_size, cfg.recalibration_batches, calib_seed)
-    sn = run.supernet
-    def static(s: Subnet):
-        sn.set_subnet(s)
-        recalibrate_bn(sn, calib)
-        return extract_subnet(sn, s)
-    teacher, student = static(run.recipe.space.largest()), static(subnet)
-    for p in teacher.parameters():
-        p.requires_grad_(False)
-    opt = torch.optim.SGD(param_groups(student, cfg.weight_decay), lr=lr, momentum=cfg.momentum, nesterov=True)
-    t0, c0, step = time.perf_counter(), time.process_time(), 0
-    student.train()
-    for epoch in itertools.count():
-        for x, y in train_batches(ds, run.recipe.data, cfg.batch_size, run.recipe.seed + 1000, epoch):
-            if step == steps:
-                break
-            for g in opt.param_groups:
-                g["lr"] = lr * 0.5 * (1 + math.cos(math.pi * step / steps))
-            with torch.no_grad():
-                target = teacher(x)
-            opt.zero_grad(set_to_none=True)
-            distill_loss(student(x), target).backward()
-            opt.step()
-            step += 1
-        if step == steps:
-            break
-    seconds, cpu = time.perf_counter() - t0, time.process_time() - c0
-    recalibrate_bn(student, calib)
-    return {"steps": steps, "lr": lr, "seconds": seconds, "cpu_seconds": cpu,
-            "acc": accuracy(student, eval_batches(ds.val_x, ds.val_y, ds, 512))}
+def finetune(run_dir: Path, ds, subnet: Subnet, steps: int, lr: float) -> dict:
+    """Fine-tune ``subnet`` from its inherited weights the way `tightfit search --finetune-steps` does
+    (tightfit.train.finetune), then validate it."""
+    net, rec = finetuned_subnet(load_trained(run_dir), ds, subnet, FinetuneSettings(steps=steps, lr=lr))
+    return {**rec, "seconds": rec["wall_s"], "cpu_seconds": rec["cpu_s"],
+            "acc": accuracy(net, eval_batches(ds.val_x, ds.val_y, ds, 512))}
 
 
 def merge_json(path: Path, label: str, record: dict, meta: dict) -> None:
@@ -269,7 +237,7 @@ def main(argv: list[str] | None = None) -> int:
             raise SystemExit("error: --finetune needs --finetune-run or the as-written run (drop --no-base)")
         run_dir = Path(args.finetune_run or results["as written"]["run"])
         for which in ("middle", "smallest"):
-            ft = finetune(run_dir, ds, subnets[which], steps, base.seed, args.finetune_lr)
+            ft = finetune(run_dir, ds, subnets[which], steps, args.finetune_lr)
             record(f"{which} fine-tuned {steps} steps", {"run": str(run_dir), "train_s": ft["seconds"],
                                                          "train_cpu_s": ft["cpu_seconds"], "acc": {which: ft["acc"]},
                                                          "finetune": ft})

@@ -77,9 +77,10 @@ def build_manifest(*, space: SpaceSpec, subnet: Subnet, params: int, macs: int, 
                    channels: int, image_size: int, class_names: tuple[str, ...], mean: tuple[float, ...],
                    std: tuple[float, ...], validation: Accuracy, test: Accuracy, latency: dict[str, Any],
                    budget_ms: Optional[float], percentile: float, device: Optional[str], recipe_name: str,
-                   recipe_hash: str) -> dict[str, Any]:
+                   recipe_hash: str, finetune: Optional[dict[str, Any]] = None) -> dict[str, Any]:
     """The manifest dict (see the project contract for the fields); budget.ms is None for a model cut
-    by hand without a budget (verify then reports its figures and judges nothing)."""
+    by hand without a budget (verify then reports its figures and judges nothing); ``finetune`` is None
+    for inherited weights, else what the fine-tune did, cost and started from."""
     return {
         "format": MANIFEST_FORMAT, "version": MANIFEST_VERSION, "model_file": "model.onnx",
         "sha256": sha256_hex(onnx_data),
@@ -96,6 +97,7 @@ def build_manifest(*, space: SpaceSpec, subnet: Subnet, params: int, macs: int, 
         "budget": {"ms": None if budget_ms is None else float(budget_ms), "percentile": float(percentile),
                    "device": device, "rule": f"met when latency.budget_stat_ms, the p{percentile:g} of all pooled "
                                              "timed runs, is at most ms"},
+        "finetune": finetune,
         "software": software_versions(),
         "recipe": {"name": recipe_name, "hash": recipe_hash},
         "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
@@ -130,7 +132,7 @@ def shipped_accuracy(onnx_data: bytes, ds: Dataset, split: str, batch_size: int 
 
 def export_pick(run: TrainedRun, ds: Dataset, *, subnet: Subnet, cut: CutResult, net: nn.Module, export_dir: str | Path,
                 latency: dict[str, Any], budget_ms: Optional[float], percentile: float,
-                device: Optional[str]) -> dict[str, Any]:
+                device: Optional[str], finetune: Optional[dict[str, Any]] = None) -> dict[str, Any]:
     """Score the exported file on the whole validation and test splits (for the manifest only:
     nothing is chosen on them here), then write the export folder.
     ``cut`` is the candidate's cut (its ONNX file)."""
@@ -141,6 +143,6 @@ def export_pick(run: TrainedRun, ds: Dataset, *, subnet: Subnet, cut: CutResult,
         channels=cfg.data.channels, image_size=cfg.data.image_size, class_names=run.class_names,
         mean=run.mean, std=run.std, validation=shipped_accuracy(data, ds, "val"),
         test=shipped_accuracy(data, ds, "test"), latency=latency, budget_ms=budget_ms,
-        percentile=percentile, device=device, recipe_name=cfg.name, recipe_hash=cfg.hash())
+        percentile=percentile, device=device, recipe_name=cfg.name, recipe_hash=cfg.hash(), finetune=finetune)
     write_export(export_dir, data, net, manifest)
     return manifest

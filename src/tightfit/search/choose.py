@@ -15,6 +15,7 @@ import numpy as np
 
 from tightfit.data.dataset import Dataset
 from tightfit.export.cut import CutResult, cut_one
+from tightfit.export.finetuned import finetune_export
 from tightfit.export.manifest import export_pick, latency_section
 from tightfit.latency.table import LatencyTable
 from tightfit.model.extract import StaticNet
@@ -23,10 +24,12 @@ from tightfit.ondevice.hardware import describe_hardware
 from tightfit.ondevice.repeats import combine_repeats, repeat_summaries
 from tightfit.ondevice.timing import Protocol
 from tightfit.budgets import budget_label
+from tightfit.progress import bar as progress_bar
 from tightfit.search.cache import CachedAccuracy, CachedLatency
 from tightfit.search.evolution import Candidate, pareto_front
 from tightfit.search.fitness import RunAccuracy
 from tightfit.search.settings import SearchSettings
+from tightfit.train.finetune import FinetuneSettings
 from tightfit.train.rundir import TrainedRun
 
 @dataclass
@@ -260,6 +263,25 @@ def choose_and_export(ctx: SearchContext, table: LatencyTable, ranked: list[Cand
             "guard": guard,
             "measured_over_predicted": None if ratio is None else round(ratio, 4),
             "test_acc": manifest["accuracy"]["test"]["top1"]}
+
+
+def finetune_pick(ctx: SearchContext, row: dict[str, Any]) -> dict[str, Any]:
+    """Fine-tune the pick of ``row`` from its inherited weights (its export folder rewritten, the
+    measured latency kept: the graph is unchanged) and return the row with the new accuracy."""
+    s = ctx.settings
+    bar = progress_bar(total=s.finetune_steps, desc="fine-tune", unit="step", disable=not ctx.progress)
+    manifest = finetune_export(ctx.run, ctx.run_dir, ctx.ds, Path(row["export_dir"]),
+                               FinetuneSettings(steps=s.finetune_steps, lr=s.finetune_lr), on_step=lambda _: bar.update(1))
+    bar.close()
+    ft, acc = manifest["finetune"], manifest["accuracy"]
+    before = ft["inherited_accuracy"]["validation"]["top1"]
+    ctx.say(f"  fine-tuned the pick {ft['steps']} steps (lr {ft['lr']:g}"
+            + (", reused from an earlier budget" if ft["reused"] else f", {ft['cpu_s']:.0f} CPU-s")
+            + f"): validation {before:.2f} -> {acc['validation']['top1']:.2f} %")
+    return {**row, "test_acc": acc["test"]["top1"],
+            "finetune": {"steps": ft["steps"], "lr": ft["lr"], "cpu_s": ft["cpu_s"], "reused": ft["reused"],
+                         "val_acc_before": before, "val_acc_after": acc["validation"]["top1"],
+                         "test_acc_before": ft["inherited_accuracy"]["test"]["top1"]}}
 
 
 def _remove_staging(staging: Path) -> None:

@@ -48,6 +48,12 @@ def _guard(percent: Optional[float]) -> Optional[float]:
     return percent / 100
 
 
+def _learning_rate(lr: float) -> float:
+    if not 0 < lr <= 1:
+        raise UserError(f"--finetune-lr {lr:g} must be above 0 and at most 1")
+    return lr
+
+
 def _cmd_search(args: Any) -> int:
     if args.threads:
         import torch
@@ -59,7 +65,9 @@ def _cmd_search(args: Any) -> int:
                               top=_positive("top", args.top), val_images=_positive("val-images", args.val_images, 0),
                               rescore=_positive("rescore", args.rescore, 0),
                               backend=args.eval_backend, slack=_slack(args.slack),
-                              drift_check=args.drift_check, guard=_guard(args.guard))
+                              drift_check=args.drift_check, guard=_guard(args.guard),
+                              finetune_steps=_positive("finetune-steps", args.finetune_steps, 0),
+                              finetune_lr=_learning_rate(args.finetune_lr))
     from tightfit.search.driver import run_search  # torch: only once the arguments are known good
     quiet = args.quiet or args.json
     rows = run_search(args.run, args.table, args.budget, settings, progress=not quiet,
@@ -118,6 +126,7 @@ def add_search_parser(sub: Any) -> None:
                    help="before each budget, re-measure the table's calibration subnets on this machine (about 20 s) "
                         "and rescale the search limit by their time now/then (off by default: on a shared VM the "
                         "reading was noise; a pick far under its budget triggers a corrected second search anyway)")
+    _add_finetune_arguments(s)
     s.add_argument("--eval-backend", choices=("onnxruntime", "torch"), default="onnxruntime",
                    help="run the validation pass in ONNX Runtime (default, faster) or torch")
     s.add_argument("--threads", type=int, default=None, help="torch/ORT CPU threads for evaluation (default: all cores)")
@@ -126,3 +135,12 @@ def add_search_parser(sub: Any) -> None:
                    help="print the picks as JSON on stdout (the rows of RUN/search/picks.json); progress and "
                         "notes go to stderr")
     s.set_defaults(func=_cmd_search)
+
+
+def _add_finetune_arguments(s: Any) -> None:
+    s.add_argument("--finetune-steps", type=int, default=0,
+                   help="fine-tune each pick this many steps from its inherited weights, taught by the largest "
+                        "subnet, before it is exported (the graph and its measured latency stay; the manifest "
+                        "keeps both accuracies and the cost; default 0 = ship the inherited weights)")
+    s.add_argument("--finetune-lr", type=float, default=0.01,
+                   help="peak learning rate of the fine-tune, cosine to zero (default 0.01)")

@@ -28,7 +28,7 @@ from tightfit.budgets import budget_label, parse_budget
 from tightfit.progress import bar
 from tightfit.search.cache import AccuracyCache, CachedAccuracy, CachedLatency
 from tightfit.ondevice.hardware import same_host
-from tightfit.search.choose import DEFAULT_GUARD, SearchContext, choose_and_export, front_first
+from tightfit.search.choose import DEFAULT_GUARD, SearchContext, choose_and_export, finetune_pick, front_first
 from tightfit.search.evolution import Candidate, fastest_check, pareto_front, regularized_evolution
 from tightfit.search.fitness import RunAccuracy
 from tightfit.search.settings import SearchSettings
@@ -227,6 +227,8 @@ def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPr
             limit = again
             # a correction, not a new search: half the evaluations (the budget's time bar holds on a noisy host)
             settings = replace(settings, evaluations=max(settings.population, settings.evaluations // 2))
+        if ctx.settings.finetune_steps > 0:
+            row = finetune_pick(ctx, row)
         picks.append(row)
         merge_picks(out / "picks.json", picks)
     return picks

@@ -25,6 +25,9 @@ class SearchSettings:
     #                               measured/predicted ratio (docs/measurements.md), the corrected second search does
     guard: Optional[float] = None # a measured pick must fit budget x (1 - guard) so QA's later measurement fits too;
     #                               None: each candidate's own guard from the spread of its repeats
+    finetune_steps: int = 0       # fine-tune each pick from its inherited weights, distilling from the largest
+    #                               (tightfit.train.finetune); 0: ship the inherited weights
+    finetune_lr: float = 0.01     # the fine-tune's peak learning rate (cosine to zero)
 
     def evolution(self) -> EvolutionSettings:
         return EvolutionSettings(population=self.population, sample_size=min(self.sample_size, self.population),
