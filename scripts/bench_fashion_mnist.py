@@ -130,7 +130,7 @@ def budgets_at_members(family_p90: dict[str, float], names: tuple[str, ...]) -> 
 
 
 FINETUNE_STEPS = 200  # per pick, from its inherited weights (DEVELOPERS.md, "Fine-tuning the picks")
-FINETUNE_LR = 0.03
+FINETUNE_LR = 0.1
 
 
 def search_settings(smoke: bool):

@@ -142,5 +142,5 @@ def _add_finetune_arguments(s: Any) -> None:
                    help="fine-tune each pick this many steps from its inherited weights, taught by the largest "
                         "subnet, before it is exported (the graph and its measured latency stay; the manifest "
                         "keeps both accuracies and the cost; default 0 = ship the inherited weights)")
-    s.add_argument("--finetune-lr", type=float, default=0.01,
-                   help="peak learning rate of the fine-tune, cosine to zero (default 0.01)")
+    s.add_argument("--finetune-lr", type=float, default=0.1,
+                   help="peak learning rate of the fine-tune, cosine to zero (default 0.1)")

@@ -27,7 +27,7 @@ class SearchSettings:
     #                               None: each candidate's own guard from the spread of its repeats
     finetune_steps: int = 0       # fine-tune each pick from its inherited weights, distilling from the largest
     #                               (tightfit.train.finetune); 0: ship the inherited weights
-    finetune_lr: float = 0.01     # the fine-tune's peak learning rate (cosine to zero)
+    finetune_lr: float = 0.1      # the fine-tune's peak learning rate (cosine to zero)
 
     def evolution(self) -> EvolutionSettings:
         return EvolutionSettings(population=self.population, sample_size=min(self.sample_size, self.population),

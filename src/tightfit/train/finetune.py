@@ -29,7 +29,7 @@ SEED_OFFSET = 1_000  # its batch order differs from the supernet's epochs, repro
 @dataclass(frozen=True)
 class FinetuneSettings:
     steps: int = 0          # optimizer steps of the recipe's batch size; 0: no fine-tune
-    lr: float = 0.01        # peak learning rate, cosine to zero over the steps
+    lr: float = 0.1         # peak learning rate, cosine to zero over the steps
 
     def to_dict(self) -> dict[str, Any]:
         return {"steps": self.steps, "lr": self.lr}
