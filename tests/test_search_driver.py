@@ -111,6 +111,11 @@ def test_search_verify_export_end_to_end(tiny_run, monkeypatch, capsys):
     assert code == (3 if mine["fits"] and theirs["fits"] else 1)
     assert mine["verified"] and mine["measured"]["repeat_spread"] is not None  # >= 2 fresh-process repeats
     assert mine["fits"] == (mine["measured"]["budget_stat_ms"] <= mine["budget_ms"])
+    # measured again after the device's last budget (search/confirm.py): pooled over both windows, or chosen again
+    if "chosen_again" not in mine:
+        assert mine["confirmed"]["repeats"] == len(mine["measured"]["repeat_figures_ms"]) >= 4
+        confirmation = json.loads((Path(mine["export_dir"]) / "manifest.json").read_text())["latency"]["confirmation"]
+        assert confirmation == mine["confirmed"]
     assert not theirs["verified"] and theirs["measured"] is None and "tightfit verify" in theirs["note"]
     for p in picks:
         folder = Path(p["export_dir"])
@@ -220,7 +225,7 @@ def _drive(tmp_path, monkeypatch, use: float, ratio: float):
     monkeypatch.setattr(driver, "search_budget", fake_search)
     monkeypatch.setattr(driver, "choose_and_export", fake_choose)
     compute = SimpleNamespace(phases=lambda latency: {"validation": 0.0})
-    settings = SearchSettings(population=8, evaluations=40, slack=0.1, guard=0.05)
+    settings = SearchSettings(population=8, evaluations=40, slack=0.1, guard=0.05, confirm=False)
     ctx = SimpleNamespace(run_dir=tmp_path, run=SimpleNamespace(recipe=SimpleNamespace(space=space)),
                           settings=settings, compute=compute, fitness=None, progress=False, say=lambda s: None,
                           whole=None)

@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import shutil
 import time
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Callable, Optional
 
@@ -44,6 +44,15 @@ class SearchContext:
     progress: bool
     say: Callable[[str], None]
     whole: Optional[CachedAccuracy] = None  # the whole validation split, when ``compute`` sees a capped part
+    pick_runs: dict[str, PickRuns] = field(default_factory=dict)  # export folder -> its pick's raw repeats
+
+
+@dataclass(frozen=True)
+class PickRuns:
+    """The raw repeat summaries a pick was chosen on and when they ended, so that a later measurement
+    can be pooled with them (confirm.py)."""
+    runs: list[dict[str, Any]]
+    at: float  # time.time()
 
 
 UNVERIFIED = "unverified: measure on the device with tightfit verify"
@@ -186,10 +195,11 @@ def front_first(ranked: list[Candidate]) -> list[Candidate]:
 
 
 class _Measurer:
-    """Cuts candidates into ``staging`` and measures them whole, interleaved; keeps the time spent."""
+    """Cuts candidates into ``staging`` and measures them whole, interleaved; keeps the time spent.
+    ``guard_floor``: no candidate's guard is narrower (a spread seen over a longer window, confirm.py)."""
 
-    def __init__(self, ctx: SearchContext, staging: Path, protocol: Protocol):
-        self.ctx, self.staging, self.protocol = ctx, staging, protocol
+    def __init__(self, ctx: SearchContext, staging: Path, protocol: Protocol, guard_floor: float = 0.0):
+        self.ctx, self.staging, self.protocol, self.guard_floor = ctx, staging, protocol, guard_floor
         self.clock: dict[str, float] = {}
         self.runs: dict[str, list[dict[str, Any]]] = {}  # each candidate's repeats so far
 
@@ -218,17 +228,21 @@ class _Measurer:
             path = str(t.cut.onnx_path)
             self.runs[path] = self.runs.get(path, []) + runs[path]
             t.measured = combine_repeats(self.runs[path], self.protocol)
+            if self.guard_floor > 0:
+                own = t.measured["guard"]
+                t.measured["guard"] = max(self.guard_floor, DEFAULT_GUARD if own is None else own)
 
 
 def choose_and_export(ctx: SearchContext, table: LatencyTable, ranked: list[Candidate], budget_ms: float,
-                      latency: CachedLatency, verifiable: bool) -> dict[str, Any]:
+                      latency: CachedLatency, verifiable: bool, guard_floor: float = 0.0) -> dict[str, Any]:
     """Verify (when the table is for this host), export the pick, and return its picks.json row.
-    ``ranked``: the order in which candidates are measured (tightfit.search.driver.measuring_order)."""
+    ``ranked``: the order in which candidates are measured (tightfit.search.driver.measuring_order);
+    ``guard_floor``: the narrowest guard any candidate gets (a choice made again by confirm.py)."""
     label = f"{device_name(table.name)}-{budget_label(budget_ms)}"
     staging = ctx.run_dir / "search" / "staging" / label
     shutil.rmtree(staging, ignore_errors=True)
     protocol = verification_protocol(table.protocol)
-    measurer = _Measurer(ctx, staging, protocol)
+    measurer = _Measurer(ctx, staging, protocol, guard_floor)
     smallest = ctx.run.recipe.space.smallest()
 
     def fallback() -> Candidate:
@@ -240,8 +254,7 @@ def choose_and_export(ctx: SearchContext, table: LatencyTable, ranked: list[Cand
         choice = measure_and_choose(ranked, budget_ms, measurer, top, fallback, ctx.say,
                                     guard=ctx.settings.guard, remeasure=measurer.remeasure)
         pick, fits, note, ratio, hardware = choice.pick, choice.fits, choice.note, choice.ratio(), describe_hardware()
-        guard = {"share": round(guard_of(pick, ctx.settings.guard), 4),
-                 "rule": "--guard" if ctx.settings.guard is not None else "from the spread of its repeats"}
+        guard = {"share": round(guard_of(pick, ctx.settings.guard), 4), "rule": guard_rule(ctx.settings.guard, guard_floor)}
     else:
         within = [c for c in ranked if c.latency_ms <= budget_ms] or [fallback()]
         pick, fits, note, ratio, hardware = measurer.cut(within[:1], 0)[0], True, UNVERIFIED, None, table.hardware
@@ -253,6 +266,8 @@ def choose_and_export(ctx: SearchContext, table: LatencyTable, ranked: list[Cand
                                                    note, guard),
                            budget_ms=budget_ms, percentile=protocol.percentile, device=table.name)
     measurer.clock["score and export the pick"] = time.perf_counter() - t0
+    if pick.measured is not None:
+        ctx.pick_runs[str(export_dir)] = PickRuns(measurer.runs[str(pick.cut.onnx_path)], time.time())
     ctx.say("  after the search: " + ", ".join(f"{k} {v:.1f} s" for k, v in measurer.clock.items()))
     _remove_staging(staging)
     if note:
@@ -263,6 +278,13 @@ def choose_and_export(ctx: SearchContext, table: LatencyTable, ranked: list[Cand
             "guard": guard,
             "measured_over_predicted": None if ratio is None else round(ratio, 4),
             "test_acc": manifest["accuracy"]["test"]["top1"]}
+
+
+def guard_rule(fixed: Optional[float], floor: float = 0.0) -> str:
+    if fixed is not None:
+        return "--guard"
+    return "from the spread of its repeats" + (f", at least {100 * floor:.1f} % (the spread its device's picks showed "
+                                                "when measured again)" if floor > 0 else "")
 
 
 def finetune_pick(ctx: SearchContext, row: dict[str, Any]) -> dict[str, Any]:

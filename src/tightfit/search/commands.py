@@ -65,7 +65,7 @@ def _cmd_search(args: Any) -> int:
                               top=_positive("top", args.top), val_images=_positive("val-images", args.val_images, 0),
                               rescore=_positive("rescore", args.rescore, 0),
                               backend=args.eval_backend, slack=_slack(args.slack),
-                              drift_check=args.drift_check, guard=_guard(args.guard),
+                              drift_check=args.drift_check, guard=_guard(args.guard), confirm=not args.no_confirm,
                               finetune_steps=_positive("finetune-steps", args.finetune_steps, 0),
                               finetune_lr=_learning_rate(args.finetune_lr))
     from tightfit.search.driver import run_search  # torch: only once the arguments are known good
@@ -126,6 +126,10 @@ def add_search_parser(sub: Any) -> None:
                    help="before each budget, re-measure the table's calibration subnets on this machine (about 20 s) "
                         "and rescale the search limit by their time now/then (off by default: on a shared VM the "
                         "reading was noise; a pick far under its budget triggers a corrected second search anyway)")
+    s.add_argument("--no-confirm", action="store_true",
+                   help="do not measure a device's picks again after its last budget (by default they are, the "
+                        "repeats of both windows pooled, and a pick that no longer keeps its guard is chosen again "
+                        "with guards at least that wide; about 5 s per pick)")
     _add_finetune_arguments(s)
     s.add_argument("--eval-backend", choices=("onnxruntime", "torch"), default="onnxruntime",
                    help="run the validation pass in ONNX Runtime (default, faster) or torch")

@@ -29,6 +29,7 @@ from tightfit.progress import bar
 from tightfit.search.cache import AccuracyCache, CachedAccuracy, CachedLatency
 from tightfit.ondevice.hardware import same_host
 from tightfit.search.choose import DEFAULT_GUARD, SearchContext, choose_and_export, finetune_pick, front_first
+from tightfit.search.confirm import confirm_picks, guard_floor_of
 from tightfit.search.evolution import Candidate, fastest_check, pareto_front, regularized_evolution
 from tightfit.search.fitness import RunAccuracy
 from tightfit.search.settings import SearchSettings
@@ -198,6 +199,7 @@ def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPr
     slack = search_slack(ctx.settings, predictor, verifiable)
     say(f"{table.name}: " + (f"picks measured here; search up to {100 * slack:.0f} % over each budget (predicted)"
                              if verifiable else "another machine: picks by predicted latency, to be verified there"))
+    orders: dict[float, list[Candidate]] = {}  # each budget's measuring order, for a choice made again
     for b in budgets:
         drop_logged(out / "candidates.jsonl", table.name, b)
         t0 = time.perf_counter()
@@ -217,7 +219,8 @@ def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPr
             say(time_report(result, {k: v - before[k] for k, v in compute.phases(latency).items()}))
             seen += result.candidates
             write_front(out / f"front-{device_name(table.name)}.json", table.name, out / "candidates.jsonl")
-            row = choose_and_export(ctx, table, measuring_order(ctx, ranked_within(seen, limit)), b, latency, verifiable)
+            orders[b] = measuring_order(ctx, ranked_within(seen, limit))
+            row = choose_and_export(ctx, table, orders[b], b, latency, verifiable)
             row["session_drift"] = drift
             again = corrected_limit(row, base, limit) if attempt == 0 else None
             if again is None:
@@ -231,7 +234,29 @@ def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPr
             row = finetune_pick(ctx, row)
         picks.append(row)
         merge_picks(out / "picks.json", picks)
+    if verifiable and ctx.settings.confirm:
+        picks = _confirm(ctx, table, picks, orders, latency)
+        merge_picks(out / "picks.json", picks)
     return picks
+
+
+def _confirm(ctx: SearchContext, table: LatencyTable, picks: list[dict[str, Any]], orders: dict[float, list[Candidate]],
+             latency: CachedLatency) -> list[dict[str, Any]]:
+    """Measure the device's picks again (confirm.py); where one no longer keeps its guard and the guard
+    comes from the spread, choose that budget again with every candidate's guard at least as wide."""
+    picks = confirm_picks(ctx, table, picks)
+    out = []
+    for row in picks:
+        floor = guard_floor_of(row) if ctx.settings.guard is None else None
+        if floor is not None:
+            ctx.say(f"  {budget_label(row['budget_ms'])}: the pick measured {row['confirmed']['pooled_ms']:.4g} ms over both "
+                    f"windows and no longer keeps its {100 * floor:.1f} % guard: choosing again with guards of at least that")
+            again = choose_and_export(ctx, table, orders[row["budget_ms"]], row["budget_ms"], latency, True, guard_floor=floor)
+            row = {**again, "session_drift": row.get("session_drift"), "chosen_again": row["confirmed"]}
+            if ctx.settings.finetune_steps > 0:
+                row = finetune_pick(ctx, row)
+        out.append(row)
+    return out
 
 
 def expected_guard(settings: SearchSettings) -> float:

@@ -28,6 +28,8 @@ class SearchSettings:
     finetune_steps: int = 0       # fine-tune each pick from its inherited weights, distilling from the largest
     #                               (tightfit.train.finetune); 0: ship the inherited weights
     finetune_lr: float = 0.1      # the fine-tune's peak learning rate (cosine to zero)
+    confirm: bool = True          # after a device's last budget, measure its picks once more, pool the repeats of
+    #                               both windows and choose again where a pick no longer keeps its guard (confirm.py)
 
     def evolution(self) -> EvolutionSettings:
         return EvolutionSettings(population=self.population, sample_size=min(self.sample_size, self.population),
