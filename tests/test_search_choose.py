@@ -70,7 +70,7 @@ def test_when_nothing_fits_the_fastest_measured_is_returned_and_flagged():
 
 def test_front_candidates_come_first_most_accurate_first():
     # Pareto dominance (Deb et al. 2002): c is slower and less accurate than a, so it is off the front.
-    from tightfit.search.choose import front_first
+    from tightfit.search.evolution import front_first
     ranked = [Candidate("a", None, 90.0, 0.9, 0), Candidate("c", None, 89.0, 0.95, 0), Candidate("b", None, 88.0, 0.5, 0)]
     assert [c.key for c in front_first(ranked)] == ["a", "b", "c"]
 

@@ -26,7 +26,7 @@ from tightfit.ondevice.timing import Protocol
 from tightfit.budgets import budget_label
 from tightfit.progress import bar as progress_bar
 from tightfit.search.cache import CachedAccuracy, CachedLatency
-from tightfit.search.evolution import Candidate, pareto_front
+from tightfit.search.evolution import Candidate
 from tightfit.search.fitness import RunAccuracy
 from tightfit.search.settings import SearchSettings
 from tightfit.train.finetune import FinetuneSettings
@@ -49,10 +49,9 @@ class SearchContext:
 
 @dataclass(frozen=True)
 class PickRuns:
-    """The raw repeat summaries a pick was chosen on and when they ended, so that a later measurement
-    can be pooled with them (confirm.py)."""
+    """A pick's raw repeat summaries and when they ended (time.time()), to pool a later measurement with."""
     runs: list[dict[str, Any]]
-    at: float  # time.time()
+    at: float
 
 
 UNVERIFIED = "unverified: measure on the device with tightfit verify"
@@ -187,13 +186,6 @@ def _guards_text(tried: list[Tried], fixed: Optional[float]) -> str:
     return f"guards {min(g):.1f}-{max(g):.1f} % from their measured spread"
 
 
-def front_first(ranked: list[Candidate]) -> list[Candidate]:
-    """Pareto-front candidates first, most accurate first: each is faster than the one before,
-    so the measured set spans latencies even when the most accurate few are alike."""
-    front = {k for k, _, _ in pareto_front([(c.key, c.fitness, c.latency_ms) for c in ranked])}
-    return [c for c in ranked if c.key in front] + [c for c in ranked if c.key not in front]
-
-
 class _Measurer:
     """Cuts candidates into ``staging`` and measures them whole, interleaved; keeps the time spent.
     ``guard_floor``: no candidate's guard is narrower (a spread seen over a longer window, confirm.py)."""
@@ -281,10 +273,8 @@ def choose_and_export(ctx: SearchContext, table: LatencyTable, ranked: list[Cand
 
 
 def guard_rule(fixed: Optional[float], floor: float = 0.0) -> str:
-    if fixed is not None:
-        return "--guard"
-    return "from the spread of its repeats" + (f", at least {100 * floor:.1f} % (the spread its device's picks showed "
-                                                "when measured again)" if floor > 0 else "")
+    return "--guard" if fixed is not None else "from the spread of its repeats" + (
+        f", at least {100 * floor:.1f} % (the spread its device's picks showed when measured again)" if floor > 0 else "")
 
 
 def finetune_pick(ctx: SearchContext, row: dict[str, Any]) -> dict[str, Any]:

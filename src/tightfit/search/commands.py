@@ -118,6 +118,19 @@ def add_search_parser(sub: Any) -> None:
     s.add_argument("--slack", type=float, default=None,
                    help="search up to this many percent over each budget (predicted) when picks are measured here "
                         "(default: the predictor's leave-one-out error, 5-25)")
+    _add_measurement_arguments(s)
+    _add_finetune_arguments(s)
+    s.add_argument("--eval-backend", choices=("onnxruntime", "torch"), default="onnxruntime",
+                   help="run the validation pass in ONNX Runtime (default, faster) or torch")
+    s.add_argument("--threads", type=int, default=None, help="torch/ORT CPU threads for evaluation (default: all cores)")
+    s.add_argument("--quiet", action="store_true", help="no progress bar")
+    s.add_argument("--json", action="store_true",
+                   help="print the picks as JSON on stdout (the rows of RUN/search/picks.json); progress and "
+                        "notes go to stderr")
+    s.set_defaults(func=_cmd_search)
+
+
+def _add_measurement_arguments(s: Any) -> None:
     s.add_argument("--guard", type=float, default=None,
                    help="a pick measured here must fit this many percent under its budget, so that QA's later "
                         "measurement still fits (default: each candidate's own, from how much its fresh-process "
@@ -130,15 +143,6 @@ def add_search_parser(sub: Any) -> None:
                    help="do not measure a device's picks again after its last budget (by default they are, the "
                         "repeats of both windows pooled, and a pick that no longer keeps its guard is chosen again "
                         "with guards at least that wide; about 5 s per pick)")
-    _add_finetune_arguments(s)
-    s.add_argument("--eval-backend", choices=("onnxruntime", "torch"), default="onnxruntime",
-                   help="run the validation pass in ONNX Runtime (default, faster) or torch")
-    s.add_argument("--threads", type=int, default=None, help="torch/ORT CPU threads for evaluation (default: all cores)")
-    s.add_argument("--quiet", action="store_true", help="no progress bar")
-    s.add_argument("--json", action="store_true",
-                   help="print the picks as JSON on stdout (the rows of RUN/search/picks.json); progress and "
-                        "notes go to stderr")
-    s.set_defaults(func=_cmd_search)
 
 
 def _add_finetune_arguments(s: Any) -> None:

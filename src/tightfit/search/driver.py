@@ -28,9 +28,9 @@ from tightfit.budgets import budget_label, parse_budget
 from tightfit.progress import bar
 from tightfit.search.cache import AccuracyCache, CachedAccuracy, CachedLatency
 from tightfit.ondevice.hardware import same_host
-from tightfit.search.choose import DEFAULT_GUARD, SearchContext, choose_and_export, finetune_pick, front_first
+from tightfit.search.choose import DEFAULT_GUARD, SearchContext, choose_and_export, finetune_pick
 from tightfit.search.confirm import confirm_picks, guard_floor_of
-from tightfit.search.evolution import Candidate, fastest_check, pareto_front, regularized_evolution
+from tightfit.search.evolution import Candidate, fastest_check, front_first, pareto_front, regularized_evolution
 from tightfit.search.fitness import RunAccuracy
 from tightfit.search.settings import SearchSettings
 from tightfit.train.rundir import load_trained
@@ -125,7 +125,7 @@ def ranked_within(candidates: list[Candidate], budget_ms: float) -> list[Candida
 
 
 def measuring_order(ctx: SearchContext, ranked: list[Candidate]) -> list[Candidate]:
-    """The order in which candidates are measured: Pareto front first (choose.front_first). When the
+    """The order in which candidates are measured: Pareto front first (evolution.front_first). When the
     search scored a capped part of the validation split, its best ``rescore`` candidates are scored
     again on the whole split and only they are ordered by that; the rest follow, reached only if none
     of them fits. A cheap ranking's noise then picks what is re-scored, not the pick."""

@@ -237,3 +237,10 @@ def pareto_front(points: list[tuple[str, float, float]]) -> list[tuple[str, floa
         if not front or p[1] > front[-1][1] or tie:
             front.append(p)
     return front
+
+
+def front_first(ranked: list[Candidate]) -> list[Candidate]:
+    """Pareto-front candidates first, most accurate first: each is faster than the one before,
+    so the measured set spans latencies even when the most accurate few are alike."""
+    front = {k for k, _, _ in pareto_front([(c.key, c.fitness, c.latency_ms) for c in ranked])}
+    return [c for c in ranked if c.key in front] + [c for c in ranked if c.key not in front]
