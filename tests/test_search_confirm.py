@@ -93,6 +93,7 @@ def test_unverified_rows_are_left_alone(tmp_path):
 
 
 def test_a_guard_floor_widens_every_candidates_guard_but_never_narrows_one(monkeypatch):
+    # this project's rule (search/choose.py _Measurer): guard = max(floor, the candidate's own from its spread)
     import tightfit.search.choose as choose
     rng = np.random.default_rng(1)
     spread = [repeat(level, rng) for level in (0.90, 0.99, 0.93, 1.02, 0.95)]  # its own guard is several percent
@@ -108,6 +109,7 @@ def test_a_guard_floor_widens_every_candidates_guard_but_never_narrows_one(monke
 
 
 def test_the_device_chooses_again_only_where_the_confirmed_pick_lost_its_guard(tmp_path, monkeypatch):
+    # this project's rule (search/driver.py _confirm): only a lost guard, and only a guard from the spread, re-chooses
     import tightfit.search.driver as driver
     lost = {"budget_ms": 1.0, "confirmed": {"keeps_guard": False, "pooled_ms": 0.99}, "guard": {"share": 0.07}}
     kept = {"budget_ms": 2.0, "confirmed": {"keeps_guard": True, "pooled_ms": 1.5}, "guard": {"share": 0.02}}

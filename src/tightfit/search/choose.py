@@ -103,13 +103,17 @@ def _most_accurate(tried: list[Tried]) -> Tried:
 DEFAULT_GUARD = 0.05  # when a candidate's spread is unknown (one repeat) and no --guard is given
 
 
-def guard_of(t: Tried, fixed: Optional[float]) -> float:
-    """Share of the budget a measured candidate must leave free: ``fixed`` (--guard) when given, else
-    the candidate's own guard from the spread of its repeats (ondevice/repeats.py guard_from_spread)."""
+def guard_share(measured: dict[str, Any], fixed: Optional[float]) -> float:
+    """Share of the budget a measured figure must leave free: ``fixed`` (--guard) when given, else the
+    figure's own guard from the spread of its repeats (ondevice/repeats.py guard_from_spread)."""
     if fixed is not None:
         return fixed
-    own = t.measured.get("guard")
+    own = measured.get("guard")
     return DEFAULT_GUARD if own is None else float(own)
+
+
+def guard_of(t: Tried, fixed: Optional[float]) -> float:
+    return guard_share(t.measured, fixed)
 
 
 def keeps_guard(t: Tried, budget_ms: float, fixed: Optional[float]) -> bool:
@@ -221,8 +225,7 @@ class _Measurer:
             self.runs[path] = self.runs.get(path, []) + runs[path]
             t.measured = combine_repeats(self.runs[path], self.protocol)
             if self.guard_floor > 0:
-                own = t.measured["guard"]
-                t.measured["guard"] = max(self.guard_floor, DEFAULT_GUARD if own is None else own)
+                t.measured["guard"] = max(self.guard_floor, guard_share(t.measured, None))
 
 
 def choose_and_export(ctx: SearchContext, table: LatencyTable, ranked: list[Candidate], budget_ms: float,

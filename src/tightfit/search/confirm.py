@@ -20,7 +20,7 @@ from tightfit.ondevice.files import write_json
 from tightfit.ondevice.hardware import describe_hardware
 from tightfit.ondevice.repeats import combine_repeats, repeat_summaries
 from tightfit.ondevice.timing import Protocol
-from tightfit.search.choose import DEFAULT_GUARD, SearchContext, guard_rule, verification_protocol
+from tightfit.search.choose import SearchContext, guard_rule, guard_share, verification_protocol
 
 MeasureAgain = Callable[[list[str], Protocol], dict[str, list[dict[str, Any]]]]
 """(model paths, protocol) -> each path's new repeat summaries (ondevice.repeats.repeat_summaries)."""
@@ -48,7 +48,7 @@ def _pooled_row(ctx: SearchContext, row: dict[str, Any], later: list[dict[str, A
     first = ctx.pick_runs[row["export_dir"]]
     pooled = combine_repeats(first.runs + later, protocol)
     fixed = ctx.settings.guard
-    share = fixed if fixed is not None else (DEFAULT_GUARD if pooled["guard"] is None else pooled["guard"])
+    share = guard_share(pooled, fixed)
     budget, figure = row["budget_ms"], pooled["budget_stat_ms"]
     keeps = figure <= budget * (1 - share)
     record = {"first_ms": round(combine_repeats(first.runs, protocol)["budget_stat_ms"], 6),
