@@ -41,9 +41,9 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     p.add_argument("--smoke", action="store_true",
                    help="smallest setting (a few hundred images, tiny search) to check the script end to end")
     p.add_argument("--threads", type=int, default=None, help="torch threads for training (default: all cores)")
-    p.add_argument("--reserve", type=float, default=0.33,
+    p.add_argument("--reserve", type=float, default=0.31,
                    help="share of the family's CPU-seconds kept for profiling + search; the rest buys supernet "
-                        "epochs (default 0.33)")
+                        "epochs (default 0.31)")
     return p.parse_args(argv)
 
 
@@ -139,7 +139,7 @@ def search_settings(smoke: bool):
     from tightfit.search.settings import SearchSettings
     return (SearchSettings(population=4, evaluations=8, top=1, val_images=200, rescore=2, finetune_steps=2,
                            finetune_lr=FINETUNE_LR) if smoke
-            else SearchSettings(population=12, evaluations=48, top=3, val_images=3000, rescore=8,
+            else SearchSettings(population=12, evaluations=24, top=3, val_images=3000, rescore=8,
                                 finetune_steps=FINETUNE_STEPS, finetune_lr=FINETUNE_LR))
 
 
