@@ -20,6 +20,12 @@ def test_help_via_module_and_per_command():
         assert r.returncode == 0 and "usage:" in r.stdout, cmd
 
 
+def test_the_cli_module_runs_as_a_script_like_the_package():
+    out = subprocess.run([sys.executable, "-m", "tightfit.cli", "--help"], capture_output=True, text=True, timeout=300)
+    assert out.returncode == 0 and "latency budget" in out.stdout
+    assert subprocess.run([sys.executable, "-m", "tightfit.cli"], capture_output=True, text=True, timeout=300).returncode == 2
+
+
 def test_no_command_prints_help_and_exits_2(capsys):
     assert main([]) == 2
 

@@ -95,3 +95,7 @@ def main(argv: list[str] | None = None) -> int:
     except Interrupted as e:
         print(str(e), file=sys.stderr)
         return e.code
+
+
+if __name__ == "__main__":  # `python -m tightfit.cli` behaves like `tightfit` and `python -m tightfit`
+    raise SystemExit(main())
