@@ -171,6 +171,7 @@ def page_text(result: dict, plot_name: str) -> str:
         *[f"- {k} ms: {'; '.join(v)}" for k, v in result["search_timing"].items()],
         "",
         *_ratio_lines(result.get("measured_over_predicted") or {}),
+        *_screen_lines(SCREEN),
         "## Machine and software",
         "",
         f"- CPU: {dev.get('cpu_model')}, {dev.get('logical_cores', dev.get('cores'))} logical cores; OS: {dev.get('os')}",
@@ -219,6 +220,32 @@ def _ratio_lines(ratio: dict) -> list[str]:
 
 
 NOTES = Path(__file__).resolve().parents[1] / "benchmarks" / "fashion-mnist-notes.md"
+SCREEN = Path(__file__).resolve().parents[1] / "benchmarks" / "results" / "training-screen-benchmark-length.json"
+
+
+def _screen_lines(path: Path) -> list[str]:
+    """The training levers screened at the benchmark's length, each against the two baseline seeds."""
+    if not path.is_file():
+        return []
+    from screen_summary import COLUMNS, summarise  # scripts/screen_summary.py
+    doc = json.loads(path.read_text("utf-8"))
+    rows = [r for r in summarise(doc) if r["label"] not in ("as written", "seed=1")]
+    return ["## Training levers screened at the benchmark's length", "",
+            f"`scripts/bench_train_settings.py` ({path.name}, {doc['protocol'].get('date', '')}): "
+            f"{doc['protocol'].get('note', '')} Validation points against the mean of two seeds of the recipe "
+            f"as written (one run's noise σ {rows[0]['sigma']:.2f}, clear beyond {rows[0]['threshold']:.2f}); an "
+            "\"alone\" row is that subnet trained by itself, i.e. what weight sharing costs it; an epochs row "
+            "changes the compute, so it is no lever at equal compute. DEVELOPERS.md, \"Training levers at the benchmark's "
+            "length\", has the protocol and the CPU checks.", "",
+            "| change | " + " | ".join(f"Δ {c.replace('_', ' ')}" for c in COLUMNS) + " | verdict |",
+            "|---|" + "---|" * len(COLUMNS) + "---|",
+            *[f"| {r['label']} | " + " | ".join(f"{r['delta'][c]:+.2f}" if c in r["delta"] else "" for c in COLUMNS) + f" | {_verdict(r)} |"
+              for r in rows], ""]
+
+
+def _verdict(row: dict) -> str:
+    """An epochs row changes the compute, so it is no lever at equal compute whatever its figures say."""
+    return "other compute" if row["label"].startswith("epochs=") and ":" not in row["label"] else row.get("verdict", "")
 
 
 def write_page(result: dict, docs: Path) -> Path:

@@ -26,7 +26,6 @@ from __future__ import annotations
 import argparse
 import dataclasses
 import json
-import math
 import random
 import sys
 import time
@@ -41,6 +40,8 @@ from tightfit.recipe import Recipe, TrainConfig, load_recipe
 from tightfit.train.loop import train
 from tightfit.train.rundir import load_trained
 from tightfit.train.finetune import FinetuneSettings, finetuned_subnet
+
+from screen_summary import COLUMNS, summarise  # scripts/screen_summary.py, torch-free for the benchmark page
 
 
 def parse_variant(text: str) -> dict:
@@ -113,42 +114,6 @@ def merge_json(path: Path, label: str, record: dict, meta: dict) -> None:
     doc.setdefault("runs", {})[label] = record
     path.parent.mkdir(parents=True, exist_ok=True)
     path.write_text(json.dumps(doc, indent=1) + "\n")
-
-
-COLUMNS = ("largest", "middle", "smallest", "mean_random")
-
-
-def _figures(rec: dict) -> dict[str, float]:
-    return {**rec["acc"], **({"mean_random": rec["mean_random"]} if "mean_random" in rec else {})}
-
-
-def summarise(doc: dict, baselines: tuple[str, ...] = ("as written", "seed=1")) -> list[dict]:
-    """Each run against the mean of the baseline seeds, in points, with a verdict against their noise.
-
-    Noise: sigma, one run's standard deviation, from the two seeds' differences d over the four
-    columns (sigma^2 = mean(d^2) / 2). A run minus the two-seed mean has sd sigma * sqrt(1.5);
-    an effect is clear beyond 2 * sigma * sqrt(1.5) ("threshold"). Verdict on the mean of the four
-    columns: "adopt" if it is above the threshold and no column is below -threshold, "no" if it is
-    below -threshold, "unclear" otherwise. Alone runs show the gap their subnet leaves."""
-    runs = doc["runs"]
-    base = [_figures(runs[b]) for b in baselines]
-    mean = {c: sum(b[c] for b in base) / len(base) for c in COLUMNS}
-    sigma = math.sqrt(sum((base[0][c] - base[1][c]) ** 2 for c in COLUMNS) / len(COLUMNS) / 2)
-    threshold = 2 * sigma * math.sqrt(1.5)
-    base_s = sum(runs[b]["train_s"] for b in baselines) / len(baselines)
-    rows = []
-    for label, rec in runs.items():
-        fig = _figures(rec)
-        delta = {c: fig[c] - mean[c] for c in COLUMNS if c in fig}
-        row = {"label": label, "delta": delta, "train_s": rec["train_s"], "delta_s": rec["train_s"] - base_s,
-               "sigma": sigma, "threshold": threshold}
-        if len(delta) == len(COLUMNS) and label not in baselines:
-            avg = sum(delta.values()) / len(delta)
-            row["mean_delta"] = avg
-            row["verdict"] = ("adopt" if avg > threshold and min(delta.values()) > -threshold
-                              else "no" if avg < -threshold else "unclear")
-        rows.append(row)
-    return rows
 
 
 def print_summary(doc: dict) -> None:
