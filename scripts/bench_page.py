@@ -72,14 +72,20 @@ def _row(r: dict) -> str:
 def _device_section(result: dict, device: str) -> list[str]:
     threads = result["protocols"][device]["threads"]
     rows = [r for r in result["budgets"] if r["device"] == device]
-    notes = [f"- The {r['budget_ms']:g} ms budget was placed above {r['placed_above']}, which measured over it in "
-             "the final session: the comparison is with a smaller member, which flatters the pick."
-             for r in rows if r.get("placed_above_fits") is False]
+    notes = [*(_placed_note(r) for r in rows if r.get("placed_above_fits") is False),
+             *(f"- The {r['budget_ms']:g} ms pick measured {r['pick']['p90_ms']:.3f} ms in the final session: over "
+               "its budget there, though its search measured it inside." for r in rows if r.get("pick_fits") is False)]
     return [f"### {device} ({threads} intra-op thread{'s' * (threads > 1)})", "",
             "| budget ms (p90) | pick | test %, inherited weights | test %, fine-tuned | p90 ms | params | MMACs | "
             "best fitting family member | test % | p90 ms | params | MMACs | gain, inherited (points) | gain (points) |",
             "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|",
             *[_row(r) for r in rows], "", *notes, *([""] if notes else [])]
+
+
+def _placed_note(r: dict) -> str:
+    head = f"- The {r['budget_ms']:g} ms budget was placed above {r['placed_above']}, which measured over it in the final session: "
+    return head + ("the comparison is with a smaller member, which flatters the pick." if r["baseline"]
+                   else "no member fits, so no gain is counted.")
 
 
 def _fmt(v, spec: str, none: str = "none") -> str:
