@@ -21,6 +21,7 @@ def test_help_via_module_and_per_command():
 
 
 def test_the_cli_module_runs_as_a_script_like_the_package():
+    # Python docs (runpy, `python -m`): the module runs as __main__, so only a main guard makes it act
     out = subprocess.run([sys.executable, "-m", "tightfit.cli", "--help"], capture_output=True, text=True, timeout=300)
     assert out.returncode == 0 and "latency budget" in out.stdout
     assert subprocess.run([sys.executable, "-m", "tightfit.cli"], capture_output=True, text=True, timeout=300).returncode == 2
