@@ -233,9 +233,9 @@ def _screen_lines(path: Path) -> list[str]:
     """The training levers screened at the benchmark's length, each against the two baseline seeds."""
     if not path.is_file():
         return []
-    from screen_summary import COLUMNS, summarise  # scripts/screen_summary.py
+    from screen_summary import BASELINES, COLUMNS, summarise  # scripts/screen_summary.py
     doc = json.loads(path.read_text("utf-8"))
-    rows = [r for r in summarise(doc) if r["label"] not in ("as written", "seed=1")]
+    rows = [r for r in summarise(doc) if r["label"] not in BASELINES]
     return ["## Training levers screened at the benchmark's length", "",
             f"`scripts/bench_train_settings.py` ({path.name}, {doc['protocol'].get('date', '')}): "
             f"{doc['protocol'].get('note', '')} Validation points against the mean of two seeds of the recipe "

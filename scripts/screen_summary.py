@@ -7,13 +7,14 @@ from __future__ import annotations
 import math
 
 COLUMNS = ("largest", "middle", "smallest", "mean_random")
+BASELINES = ("as written", "seed=1")  # two seeds of the recipe as written: the noise level
 
 
 def _figures(rec: dict) -> dict[str, float]:
     return {**rec["acc"], **({"mean_random": rec["mean_random"]} if "mean_random" in rec else {})}
 
 
-def summarise(doc: dict, baselines: tuple[str, ...] = ("as written", "seed=1")) -> list[dict]:
+def summarise(doc: dict, baselines: tuple[str, ...] = BASELINES) -> list[dict]:
     """Each run against the mean of the baseline seeds, in points, with a verdict against their noise.
 
     Noise: sigma, one run's standard deviation, from the two seeds' differences d over the four
