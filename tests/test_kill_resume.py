@@ -2,9 +2,11 @@
 bit-identical to an uninterrupted run (CPU, one thread); SIGINT/SIGTERM write a checkpoint, exit
 130/143 and say how to resume; a half-written checkpoint file is never trusted.
 
-The kill points are drawn from a seeded random.Random and located by reading the progress bar
-the `tightfit train` subprocess prints, so each kill lands mid-training (at a chosen step plus
-a random fraction of a step), not in the seconds of start-up.
+The `tightfit train` subprocesses run behind a step gate (tests/gated_train.py): the test lets
+training go exactly to a chosen step, then lets one more step start and kills it a random moment
+later (seeded random.Random). So a kill lands mid-training on a slow host and on a fast one alike;
+what it can leave (a checkpoint of an earlier step, a temporary file, at most one step further) no
+longer depends on the host's speed.
 """
 from __future__ import annotations
 
@@ -23,43 +25,52 @@ from pathlib import Path
 import pytest
 import torch
 
+from gated_train import read_number, write_number
 from helpers import TINY, recipe_toml
-from tightfit.train.checkpoint import load_checkpoint
+from tightfit.train.checkpoint import load_checkpoint, save_checkpoint
 
 RECIPE = copy.deepcopy(TINY)
 RECIPE["data"]["samples"] = 400                                 # 306 training images: 9 steps of 32 per epoch
 RECIPE["train"].update(epochs=4, checkpoint_every=3)            # 36 steps, a checkpoint every 3
 TOTAL_STEPS = 36
-STEP = re.compile(rb"(\d+)/(\d+) \[")                            # tqdm's "n/total [" counter
+GATED = Path(__file__).with_name("gated_train.py")
 LEFTOVER = ".checkpoint.pt.*.tmp"                                # tightfit.ondevice.files's temporary names
 PLANTED = ".checkpoint.pt.planted.tmp"                           # a fake half-written one, planted by the test
+OPEN = 1 << 30                                                   # a gate that no longer holds anything back
 
 
 class Training:
-    """A `tightfit train` subprocess whose progress bar is read while it runs."""
+    """A gated `tightfit train` subprocess (see tests/gated_train.py); stderr is collected while it runs."""
 
-    def __init__(self, recipe: Path, run: Path, resume: bool):
-        args = [sys.executable, "-m", "tightfit", "train", str(recipe), "--run", str(run), "--threads", "1"]
+    def __init__(self, recipe: Path, run: Path, resume: bool, allow: int = OPEN):
+        self.gate = run.parent / f".{run.name}.gate"
+        write_number(self.gate, allow)
+        self.gate.with_name(self.gate.name + ".at").unlink(missing_ok=True)
+        args = [sys.executable, str(GATED), str(self.gate), "train", str(recipe), "--run", str(run), "--threads", "1"]
         self.proc = subprocess.Popen(args + (["--resume"] if resume else []), stdin=subprocess.DEVNULL,
                                      stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-        self.err, self.step = b"", -1
+        self.err = b""
         self._reader = threading.Thread(target=self._read, daemon=True)
         self._reader.start()
 
     def _read(self) -> None:
         while chunk := self.proc.stderr.read1(4096):
             self.err += chunk
-            found = STEP.findall(self.err[-400:])
-            if found:
-                self.step = int(found[-1][0])
 
-    def wait_for_step(self, step: int, timeout: float = 300) -> bool:
-        """True once `step` steps are done and the process still runs."""
+    def allow(self, steps: int) -> None:
+        write_number(self.gate, steps)
+
+    def waiting_at(self) -> int:
+        """The step the process waits to start (all earlier steps and their checkpoints are done)."""
+        return read_number(self.gate.with_name(self.gate.name + ".at"))
+
+    def wait_until_held_at(self, step: int, timeout: float = 300) -> bool:
+        """True once the process has done `step` steps and waits at the gate, still running."""
         deadline = time.monotonic() + timeout
-        while self.step < step and self.proc.poll() is None:
+        while self.waiting_at() < step and self.proc.poll() is None:
             assert time.monotonic() < deadline, "training made no progress"
             time.sleep(0.01)
-        return self.step >= step and self.proc.poll() is None
+        return self.waiting_at() == step and self.proc.poll() is None
 
     def finish(self, timeout: float = 300) -> tuple[int, str]:
         code = self.proc.wait(timeout)
@@ -111,30 +122,33 @@ def assert_same_training(run: Path, reference: Path) -> None:
     assert metrics(run) == metrics(reference)
 
 
-def after_kill(run: Path) -> dict:
-    """What a SIGKILL left: a checkpoint that loads whole (or none yet), maybe a temporary file.
-    A fake half-written temporary is then planted, to show resume never reads one."""
+def after_kill(run: Path, last_allowed: int) -> dict:
+    """What a SIGKILL left: a checkpoint that loads whole (or none yet), of a step the gate let
+    through, maybe a temporary file. A fake half-written temporary is then planted, to show resume
+    never reads one."""
     ckpt = run / "checkpoint.pt"
     state = load_checkpoint(ckpt) if ckpt.exists() else None  # raises if half-written
     if state is not None:
-        assert 0 < state["step"] < TOTAL_STEPS and state["complete"] is False
+        assert 0 < state["step"] <= last_allowed < TOTAL_STEPS and state["complete"] is False
     leftovers = len([p for p in run.glob(LEFTOVER) if p.name != PLANTED])
     (run / PLANTED).write_bytes(b"PK\x03\x04 half a checkpoint")
     return {"checkpoint_step": state["step"] if state else None, "leftover_tmp": leftovers}
 
 
 def kill_and_resume(recipe: Path, run: Path, kill_steps: list[int], rng: random.Random) -> list[dict]:
-    """SIGKILL the run once it has done each of kill_steps (plus a random part of a step),
-    resuming in between; then resume to the end. Returns what each kill left."""
+    """SIGKILL the run once it has done each of kill_steps, a random moment into the next step
+    (which may reach its checkpoint write, or end and wait at the gate), resuming in between;
+    then resume to the end. Returns what each kill left."""
     log = []
     for i, target in enumerate(kill_steps):
-        t = Training(recipe, run, resume=i > 0)
-        assert t.wait_for_step(target), t.finish()[1][-2000:]
+        t = Training(recipe, run, resume=i > 0, allow=target)
+        assert t.wait_until_held_at(target), t.finish()[1][-2000:]
+        t.allow(target + 1)
         time.sleep(rng.uniform(0.0, 0.25))
         t.proc.kill()
         code, err = t.finish()
         assert code == -signal.SIGKILL, err[-2000:]
-        log.append({"kill_after_step": t.step, **after_kill(run)})
+        log.append({"kill_after_step": target, "held_at": t.waiting_at(), **after_kill(run, target + 1)})
     code, err = Training(recipe, run, resume=True).finish()
     assert code == 0, err[-2000:]
     return log
@@ -167,9 +181,10 @@ def test_sigint_sigterm_write_a_checkpoint_and_say_how_to_resume(tmp_path, recip
     """128 + signal number is the shell's exit status for a signal (POSIX shell, 'Exit Status');
     the run stops between steps with a whole checkpoint, and resuming it matches the reference."""
     run = tmp_path / "run"
-    t = Training(recipe_file, run, resume=False)
-    assert t.wait_for_step(4), t.finish()[1][-2000:]
-    t.proc.send_signal(sig)
+    t = Training(recipe_file, run, resume=False, allow=4)
+    assert t.wait_until_held_at(4), t.finish()[1][-2000:]
+    t.proc.send_signal(sig)  # arrives while the process waits before step 5; the gate then opens
+    t.allow(OPEN)
     got, err = t.finish()
     assert got == code == 128 + sig, err[-2000:]
     last = [ln for ln in err.replace("\r", "\n").splitlines() if ln.strip()][-1]
@@ -177,7 +192,7 @@ def test_sigint_sigterm_write_a_checkpoint_and_say_how_to_resume(tmp_path, recip
                      r"tightfit train \S+ --run (\S+) --resume", last)
     assert m and m[2] == str(run), last
     state = load_checkpoint(run / "checkpoint.pt")
-    assert state["step"] == int(m[1]) and 4 <= state["step"] < TOTAL_STEPS and state["complete"] is False
+    assert state["step"] == int(m[1]) == 5 and state["complete"] is False  # the step under way finishes first
     assert list(run.glob(LEFTOVER)) == []  # a clean stop leaves no temporary file
     resumed, err = Training(recipe_file, run, resume=True).finish()
     assert resumed == 0, err[-2000:]
@@ -229,3 +244,19 @@ def test_resume_removes_temporaries_left_by_killed_writes(tmp_path, recipe_file,
     _resume_in_process(run, recipe_file)
     assert list(run.glob(LEFTOVER)) == []
     assert load_checkpoint(run / "checkpoint.pt")["complete"]
+
+
+def test_resume_of_a_run_stopped_between_its_last_checkpoint_and_the_complete_one_finishes_it(
+        tmp_path, recipe_file, reference):
+    """The state a kill can leave between the last step's checkpoint and the one marked complete
+    (or an older checkpoint format that wrote them apart): every step done, `complete` false, the
+    final evaluation maybe logged. Resume runs the final evaluation once and marks the run complete,
+    ending bit-identical to the uninterrupted run."""
+    run = Path(shutil.copytree(reference, tmp_path / "run"))
+    state = load_checkpoint(run / "checkpoint.pt")
+    assert state["step"] == TOTAL_STEPS and state["complete"]
+    save_checkpoint(run / "checkpoint.pt", {**state, "complete": False})
+    _resume_in_process(run, recipe_file)
+    assert_same_training(run, reference)
+    finals = [r for r in metrics(run) if r["step"] == TOTAL_STEPS and "val_acc_largest" in r]
+    assert len(finals) == 1

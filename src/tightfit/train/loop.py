@@ -94,16 +94,16 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, recipe_p
         if recipe.train.channels_last:
             model = model.to(memory_format=torch.channels_last)
         opt = make_optimizer(model, recipe.train)
-        start = 0
+        start, complete = 0, False
         if state is not None:
             model.load_state_dict(state["model"])
             opt.load_state_dict(state["optimizer"])
             torch.set_rng_state(state["rng"])
-            start = int(state["step"])
+            start, complete = int(state["step"]), bool(state.get("complete", False))
         broadcast_weights(model, ranks)  # every rank starts from rank 0's weights
         if ranks.is_main and recipe_path is not None and not (run_dir / "recipe.toml").exists():
             write_bytes(run_dir / "recipe.toml", Path(recipe_path).read_bytes())
-        return _loop(model, opt, recipe, ds, run_dir, start, progress, dev, ranks, stop_at_step)
+        return _loop(model, opt, recipe, ds, run_dir, start, progress, dev, ranks, stop_at_step, complete)
 
 
 def _open_run(run_dir: Path, recipe: Recipe, resume: bool) -> dict | None:
@@ -128,7 +128,7 @@ def _open_run(run_dir: Path, recipe: Recipe, resume: bool) -> dict | None:
 
 # long: one training step's bookkeeping (schedule, sync, logging, checkpoint, stop) must stay in one visible order
 def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, start: int, progress: bool,
-          dev: torch.device, ranks: Ranks = Ranks(), stop_at_step: int | None = None) -> Path:
+          dev: torch.device, ranks: Ranks = Ranks(), stop_at_step: int | None = None, complete: bool = False) -> Path:
     cfg = recipe.train
     spe = steps_per_epoch(ds, cfg.batch_size)
     if spe == 0:
@@ -185,4 +185,20 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
                 if step >= total or end_of_epoch:
                     break
     bar.close()
+    if start >= total and not complete:
+        _finish(model, opt, recipe, ds, run_dir, total, spe, ranks)
     return ckpt
+
+
+def _finish(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, total: int, spe: int,
+            ranks: Ranks) -> None:
+    """Resume of a run stopped after its last step's checkpoint but before the one marked
+    complete (only older checkpoints, or a kill between the two writes, leave that state): run the
+    final evaluation again and write the complete checkpoint, as the uninterrupted run does."""
+    if ranks.is_main:
+        metrics = run_dir / "metrics.jsonl"
+        keep = [r for r in read_jsonl(metrics)[0] if not (r.get("step") == total and "val_acc_largest" in r)]
+        write_text(metrics, "".join(json.dumps(r) + "\n" for r in keep))
+        append_jsonl(metrics, _epoch_eval(model, recipe, ds, (total - 1) // spe + 1, total))
+        save_checkpoint(checkpoint_path(run_dir), _state(model, opt, total, recipe, ds, True))
+    barrier(ranks)
