@@ -2,12 +2,14 @@
 
     .venv/bin/python scripts/check_mutations.py            # every mutation, prints the kill count
     .venv/bin/python scripts/check_mutations.py --list     # the table only
+    .venv/bin/python scripts/check_mutations.py --only finetune   # the mutations of one file (or description)
 
 A mutation is (file under src/tightfit, exact text, replacement, tests that must fail). Each runs in a
 fresh temporary copy of src/ and tests/ (the checkout is never touched), with PYTHONPATH pointing at
 the copy. Exit 0 when every mutation is killed, 1 otherwise, 2 when a mutation's text is not found
-(the table has drifted from the code: update it). Grow the table with the code: a new rule in the
-search, the protocol or training gets its mutation here.
+(the table has drifted from the code: update it; tests/test_mutation_table.py checks the same in
+the suite, in seconds). Grow the table with the code: a new rule in the search, the protocol or
+training gets its mutation here.
 """
 from __future__ import annotations
 
@@ -51,7 +53,10 @@ MUTATIONS = (
              "base * (end + (1 - end) * 0.5", "base * (0 + (1 - end) * 0.5",
              ("tests/test_train.py::test_schedule_can_end_at_a_fraction_of_the_base_lr",)),
     Mutation("zero init also on blocks without a skip", "train/initialise.py",
-             "and m.stride == 1 and m.in_channels == m.out_channels:", "and m.stride == 1:",
+             "if block.stride == 1 and set(widths_in) & set(options[i + 1]):", "if block.stride == 1:",
+             ("tests/test_train.py::test_zero_init_residual_zeroes_bn3_gamma_of_exactly_the_skip_blocks",)),
+    Mutation("a first block's skip judged by its own stage's widths", "train/initialise.py",
+             "widths_in = options[i + 1] if j else options[i]", "widths_in = options[i + 1]",
              ("tests/test_train.py::test_zero_init_residual_zeroes_bn3_gamma_of_exactly_the_skip_blocks",)),
     Mutation("sandwich draw ignores the seed", "train/sandwich.py",
              "random.Random(seed * 7_919 + step)", "random.Random(step)",
@@ -108,7 +113,7 @@ MUTATIONS = (
     Mutation("slowest instead of fastest when nothing fits", "search/choose.py",
              "return Choice(min(tried,", "return Choice(max(tried,",
              ("tests/test_search_choose.py::test_when_nothing_fits_the_fastest_measured_is_returned_and_flagged",)),
-    Mutation("front order reversed", "search/choose.py",
+    Mutation("front order reversed", "search/evolution.py",
              "return [c for c in ranked if c.key in front] + [c for c in ranked if c.key not in front]",
              "return [c for c in ranked if c.key not in front] + [c for c in ranked if c.key in front]",
              ("tests/test_search_choose.py::test_front_candidates_come_first_most_accurate_first",)),
@@ -144,11 +149,14 @@ MUTATIONS = (
              'pooled_ms = np.asarray(summaries[len(summaries) // 2]["times_ms"], dtype=np.float64)',
              ("tests/test_ondevice_repeats.py::test_pooled_figure_keeps_a_state_that_only_some_repeats_caught",)),
     Mutation("guard without Student's t", "ondevice/repeats.py",
-             "return max(MIN_GUARD, t * s * math.sqrt(2.0 / n) / figure)",
-             "return max(MIN_GUARD, s * math.sqrt(2.0 / n) / figure)",
+             "return max(MIN_GUARD, t * s * math.sqrt(1.0 / n + 1.0 / m) / figure)",
+             "return max(MIN_GUARD, s * math.sqrt(1.0 / n + 1.0 / m) / figure)",
              ("tests/test_ondevice_repeats.py::test_guard_is_the_one_sided_95_percent_bound_on_a_later_pooled_figure",)),
+    Mutation("guard assumes the later measurement has as many repeats", "ondevice/repeats.py",
+             "m = n if later is None else later", "m = n",
+             ("tests/test_ondevice_repeats.py::test_guard_of_ten_repeats_against_a_later_five_still_covers_95_percent",)),
     Mutation("a candidate's own guard ignored", "search/choose.py",
-             'own = t.measured.get("guard")', "own = None",
+             'own = measured.get("guard")', "own = None",
              ("tests/test_search_choose.py::test_each_candidate_keeps_its_own_measured_guard",)),
     Mutation("search exits 0 with an unverified pick", "search/commands.py",
              'return 0 if all(r["verified"] for r in rows) else 3', "return 0",
@@ -162,17 +170,30 @@ MUTATIONS = (
 )
 
 
+def source_of(m: Mutation, root: Path = ROOT) -> Path:
+    return root / "src" / "tightfit" / m.file
+
+
+def drifted(mutations: tuple[Mutation, ...]) -> list[str]:
+    """One line for each mutation whose text is not found exactly once in its file (the code moved)."""
+    out = []
+    for m in mutations:
+        n = source_of(m).read_text().count(m.text)
+        if n != 1:
+            out.append(f"{m.file}: the text of mutation {m.what!r} is found {n} times (expected once)")
+    return out
+
+
 def run_one(m: Mutation | None, python: str, tests: tuple[str, ...] = ()) -> tuple[bool, float]:
     """(failed, seconds): apply ``m`` (None: nothing) to a fresh copy and run its tests there."""
     with tempfile.TemporaryDirectory(prefix="tightfit-mutant-") as tmp:
         for part in ("src", "tests"):
             shutil.copytree(ROOT / part, Path(tmp) / part, ignore=shutil.ignore_patterns("__pycache__", "*.egg-info"))
         if m is not None:
-            target = Path(tmp) / "src" / "tightfit" / m.file
+            target = source_of(m, Path(tmp))
             text = target.read_text()
-            if text.count(m.text) != 1:
-                print(f"error: {m.file}: the text of mutation {m.what!r} is found {text.count(m.text)} times "
-                      "(expected once); update the table", file=sys.stderr)
+            if text.count(m.text) != 1:  # changed since the check in main (the tree is shared)
+                print(f"error: {drifted((m,))[0]} in the copy; update the table", file=sys.stderr)
                 sys.exit(2)
             target.write_text(text.replace(m.text, m.replacement))
         env = dict(os.environ, PYTHONPATH=str(Path(tmp) / "src"))
@@ -185,23 +206,31 @@ def run_one(m: Mutation | None, python: str, tests: tuple[str, ...] = ()) -> tup
 def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--list", action="store_true", help="print the table and exit")
+    p.add_argument("--only", metavar="TEXT", help="only the mutations whose file or description contains TEXT")
     args = p.parse_args(argv)
+    chosen = tuple(m for m in MUTATIONS if not args.only or args.only in m.file or args.only in m.what)
     if args.list:
-        for m in MUTATIONS:
+        for m in chosen:
             print(f"{m.file:<22} {m.what}")
         return 0
+    problems = drifted(chosen)
+    if problems:
+        print("error: the table has drifted from the code; update it\n  " + "\n  ".join(problems), file=sys.stderr)
+        return 2
     t0, survivors = time.perf_counter(), []
-    every_test = tuple(dict.fromkeys(t for m in MUTATIONS for t in m.tests))
+    every_test = tuple(dict.fromkeys(t for m in chosen for t in m.tests))
     if run_one(None, sys.executable, every_test)[0]:  # a kill only counts if the unmutated code passes
         print("error: the named tests fail on the unmutated code; fix them first", file=sys.stderr)
         return 2
-    for i, m in enumerate(MUTATIONS, 1):
+    for i, m in enumerate(chosen, 1):
         killed, seconds = run_one(m, sys.executable)
-        print(f"[{i:>2}/{len(MUTATIONS)}] {'killed  ' if killed else 'SURVIVED'} {seconds:5.1f} s  {m.file}: {m.what}",
+        print(f"[{i:>2}/{len(chosen)}] {'killed  ' if killed else 'SURVIVED'} {seconds:5.1f} s  {m.file}: {m.what}",
               flush=True)
         if not killed:
             survivors.append(m)
-    print(f"{len(MUTATIONS) - len(survivors)} of {len(MUTATIONS)} mutations killed in {time.perf_counter() - t0:.0f} s")
+    print(f"{len(chosen) - len(survivors)} of {len(chosen)} mutations killed in {time.perf_counter() - t0:.0f} s")
+    for m in survivors:
+        print(f"survived: {m.file}: {m.what}")
     return 1 if survivors else 0
 
 
