@@ -256,7 +256,7 @@ def train_member(recipe, member, family_dir: Path, smoke: bool) -> dict:
 
 def export_member(run: Path) -> tuple[Path, int, int]:
     """The trained member as a static net (its own running BN statistics) → ONNX."""
-    from tightfit.export.onnx import export_onnx
+    from tightfit.model.onnx import export_onnx
     from tightfit.model.extract import count_macs, count_params, extract_subnet
     from tightfit.train.rundir import load_trained
     t = load_trained(run)

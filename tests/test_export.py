@@ -7,7 +7,7 @@ import pytest
 import torch
 from onnx.reference import ReferenceEvaluator
 
-from tightfit.export.onnx import export_onnx, max_parity_error, ort_outputs
+from tightfit.model.onnx import export_onnx, max_parity_error, ort_outputs
 from tightfit.model.extract import extract_subnet
 from tightfit.model.supernet import Supernet
 from helpers import perturb, tiny_recipe

@@ -28,7 +28,7 @@ REQUIRED = {
 
 
 def test_manifest_fields_and_sha256(tmp_path):
-    from tightfit.export.onnx import onnx_bytes
+    from tightfit.model.onnx import onnx_bytes
     from tightfit.model.extract import count_macs, count_params, extract_subnet
     from tightfit.ondevice.hardware import describe_hardware
     from tightfit.ondevice.timing import Protocol

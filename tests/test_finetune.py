@@ -17,7 +17,7 @@ from tightfit.data.dataset import calibration_batches, eval_batches, load_datase
 from tightfit.errors import UserError
 from tightfit.export.by_hand import cut_subnets
 from tightfit.export.finetuned import finetune_export, graph_signature
-from tightfit.export.onnx import ort_outputs
+from tightfit.model.onnx import ort_outputs
 from tightfit.model.extract import extract_subnet
 from tightfit.train.finetune import FinetuneSettings, finetune, inherited_net, teacher_of
 from tightfit.train.rundir import load_trained
@@ -115,7 +115,7 @@ def test_a_fine_tuned_export_keeps_its_graph_and_latency_claim_and_records_both_
 def test_the_graph_signature_tells_different_subnets_apart(run_copy):
     run = load_trained(run_copy)
     space = run.recipe.space
-    from tightfit.export.onnx import onnx_bytes
+    from tightfit.model.onnx import onnx_bytes
     sigs = set()
     for s in (space.smallest(), space.middle(), space.largest()):
         run.supernet.set_subnet(s)

@@ -12,7 +12,7 @@ from typing import Optional
 
 from tightfit.ondevice.files import write_bytes
 from tightfit.data.dataset import Dataset, calibration_batches, eval_batches
-from tightfit.export.onnx import export_onnx, max_parity_error
+from tightfit.model.onnx import export_onnx, max_parity_error
 from tightfit.model.extract import StaticNet, count_macs, count_params, extract_subnet
 from tightfit.model.recalibrate import accuracy, preserved_bn_stats, recalibrate_bn
 from tightfit.train.rundir import TrainedRun

@@ -19,7 +19,7 @@ import torch
 from tightfit.data.dataset import Dataset, calibration_batches
 from tightfit.export.cut import PARITY_TOL, CutResult
 from tightfit.export.manifest import export_pick, state_dict_bytes
-from tightfit.export.onnx import export_onnx, max_parity_error
+from tightfit.model.onnx import export_onnx, max_parity_error
 from tightfit.model.space import Subnet
 from tightfit.ondevice.files import write_bytes, write_json
 from tightfit.train.finetune import FinetuneSettings, finetune, inherited_net

@@ -21,7 +21,7 @@ from torch import nn
 
 from tightfit.data.dataset import Dataset, eval_batches
 from tightfit.export.cut import CutResult
-from tightfit.export.onnx import ort_session, ort_top1
+from tightfit.model.onnx import ort_session, ort_top1
 from tightfit.model.arithmetic import describe_architecture
 from tightfit.model.space import SpaceSpec, Subnet
 from tightfit.ondevice.files import MANIFEST_FORMAT, MANIFEST_VERSION, write_bytes, write_json

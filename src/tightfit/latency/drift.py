@@ -18,7 +18,7 @@ from typing import Any, Optional, Sequence
 import numpy as np
 from tightfit.progress import bar
 
-from tightfit.export.onnx import onnx_bytes
+from tightfit.model.onnx import onnx_bytes
 from tightfit.latency.probe import single_thread
 from tightfit.latency.table import LatencyTable
 from tightfit.model.extract import extract_subnet

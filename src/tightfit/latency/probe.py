@@ -15,7 +15,7 @@ import torch
 from torch import nn
 
 from tightfit.errors import UserError
-from tightfit.export.onnx import onnx_bytes
+from tightfit.model.onnx import onnx_bytes
 from tightfit.latency.layers import LayerConfig, calibration_subnets, layer_configs, overhead_configs
 from tightfit.model.extract import extract_block, extract_classifier, extract_conv_bn, extract_subnet
 from tightfit.model.space import space_hash

@@ -1,4 +1,4 @@
-"""The model: search space, elastic layers, supernet, static extraction, BN recalibration.
+"""The model: search space, elastic layers, supernet, static extraction, ONNX export, BN recalibration.
 
 space.py and arithmetic.py are torch-free; this package root imports nothing.
 """

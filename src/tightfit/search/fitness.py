@@ -16,7 +16,7 @@ from torch import nn
 
 from tightfit.data.dataset import Dataset, calibration_batches, eval_batches
 from tightfit.errors import UserError
-from tightfit.export.onnx import onnx_bytes, ort_session, ort_top1
+from tightfit.model.onnx import onnx_bytes, ort_session, ort_top1
 from tightfit.model.arithmetic import architecture_size
 from tightfit.model.extract import extract_subnet
 from tightfit.model.recalibrate import accuracy, batch_norms, preserved_bn_stats, recalibrate_bn
@@ -142,7 +142,7 @@ class RunAccuracy:
     """``compute`` for CachedAccuracy on a trained run: recalibrate BN on training batches, then
     top-1 on the (optionally capped) validation split; time spent per phase is kept.
 
-    With backend "onnxruntime" the recalibrated subnet is extracted and exported (tightfit.export.onnx)
+    With backend "onnxruntime" the recalibrated subnet is extracted and exported (tightfit.model.onnx)
     and the validation pass runs in ONNX Runtime, which fuses conv + BatchNorm + activation:
     3-4x faster than eager torch here, same predictions (export parity <= 1e-4 is checked
     for every pick by tightfit.export.cut). Backend "torch" is tightfit.recalibrate.subnet_accuracy."""
