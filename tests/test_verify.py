@@ -225,9 +225,16 @@ def test_data_accuracy_matches_torch_reference(tmp_path, capsys):
     code, out, err = run_verify(capsys, folder, "--data", tmp_path / "data", "--out", tmp_path / "v.json")
     assert code == 0, err
     acc = json.loads((tmp_path / "v.json").read_text())["models"][0]["accuracy"]
-    assert acc["images"] == 24 and acc["skipped"] == 0
-    assert acc["top1"] == pytest.approx(expected, abs=1e-9)
-    assert acc["manifest_validation_top1"] == 61.0 and "61.00" in out
+    assert acc["images"] == 24 and acc["skipped"] == 0 and acc["correct"] == round(expected * 24 / 100)
+    assert acc["top1"] == pytest.approx(expected, abs=1e-4)
+    # Its interval: statsmodels' proportion_confint(method="wilson") of the same count (Wilson 1927).
+    from statsmodels.stats.proportion import proportion_confint
+    ref = proportion_confint(acc["correct"], 24, alpha=0.05, method="wilson")
+    assert acc["interval_95"] == pytest.approx([100 * ref[0], 100 * ref[1]], abs=1e-4)
+    # The manifest here has the fields written before counts were kept (top1 and images): still read,
+    # and printed with its interval.
+    low, high = (100 * v for v in proportion_confint(61, 100, alpha=0.05, method="wilson"))
+    assert acc["manifest_validation_top1"] == 61.0 and f"61.0 % ({low:.1f}–{high:.1f}, n=100)" in out
 
 
 def test_data_class_not_in_manifest_is_bad_input(tmp_path, model_bytes, capsys):

@@ -6,10 +6,10 @@ prepared exactly as the manifest's input section describes.
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 
+from tightfit.ondevice.accuracy import Accuracy, format_accuracy
 from tightfit.ondevice.exports import Export, VerifyError
 from tightfit.ondevice.timing import Protocol, make_session
 
@@ -51,7 +51,8 @@ def preprocess(path: Path, spec: dict) -> np.ndarray | None:
 
 
 def folder_accuracy(e: Export, folder: Path, batch: int = 64) -> dict:
-    """Top-1 accuracy (percent) of the ONNX model on a labelled folder, beside the manifest's claims."""
+    """Top-1 of the ONNX model on a labelled folder (the Accuracy record's fields), beside the manifest's
+    claims."""
     files = list_labelled(folder, list(e.manifest["output"]["classes"]))
     xs, ys, skipped = [], [], 0
     for f, label in files:
@@ -68,20 +69,22 @@ def folder_accuracy(e: Export, folder: Path, batch: int = 64) -> dict:
     x, preds = np.stack(xs), []
     for i in range(0, len(x), step):
         preds.append(session.run(None, {e.manifest["input"]["name"]: x[i:i + step]})[0].argmax(1))
-    correct = int((np.concatenate(preds) == np.asarray(ys)).sum())
+    hits = np.concatenate(preds) == np.asarray(ys)
     claims = e.manifest.get("accuracy") or {}
-    return {"folder": str(folder), "images": len(xs), "skipped": skipped, "top1": 100.0 * correct / len(xs),
+    return {"folder": str(folder), "skipped": skipped, **Accuracy.of(hits).to_dict(),
             "manifest_validation_top1": (claims.get("validation") or {}).get("top1"),
             "manifest_test_top1": (claims.get("test") or {}).get("top1")}
 
 
-def format_accuracy(rows: list[dict]) -> str:
-    def pct(v: Any) -> str:
-        return "-" if v is None else f"{v:.2f}"
-    lines = [f"{'model':<20} {'images':>7} {'skipped':>7} {'top-1 %':>8} {'val % (manifest)':>17} "
-             f"{'test % (manifest)':>18}"]
-    for r in rows:
-        a = r["accuracy"]
-        lines.append(f"{r['name'][:20]:<20} {a['images']:>7} {a['skipped']:>7} {a['top1']:>8.2f} "
-                     f"{pct(a['manifest_validation_top1']):>17} {pct(a['manifest_test_top1']):>18}")
+def accuracy_table(exports: list[Export], accuracy: list[dict]) -> str:
+    """Each model's top-1 on the folder beside the manifest's claims, each with its interval and count."""
+    head = ("model", "top-1 on --data", "skipped", "validation (manifest)", "test (manifest)")
+    rows = [head]
+    for e, a in zip(exports, accuracy):
+        claims = e.manifest.get("accuracy") or {}
+        rows.append((e.name[:20], format_accuracy(Accuracy.from_dict(a)), str(a["skipped"]),
+                     *(format_accuracy(Accuracy.from_dict(claims.get(s))) for s in ("validation", "test"))))
+    widths = [max(len(row[i]) for row in rows) for i in range(len(head))]
+    lines = ["top-1 accuracy with its 95 % interval (Wilson score) and image count"]
+    lines += ["  ".join(c.ljust(w) for c, w in zip(row, widths)).rstrip() for row in rows]
     return "\n".join(lines)

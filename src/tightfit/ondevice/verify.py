@@ -23,7 +23,7 @@ from tightfit.ondevice.arguments import module_parser
 from tightfit.ondevice.exports import Export, VerifyError, load_export
 from tightfit.ondevice.files import VERDICT_FORMAT, check_writable, write_json
 from tightfit.ondevice.hardware import describe_hardware
-from tightfit.ondevice.labelled import folder_accuracy, format_accuracy
+from tightfit.ondevice.labelled import accuracy_table, folder_accuracy
 from tightfit.ondevice.repeats import measure_repeated
 from tightfit.ondevice.runner import QUICK
 from tightfit.ondevice.timing import Protocol, fits_budget, stderr_progress
@@ -149,7 +149,7 @@ def run(args: argparse.Namespace) -> int:
         row["accuracy"] = acc
     print(format_table(rows))
     if accuracy:
-        print("\n" + format_accuracy(rows))
+        print("\n" + accuracy_table(exports, accuracy))
     verdict = {"format": VERDICT_FORMAT, "version": 1, "pass": all(r["pass"] is not False for r in rows),
                "quick": bool(args.quick), "hardware": hardware,
                "created": datetime.now(timezone.utc).isoformat(timespec="seconds"), "models": rows}
