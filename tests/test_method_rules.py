@@ -67,6 +67,51 @@ def test_kl_distillation_with_temperature_is_the_hand_computed_divergence():
     assert distill_loss(t, t, "kl", T).item() == pytest.approx(0.0, abs=1e-6)
 
 
+
+def _no_decay_parameters(model: torch.nn.Module) -> set[int]:
+    """Norm scales and shifts, every bias and the kernel-transform matrices, found by the module that
+    owns them (not by shape)."""
+    out = set()
+    for mod in model.modules():
+        if isinstance(mod, torch.nn.modules.batchnorm._BatchNorm):
+            out |= {id(mod.weight), id(mod.bias)}
+        if getattr(mod, "bias", None) is not None:
+            out.add(id(mod.bias))
+        if isinstance(getattr(mod, "transforms", None), torch.nn.ParameterDict):
+            out |= {id(t) for t in mod.transforms.values()}
+    return out
+
+
+@pytest.mark.parametrize("optimizer, momentum, shrink", [
+    ("sgd", 0.0, 1.0),   # w <- w - lr * wd * w
+    ("sgd", 0.9, 1.9),   # Nesterov, first step: buf = wd * w, step = wd * w + m * buf = (1 + m) * wd * w
+    ("adamw", 0.9, 1.0),  # decoupled: w <- w - lr * wd * w; Adam's own step is 0 / (sqrt(0) + eps) = 0
+])
+def test_weight_decay_shrinks_weights_by_lr_wd_w_and_spares_norm_bias_and_transforms(optimizer, momentum, shrink):
+    # Common practice: no decay on norm and bias parameters ("no bias decay", He et al. 2019, Bag of Tricks,
+    # Sec. 3.1, from memory); the kernel-transform matrices are spared too (this project's rule, sandwich.py).
+    # One step with zero gradient then moves nothing but the decay. The update arithmetic is written out from
+    # the algorithm boxes of torch.optim.SGD (weight decay, momentum, Nesterov) and torch.optim.AdamW
+    # (decoupled decay, Loshchilov & Hutter 2019) in the PyTorch documentation.
+    from tightfit.train.sandwich import make_optimizer
+    recipe = tiny_recipe(kernel_mode="transform", weight_decay=0.1, lr=0.1, momentum=momentum, optimizer=optimizer)
+    model = build_supernet(recipe, 5)
+    perturb(model, seed=2)
+    before = {n: p.detach().clone() for n, p in model.named_parameters()}
+    spared = _no_decay_parameters(model)
+    opt = make_optimizer(model, recipe.train)
+    for p in model.parameters():
+        p.grad = torch.zeros_like(p)  # a parameter without a gradient is skipped: every one must have one
+    opt.step()
+    lr, wd = recipe.train.lr, recipe.train.weight_decay
+    assert len(spared) > 0 and len(spared) < len(before)
+    for n, p in model.named_parameters():
+        if id(p) in spared:
+            assert torch.equal(p.detach(), before[n]), n
+        else:
+            torch.testing.assert_close(p.detach() - before[n], -shrink * lr * wd * before[n], rtol=1e-4, atol=1e-7,
+                                       msg=n)
+
 def test_sandwich_draws_depend_on_seed_and_step_and_differ_within_a_step():
     # Common practice for resumable training: the draw is a function of (seed, step) only.
     space = tiny_recipe().space
