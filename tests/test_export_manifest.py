@@ -11,6 +11,7 @@ import pytest
 import torch
 
 from tightfit.export.manifest import Accuracy, build_manifest, latency_section, write_export
+from tightfit.ondevice.accuracy import paired_comparison
 
 
 REQUIRED = {
@@ -46,9 +47,10 @@ def test_manifest_fields_and_sha256(tmp_path):
     lat = latency_section(measured, describe_hardware(), Protocol().to_dict(), 0.115)
     m = build_manifest(space=space, subnet=subnet, params=count_params(net), macs=count_macs(net, 3, 16),
                        onnx_data=data, channels=3, image_size=16, class_names=("a", "b", "c", "d"),
-                       mean=(0.5, 0.5, 0.5), std=(0.2, 0.2, 0.2), validation=Accuracy(81.234, 600, "validation"),
-                       test=Accuracy(80.5, 900, "test"), latency=lat, budget_ms=0.15, percentile=90.0,
-                       device="this-host", recipe_name=recipe.name, recipe_hash=recipe.hash())
+                       mean=(0.5, 0.5, 0.5), std=(0.2, 0.2, 0.2), validation=Accuracy(487, 600, "validation"),
+                       test=Accuracy(724, 900, "test"), latency=lat, budget_ms=0.15, percentile=90.0,
+                       device="this-host", recipe_name=recipe.name, recipe_hash=recipe.hash(),
+                       lead=paired_comparison(np.arange(600) < 487, np.arange(600) < 470, against="1:3/2:3"))
     folder = write_export(tmp_path / "exp", data, net, m)
     for section, keys in REQUIRED.items():
         where = m if not section else m[section]
@@ -61,6 +63,18 @@ def test_manifest_fields_and_sha256(tmp_path):
     assert written["architecture"]["params"] == sum(p.numel() for p in net.parameters())
     assert {k: written["budget"][k] for k in ("ms", "percentile", "device")} == {"ms": 0.15, "percentile": 90.0, "device": "this-host"}
     assert "p90" in written["budget"]["rule"]
+    # Each accuracy carries its count and 95 % interval: statsmodels' proportion_confint(method="wilson") of the
+    # same counts (Wilson 1927); the pick's lead over the runner-up (17 images only it gets right, none the other
+    # way) is McNemar's exact test, p = 2 / 2^17 (the binomial formula by hand).
+    from statsmodels.stats.proportion import proportion_confint
+    for split, correct, images in (("validation", 487, 600), ("test", 724, 900)):
+        got = written["accuracy"][split]
+        assert (got["correct"], got["images"], got["split"]) == (correct, images, split)
+        ref = proportion_confint(correct, images, alpha=0.05, method="wilson")
+        assert got["interval_95"] == pytest.approx([100 * ref[0], 100 * ref[1]], abs=1e-4)
+    lead = written["accuracy"]["lead"]
+    assert (lead["against"], lead["only_first_right"], lead["only_second_right"]) == ("1:3/2:3", 17, 0)
+    assert lead["p_value"] == pytest.approx(2 / 2 ** 17, abs=1e-6) and lead["beyond_noise"] is True
     assert [d for d in written["architecture"]["description"] if d["type"] == "inverted_residual"].__len__() == \
         sum(subnet.depths)
     state = torch.load(folder / "state_dict.pt", weights_only=True)

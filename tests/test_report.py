@@ -194,3 +194,38 @@ def test_a_verdict_at_the_run_root_fills_the_qa_column(tmp_path):
     data = load_run(run)
     assert data.qa[folder]["pass"] is False
     assert data.qa[str((run / "exports" / "pi4-2.4ms").resolve())]["pass"] is True
+
+
+def test_accuracies_carry_their_count_and_interval_on_the_page_and_in_inspect(tmp_path):
+    # Every printed accuracy has its image count and 95 % interval; the bounds are statsmodels'
+    # proportion_confint(method="wilson") of the same counts (Wilson 1927). A manifest written before counts
+    # were kept (top1 and images only) still gives them; a pick with no manifest shows its bare figure.
+    from statsmodels.stats.proportion import proportion_confint
+    from tightfit.report.data import RunData
+    from tightfit.report.inspect import search_lines, training_lines
+    from tightfit.report.page import _picks_table
+
+    def printed(correct: int, images: int) -> str:
+        low, high = (100 * v for v in proportion_confint(correct, images, alpha=0.05, method="wilson"))
+        return f"{100 * correct / images:.1f} % ({low:.1f}–{high:.1f}, n={images:,})"
+
+    root = tmp_path / "run"
+    picks = [{"device": "d", "budget_ms": 1.0, "key": k, "val_acc": 90.0, "test_acc": 89.0, "predicted_ms": 0.9,
+              "measured": {"budget_stat_ms": 0.95}, "fits": True, "export_dir": str(root / "exports" / k)}
+             for k in ("a", "b")]
+    (root / "search").mkdir(parents=True)
+    (root / "search" / "picks.json").write_text(json.dumps(picks))
+    (root / "exports" / "a").mkdir(parents=True)
+    manifest = {"accuracy": {"validation": {"top1": round(100 * 207 / 229, 4), "images": 229, "split": "validation"},
+                             "test": {"top1": 89.2593, "correct": 241, "images": 270, "split": "test"}}}
+    (root / "exports" / "a" / "manifest.json").write_text(json.dumps(manifest))
+    data = RunData(root, picks=picks, manifests={str((root / "exports" / "a").resolve()): manifest})
+    cells = [[c.split("</td>")[0] for c in r.split("<td>")[1:]] for r in _picks_table(data).split("<tr>")[2:]]
+    assert (cells[0][3], cells[0][4]) == (printed(207, 229), printed(241, 270))
+    assert cells[1][3].startswith("90.0 %") and "not recorded" in cells[1][3]
+    lines = search_lines(root, front=False)
+    assert printed(207, 229) in lines[0] and "90.0 % (image count not recorded)" in lines[1]
+    (root / "metrics.jsonl").write_text(json.dumps({"epoch": 2, "val_images": 600, "val_acc_largest": 100 * 521 / 600,
+                                                    "val_acc_smallest": 100 * 470 / 600}) + "\n")
+    line = training_lines(root, True, 2)[0]
+    assert f"largest {printed(521, 600)}, smallest {printed(470, 600)} validation" in line

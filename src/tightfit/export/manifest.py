@@ -11,33 +11,24 @@ from __future__ import annotations
 import hashlib
 import io
 import platform
-from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Optional
 
+import numpy as np
 import torch
 from torch import nn
 
 from tightfit.data.dataset import Dataset, eval_batches
 from tightfit.export.cut import CutResult
-from tightfit.model.onnx import ort_session, ort_top1
+from tightfit.model.onnx import ort_hits, ort_session
 from tightfit.model.arithmetic import describe_architecture
 from tightfit.model.space import SpaceSpec, Subnet
+from tightfit.ondevice.accuracy import Accuracy, PairedComparison  # accuracy records: count, interval, pairs
 from tightfit.ondevice.files import MANIFEST_FORMAT, MANIFEST_VERSION, write_bytes, write_json
 from tightfit.train.rundir import TrainedRun
 LATENCY_KEYS = ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "cv", "iqr_over_median", "repeat_figures_ms", "repeat_spread",
                 "states", "stable", "note")
-
-
-@dataclass(frozen=True)
-class Accuracy:
-    top1: float
-    images: int
-    split: str                     # "validation" or "test"
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"top1": round(self.top1, 4), "images": self.images, "split": self.split}
 
 
 def sha256_hex(data: bytes) -> str:
@@ -77,10 +68,12 @@ def build_manifest(*, space: SpaceSpec, subnet: Subnet, params: int, macs: int, 
                    channels: int, image_size: int, class_names: tuple[str, ...], mean: tuple[float, ...],
                    std: tuple[float, ...], validation: Accuracy, test: Accuracy, latency: dict[str, Any],
                    budget_ms: Optional[float], percentile: float, device: Optional[str], recipe_name: str,
-                   recipe_hash: str, finetune: Optional[dict[str, Any]] = None) -> dict[str, Any]:
+                   recipe_hash: str, finetune: Optional[dict[str, Any]] = None,
+                   lead: Optional[PairedComparison] = None) -> dict[str, Any]:
     """The manifest dict (see the project contract for the fields); budget.ms is None for a model cut
     by hand without a budget (verify then reports its figures and judges nothing); ``finetune`` is None
-    for inherited weights, else what the fine-tune did, cost and started from."""
+    for inherited weights, else what the fine-tune did, cost and started from; ``lead`` is the paired
+    comparison of the pick (first) with the runner-up (second) on the validation images, when one was made."""
     return {
         "format": MANIFEST_FORMAT, "version": MANIFEST_VERSION, "model_file": "model.onnx",
         "sha256": sha256_hex(onnx_data),
@@ -92,7 +85,8 @@ def build_manifest(*, space: SpaceSpec, subnet: Subnet, params: int, macs: int, 
                   "scale": "divide by 255, then (x-mean)/std", "mean": list(mean), "std": list(std),
                   "resize": f"shorter side to {image_size}, centre crop"},
         "output": {"name": "logits", "classes": list(class_names)},
-        "accuracy": {"validation": validation.to_dict(), "test": test.to_dict()},
+        "accuracy": {"validation": validation.to_dict(), "test": test.to_dict(),
+                     **({"lead": lead.to_dict()} if lead is not None else {})},
         "latency": latency,
         "budget": {"ms": None if budget_ms is None else float(budget_ms), "percentile": float(percentile),
                    "device": device, "rule": f"met when latency.budget_stat_ms, the p{percentile:g} of all pooled "
@@ -122,17 +116,23 @@ def write_export(export_dir: str | Path, onnx_data: bytes, net: nn.Module, manif
     return export_dir
 
 
-def shipped_accuracy(onnx_data: bytes, ds: Dataset, split: str, batch_size: int = 512) -> Accuracy:
-    """Top-1 of the exported file itself (ONNX Runtime) on a whole split: what the manifest
-    claims is what the deployer gets; 2-3x faster than the same pass in eager torch."""
+def shipped_hits(onnx_data: bytes, ds: Dataset, split: str, batch_size: int = 512) -> np.ndarray:
+    """Right/wrong per image of the exported file itself (ONNX Runtime) on a whole split ("val" or
+    "test"), in the split's order: what the manifest claims is what the deployer gets; 2-3x faster
+    than the same pass in eager torch."""
     x, y = getattr(ds, f"{split}_x"), getattr(ds, f"{split}_y")
-    top1, n = ort_top1(ort_session(onnx_data, torch.get_num_threads()), eval_batches(x, y, ds, batch_size))
-    return Accuracy(top1, n, "validation" if split == "val" else split)
+    return ort_hits(ort_session(onnx_data, torch.get_num_threads()), eval_batches(x, y, ds, batch_size))
+
+
+def shipped_accuracy(onnx_data: bytes, ds: Dataset, split: str, batch_size: int = 512) -> Accuracy:
+    """The exported file's accuracy record on a whole split, with its image count and interval."""
+    return Accuracy.of(shipped_hits(onnx_data, ds, split, batch_size), "validation" if split == "val" else split)
 
 
 def export_pick(run: TrainedRun, ds: Dataset, *, subnet: Subnet, cut: CutResult, net: nn.Module, export_dir: str | Path,
                 latency: dict[str, Any], budget_ms: Optional[float], percentile: float,
-                device: Optional[str], finetune: Optional[dict[str, Any]] = None) -> dict[str, Any]:
+                device: Optional[str], finetune: Optional[dict[str, Any]] = None,
+                lead: Optional[PairedComparison] = None) -> dict[str, Any]:
     """Score the exported file on the whole validation and test splits (for the manifest only:
     nothing is chosen on them here), then write the export folder.
     ``cut`` is the candidate's cut (its ONNX file)."""
@@ -143,6 +143,7 @@ def export_pick(run: TrainedRun, ds: Dataset, *, subnet: Subnet, cut: CutResult,
         channels=cfg.data.channels, image_size=cfg.data.image_size, class_names=run.class_names,
         mean=run.mean, std=run.std, validation=shipped_accuracy(data, ds, "val"),
         test=shipped_accuracy(data, ds, "test"), latency=latency, budget_ms=budget_ms,
-        percentile=percentile, device=device, recipe_name=cfg.name, recipe_hash=cfg.hash(), finetune=finetune)
+        percentile=percentile, device=device, recipe_name=cfg.name, recipe_hash=cfg.hash(), finetune=finetune,
+        lead=lead)
     write_export(export_dir, data, net, manifest)
     return manifest

@@ -50,14 +50,18 @@ def ort_session(data: bytes, threads: int = 0):
     return ort.InferenceSession(data, opts, providers=["CPUExecutionProvider"])
 
 
+def ort_hits(session, batches) -> np.ndarray:
+    """One right/wrong flag per image of an ONNX Runtime session over (x, y) torch batches, in order:
+    the figure of the file that ships, not of the torch module it came from, and what a paired
+    comparison of two files on the same images needs."""
+    hits = [session.run(None, {"image": x.numpy()})[0].argmax(1) == y.numpy() for x, y in batches]
+    return np.concatenate(hits) if hits else np.zeros(0, bool)
+
+
 def ort_top1(session, batches) -> tuple[float, int]:
-    """(top-1 %, images) of an ONNX Runtime session over (x, y) torch batches: the figure of the
-    file that ships, not of the torch module it came from."""
-    correct = total = 0
-    for x, y in batches:
-        correct += int((session.run(None, {"image": x.numpy()})[0].argmax(1) == y.numpy()).sum())
-        total += len(y)
-    return 100.0 * correct / max(total, 1), total
+    """(top-1 %, images) of an ONNX Runtime session over (x, y) torch batches."""
+    hits = ort_hits(session, batches)
+    return 100.0 * int(hits.sum()) / max(hits.size, 1), int(hits.size)
 
 
 def ort_outputs(data: bytes, x: np.ndarray) -> np.ndarray:

@@ -12,6 +12,7 @@ from pathlib import Path
 from typing import Any
 
 from tightfit.errors import UserError
+from tightfit.ondevice.accuracy import Accuracy, format_accuracy
 from tightfit.ondevice.files import read_jsonl
 from tightfit.recipe import load_recipe
 from tightfit.search.evolution import pareto_front
@@ -72,6 +73,21 @@ def export_folder(pick: dict, run_dir: Path) -> str:
     if given.is_absolute() or given.is_dir() or not given.name:
         return str(given.resolve())
     return str((run_dir / "exports" / given.name).resolve())
+
+
+def accuracy_text(record: Any, bare: Any = None) -> str:
+    """An accuracy record (a manifest's, a verdict's) in the one printed form; without a readable one,
+    the bare figure a log kept (no image count, so no interval), or '-'."""
+    acc = Accuracy.from_dict(record)
+    if acc is not None or not _number(bare):
+        return format_accuracy(acc)
+    return f"{bare:.1f} % (image count not recorded)"
+
+
+def manifest_claim(manifest: Any, split: str) -> Any:
+    """The manifest's accuracy record for a split ("validation", "test"); None when there is none."""
+    claims = manifest.get("accuracy") if isinstance(manifest, dict) else None
+    return claims.get(split) if isinstance(claims, dict) else None
 
 
 def _read_exports(data: RunData) -> None:

@@ -16,6 +16,7 @@ from tightfit.latency.probe import class_count
 from tightfit.model.arithmetic import architecture_size
 from tightfit.ondevice.files import read_jsonl
 from tightfit.recipe import Recipe, load_recipe
+from tightfit.report.data import _read_json, accuracy_text, export_folder, manifest_claim
 
 
 def space_lines(recipe: Recipe, num_classes: int) -> list[str]:
@@ -47,8 +48,9 @@ def training_lines(run_dir: Path, complete: bool, epochs: float) -> list[str]:
     line = f"training: {state}; {epochs:g} epochs in the recipe"
     if evals:
         e = evals[-1]
-        line += (f"; after epoch {e['epoch']:g}: largest {e['val_acc_largest']:.2f} %, smallest "
-                 f"{e['val_acc_smallest']:.2f} % validation")
+        acc = [f"{n} {accuracy_text({'top1': e[f'val_acc_{n}'], 'images': e.get('val_images')}, e[f'val_acc_{n}'])}"
+               for n in ("largest", "smallest") if f"val_acc_{n}" in e]
+        line += f"; after epoch {e['epoch']:g}: {', '.join(acc)} validation"
     return [line]
 
 
@@ -59,7 +61,9 @@ def search_lines(run_dir: Path, front: bool) -> list[str]:
         for p in json.loads(picks.read_text("utf-8")):
             got = p.get("measured") or {}
             meas = f"measured {got['budget_stat_ms']:.3f} ms" if got.get("budget_stat_ms") else "not measured here"
-            lines.append(f"pick {p['device']} {p['budget_ms']:g} ms: {p['key']}  val {p['val_acc']:.2f} %, {meas}, "
+            manifest = _read_json(Path(export_folder(p, run_dir)) / "manifest.json", [])
+            lines.append(f"pick {p['device']} {p['budget_ms']:g} ms: {p['key']}  validation "
+                         f"{accuracy_text(manifest_claim(manifest, 'validation'), p['val_acc'])}, {meas}, "
                          f"{'fits' if p['fits'] else 'DOES NOT FIT'}")
     for path in sorted((run_dir / "search").glob("front-*.json")) if front else []:
         rows = json.loads(path.read_text("utf-8"))

@@ -15,7 +15,7 @@ from typing import TYPE_CHECKING, Any
 
 from tightfit.errors import UserError
 from tightfit.ondevice.files import write_bytes, write_text
-from tightfit.report.data import RunData, _devices, _number, export_folder, load_run
+from tightfit.report.data import RunData, _devices, _number, accuracy_text, export_folder, load_run, manifest_claim
 from tightfit.report.plots import _repeat_figures, plot_accuracy_latency, plot_pick_latency, plot_training
 
 if TYPE_CHECKING:  # matplotlib is imported when plotting, so `tightfit --help` stays quick
@@ -51,16 +51,20 @@ def _fmt(v: Any, spec: str = ".2f") -> str:
 
 
 def _picks_table(data: RunData) -> str:
-    head = ["Device", "Budget ms", "Subnet key", "Val %", "Test %", "Predicted ms", "Measured ms", "Fits", "QA verify",
-            "Note"]
+    head = ["Device", "Budget ms", "Subnet key", "Validation (95 % interval, images)", "Test (95 % interval, images)",
+            "Predicted ms", "Measured ms", "Fits", "QA verify", "Note"]
     rows = []
     for p in data.picks:
         measured = (p.get("measured") or {}).get("budget_stat_ms")
-        qa = data.qa.get(export_folder(p, data.run_dir))
+        folder = export_folder(p, data.run_dir)
+        manifest, qa = data.manifests.get(folder), data.qa.get(folder)
         qa_text = "-" if not qa else f"{'PASS' if qa.get('pass') else 'MISS'} " \
                                      f"{_fmt((qa.get('measured') or {}).get('budget_stat_ms'), '.3g')} ms"
-        cells = [p.get("device"), _fmt(p.get("budget_ms"), "g"), p.get("key"), _fmt(p.get("val_acc")),
-                 _fmt(p.get("test_acc")), _fmt(p.get("predicted_ms"), ".3g"),
+        if qa and qa.get("accuracy"):  # verify --data: top-1 on QA's own labelled images
+            qa_text += f"; top-1 {accuracy_text(qa['accuracy'])}"
+        cells = [p.get("device"), _fmt(p.get("budget_ms"), "g"), p.get("key"),
+                 accuracy_text(manifest_claim(manifest, "validation"), p.get("val_acc")),
+                 accuracy_text(manifest_claim(manifest, "test"), p.get("test_acc")), _fmt(p.get("predicted_ms"), ".3g"),
                  f"{_fmt(measured, '.3g')} (p{p.get('percentile', 90):g})",
                  "unverified" if p.get("verified") is False else "yes" if p.get("fits") else "NO",
                  qa_text, p.get("note") or ""]

@@ -65,7 +65,7 @@ def _trim_log(path: Path, step: int) -> None:
 
 def _epoch_eval(model: Supernet, recipe: Recipe, ds: Dataset, epoch: int, step: int) -> dict:
     calib = calibration_batches(ds, recipe.train.batch_size, min(5, recipe.train.recalibration_batches), recipe.seed)
-    rec = {"step": step, "epoch": epoch}
+    rec = {"step": step, "epoch": epoch, "val_images": len(ds.val_y)}  # the count behind each accuracy
     pairs = (("largest", recipe.space.largest()), ("smallest", recipe.space.smallest()))
     for name, sub in pairs[:1] if recipe.space.size() == 1 else pairs:
         rec[f"val_acc_{name}"] = subnet_accuracy(model, sub, calib, eval_batches(ds.val_x, ds.val_y, ds, 512))
