@@ -187,7 +187,7 @@ def sample_epoch_cpu(recipe, steps: int = 30, skip: int = 3) -> dict:
     """CPU-seconds of one epoch of sandwich training, from a few real steps (first ``skip`` not counted)."""
     import torch
     from tightfit.data.dataset import load_dataset, steps_per_epoch, train_batches
-    from tightfit.model.supernet import build_supernet
+    from tightfit.recipe import build_supernet
     from tightfit.train.initialise import zero_init_residual
     from tightfit.train.sandwich import make_optimizer, step_subnets, train_step
     ds = load_dataset(recipe.data, recipe.seed)
@@ -219,7 +219,7 @@ def sample_finetune_cpu(recipe, steps: int = 15) -> dict:
     of tightfit.train.finetune on an untrained supernet (its setup and final recalibration included: a
     slight overestimate)."""
     from tightfit.data.dataset import calibration_batches, load_dataset
-    from tightfit.model.supernet import build_supernet
+    from tightfit.recipe import build_supernet
     from tightfit.train.finetune import FinetuneSettings, finetune, inherited_net
     from tightfit.train.rundir import TrainedRun
     import torch
@@ -387,7 +387,7 @@ def machinery(recipe, smoke: bool) -> dict:
     import torch
     import torch.nn.functional as F
     from tightfit.model.extract import extract_subnet
-    from tightfit.model.supernet import build_supernet
+    from tightfit.recipe import build_supernet
     torch.manual_seed(0)
     sn = build_supernet(recipe, 10).to(memory_format=torch.channels_last)
     x = torch.randn(recipe.train.batch_size, recipe.data.channels, recipe.data.image_size,

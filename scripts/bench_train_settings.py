@@ -9,7 +9,7 @@ many epochs. A variant may also set ``seed=N``: the training seed (initialisatio
 batch order), with the data split and subset still drawn from the recipe's seed, so two seeds
 of one setting show the noise level.
 
-    python scripts/bench_train_settings.py recipes/demo.toml --variant kernel_mode=transform
+    python scripts/bench_train_settings.py recipes/demo.toml --variant random_subnets=1
     python scripts/bench_train_settings.py recipes/fashion-mnist.toml --epochs 1 \\
         --variant lr=0.025 --variant distill=false --alone
     python scripts/bench_train_settings.py recipes/fashion-mnist.toml --epochs 2 --max-train-images 12800 \\

@@ -14,7 +14,7 @@ import torch
 from tightfit.data.dataset import load_dataset, steps_per_epoch, train_batches
 from tightfit.train.distributed import Ranks, backend_for, local_rows, pack, rank_device, ranks_from_env, unpack
 from tightfit.errors import Interrupted, UserError
-from tightfit.model.supernet import build_supernet
+from tightfit.recipe import build_supernet
 from tightfit.train.loop import train
 from tightfit.train.sandwich import lr_at, make_optimizer, sandwich, sandwich_backward
 

@@ -1,6 +1,7 @@
 """Extraction parity, gradient routing and BN recalibration over smallest, largest and random subnets,
 in a space with fixed widths and in one with elastic width (stem and every stage)."""
 import random
+from dataclasses import replace
 
 import pytest
 import torch
@@ -33,11 +34,11 @@ def test_wide_subnets_differ_in_width():
     assert any(w[0] != w[1] for w in widths) and any(w[1] != w[2] for w in widths)
 
 
-@pytest.mark.parametrize("kernel_mode", ["centre", "transform"])
+@pytest.mark.parametrize("smaller_kernels", ["centre", "mapped"])
 @pytest.mark.parametrize("name", list(SUBNETS))
-def test_static_net_equals_supernet(name, kernel_mode):
+def test_static_net_equals_supernet(name, smaller_kernels):
     # Product quality bar: max abs diff <= 1e-5 in fp32, eval mode.
-    net = Supernet(_space_of(name), 3, 5, kernel_mode=kernel_mode)
+    net = Supernet(replace(_space_of(name), smaller_kernels=smaller_kernels), 3, 5)
     perturb(net, seed=list(SUBNETS).index(name))  # fixed per subnet, the same in every process
     sub = SUBNETS[name]
     net.set_subnet(sub)
@@ -51,10 +52,10 @@ def test_static_net_equals_supernet(name, kernel_mode):
     assert count_params(static) < count_params(net) or name.endswith("largest")
 
 
-def test_kernel_transform_starts_as_centre_crop():
+def test_mapped_kernels_start_as_the_centre():
     # Cai et al. 2020 (Sec. 3.2): transformation matrices are initialised to identity.
-    a = Supernet(SPACE, 3, 5, kernel_mode="centre")
-    b = Supernet(SPACE, 3, 5, kernel_mode="transform")
+    a = Supernet(SPACE, 3, 5)
+    b = Supernet(replace(SPACE, smaller_kernels="mapped"), 3, 5)
     b.load_state_dict(a.state_dict(), strict=False)
     dw_a, dw_b = a.stages[2][0].dw, b.stages[2][0].dw
     for k in (3, 5, 7):
@@ -69,7 +70,7 @@ def test_gradients_reach_exactly_the_active_parameters(name):
     # autograd. Centre-crop kernels map every active weight element to one static element, so the
     # supernet's gradient must equal the static net's element for element and be zero elsewhere:
     # equal non-zero counts and equal L1 mass (inactive elements would add to both).
-    net = Supernet(_space_of(name), 3, 5, kernel_mode="centre")
+    net = Supernet(_space_of(name), 3, 5)  # smaller kernels: the centre
     perturb(net)
     sub = SUBNETS[name]
     net.set_subnet(sub)
@@ -89,8 +90,8 @@ def test_gradients_reach_exactly_the_active_parameters(name):
                 assert all(p.grad is None for p in block.parameters())
 
 
-def test_kernel_transform_gradients_only_for_kernels_on_the_path():
-    net = Supernet(SPACE, 3, 5, kernel_mode="transform")
+def test_kernel_map_gradients_only_for_kernels_on_the_path():
+    net = Supernet(replace(SPACE, smaller_kernels="mapped"), 3, 5)
     sub = SPACE.smallest()  # kernel 3 in the last stage: 7 -> 5 -> 3, both matrices used
     net.set_subnet(sub)
     net(torch.randn(2, 3, 16, 16)).sum().backward()

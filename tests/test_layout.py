@@ -84,6 +84,57 @@ def test_no_import_cycles():
     assert find_cycle(graph) is None, f"import cycle: {' -> '.join(find_cycle(graph))}"
 
 
+# The pipeline's floors, lowest first: a module imports from its own floor and the floors below it, never
+# from one above (DEVELOPERS.md, "Architecture"). The base holds the shared tools and the device side
+# (ondevice/ imports nothing of tightfit, see below). export/ sits below search/: a search ends by
+# exporting its picks through the same path `tightfit cut` takes, and export/ never needs a search.
+FLOORS = (
+    ("tightfit", "tightfit.errors", "tightfit.progress", "tightfit.budgets", "tightfit.ondevice"),
+    ("tightfit.model",),
+    ("tightfit.recipe",),
+    ("tightfit.data",),
+    ("tightfit.train",),
+    ("tightfit.latency",),
+    ("tightfit.export",),
+    ("tightfit.search",),
+    ("tightfit.report",),
+    ("tightfit.recipe_reference", "tightfit.demo", "tightfit.cli", "tightfit.__main__"),
+)
+
+
+def floor_of(module: str, floors=FLOORS) -> int:
+    """Index of the floor whose longest listed prefix names ``module`` (KeyError if none does)."""
+    best = max(((len(p), i) for i, names in enumerate(floors) for p in names
+                if module == p or module.startswith(p + ".")), default=None)
+    if best is None:
+        raise KeyError(f"{module} is on no floor: add it to FLOORS in tests/test_layout.py")
+    return best[1]
+
+
+def upward_imports(graph: dict[str, set[str]], floors=FLOORS) -> list[str]:
+    """Every import of a module on a higher floor, as 'importer -> imported'."""
+    return sorted(f"{m} -> {t}" for m, ts in graph.items() for t in ts if floor_of(t, floors) > floor_of(m, floors))
+
+
+def test_order_finder_finds_a_planted_upward_import(tmp_path):
+    # The check itself must be able to fail: model/ importing the recipe, lazily inside a function.
+    pkg = tmp_path / "tightfit"
+    (pkg / "model").mkdir(parents=True)
+    for f in ("__init__.py", "model/__init__.py", "model/space.py", "errors.py"):
+        (pkg / f).write_text("")
+    (pkg / "recipe.py").write_text("from tightfit.model.space import x\nfrom tightfit import errors\n")
+    (pkg / "model" / "net.py").write_text("def build():\n    from tightfit.recipe import Recipe\n")
+    assert upward_imports(import_graph(pkg)) == ["tightfit.model.net -> tightfit.recipe"]
+    (pkg / "model" / "net.py").write_text("def build():\n    from tightfit.model import space\n")
+    assert upward_imports(import_graph(pkg)) == []
+
+
+def test_imports_follow_the_pipeline_order():
+    graph = import_graph()
+    assert "tightfit.model.space" in graph["tightfit.recipe"]  # the graph is real
+    assert not upward_imports(graph), "imports against the pipeline order:\n" + "\n".join(upward_imports(graph))
+
+
 def test_ondevice_imports_nothing_of_tightfit_outside_itself():
     graph = import_graph()
     outside = {m: sorted(t for t in ts if not t.startswith("tightfit.ondevice")) for m, ts in graph.items()

@@ -4,6 +4,7 @@ Each test names its rule; scripts/check_mutations.py lists the plausible bugs th
 """
 from __future__ import annotations
 
+import dataclasses
 import random
 
 import numpy as np
@@ -14,7 +15,7 @@ import torch.nn.functional as F
 from helpers import perturb, tiny_recipe
 from tightfit.data.dataset import normalize
 from tightfit.model.elastic import ElasticBatchNorm, ElasticConv
-from tightfit.model.supernet import build_supernet
+from tightfit.recipe import build_supernet
 from tightfit.ondevice.timing import fits_budget
 from tightfit.search.choose import Tried, measure_and_choose
 from tightfit.search.evolution import Candidate
@@ -94,7 +95,8 @@ def test_weight_decay_shrinks_weights_by_lr_wd_w_and_spares_norm_bias_and_transf
     # the algorithm boxes of torch.optim.SGD (weight decay, momentum, Nesterov) and torch.optim.AdamW
     # (decoupled decay, Loshchilov & Hutter 2019) in the PyTorch documentation.
     from tightfit.train.sandwich import make_optimizer
-    recipe = tiny_recipe(kernel_mode="transform", weight_decay=0.1, lr=0.1, momentum=momentum, optimizer=optimizer)
+    recipe = tiny_recipe(weight_decay=0.1, lr=0.1, momentum=momentum, optimizer=optimizer)
+    recipe = dataclasses.replace(recipe, space=dataclasses.replace(recipe.space, smaller_kernels="mapped"))
     model = build_supernet(recipe, 5)
     perturb(model, seed=2)
     before = {n: p.detach().clone() for n, p in model.named_parameters()}

@@ -6,7 +6,7 @@ import pytest
 from hypothesis import given, settings, strategies as st
 
 from tightfit.errors import UserError
-from tightfit.recipe import load_recipe, parse_recipe, recipe_from_dict
+from tightfit.recipe import build_supernet, load_recipe, parse_recipe, recipe_from_dict
 from tightfit.model.supernet import Supernet
 from helpers import TINY
 
@@ -64,6 +64,14 @@ BAD = [
     ("train.distill_loss", "mse", "soft_ce"),
     ("train.distill_temperature", 0.0, "> 0"),
     ("train.random_candidates", 0, ">= 1"),
+    # checked by the spec itself (model/space.py), reported under the recipe's key
+    ("space.stage.1.kernels", [3, 3], "distinct"),
+    ("space.stem_channels", [0, 8], "> 0"),
+    ("space.dropout", 1.0, "[0, 1)"),
+    ("space.head_channels", -1, ">= 0"),
+    ("space.smaller_kernels", "transform", "centre"),
+    ("space.stem_activation", "gelu", "relu6"),
+    ("data.classes", 1, ">= 2"),
 ]
 
 
@@ -151,3 +159,24 @@ def test_the_recipe_reference_is_generated_from_the_dataclasses_and_documents_ev
         assert all(f"| `{f.name}` |" in text for f in fields(cls))
     assert all(f"| `{k}` |" in text and m for k, (_, m) in {**SPACE_KEYS, **STAGE_KEYS}.items())
     assert "| `random_subnets` | `2` |" in text and "| `shift` | `2` |" in text  # defaults come from the dataclass
+
+
+def test_kernel_mode_under_train_names_its_new_key_in_one_line(tmp_path):
+    # It moved to [space] as smaller_kernels (it adds parameters, so the model owns it): an older recipe,
+    # and a checkpoint's stored recipe, get one line naming the new key rather than a list of allowed keys.
+    doc = _with("train.kernel_mode", "transform")
+    with pytest.raises(UserError) as e:
+        parse_recipe(doc)
+    assert "\n" not in str(e.value) and "smaller_kernels" in str(e.value) and "[space]" in str(e.value)
+    stored = parse_recipe(TINY).to_dict()
+    stored["train"]["kernel_mode"] = "centre"
+    with pytest.raises(UserError, match="smaller_kernels") as e:
+        recipe_from_dict(stored)
+    assert "\n" not in str(e.value) and "train again" in str(e.value)
+
+
+def test_the_kernel_rule_reaches_the_model_from_the_space_table():
+    recipe = parse_recipe(_with("space.smaller_kernels", "mapped"))
+    assert recipe.space.smaller_kernels == "mapped" and parse_recipe(TINY).space.smaller_kernels == "centre"
+    assert recipe_from_dict(recipe.to_dict()) == recipe
+    assert any("transforms" in n for n, _ in build_supernet(recipe, 4).named_parameters())

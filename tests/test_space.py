@@ -1,4 +1,5 @@
-"""Search space: size, sampling, keys."""
+"""Search space: size, sampling, keys, the spec's own checks."""
+import dataclasses
 import itertools
 import random
 from collections import Counter
@@ -90,3 +91,47 @@ def test_key_round_trip(seed, wide):
 def test_keys_outside_the_space_are_refused(key):
     with pytest.raises(UserError):
         SPACE.parse_key(key)
+
+
+# Spec invariants hold for a space built in code too, not only for one parsed from a recipe: each bad value
+# raises ValueError naming the field. Sources of the rules: a block's stride is 1 or 2 (MobileNetV2,
+# Sandler et al. 2018, Table 2); a depthwise kernel is odd so that padding k // 2 keeps the size (common
+# practice); a stage has at least one block and a ratio above 0 (this project's rule, model/space.py);
+# narrower widths are channel prefixes of the widest, which sizes the weights (this project's rule, elastic.py).
+BAD_STAGES = [("stride", 3), ("kernels", (3, 4)), ("depths", (0, 1)), ("expansions", (0, 2)), ("out_channels", 0),
+              ("activation", "gelu"), ("widths", (8, 24)), ("kernels", (5, 3)), ("depths", ())]
+BAD_SPACES = [("stem_stride", 4), ("stem_channels", 0), ("head_channels", -1), ("dropout", 1.0), ("stages", ()),
+              ("stem_widths", (4, 16)), ("smaller_kernels", "transform")]
+
+
+@pytest.mark.parametrize("field,value", BAD_STAGES, ids=[f"{f}={v}" for f, v in BAD_STAGES])
+def test_a_stage_built_in_code_refuses_bad_values(field, value):
+    with pytest.raises(ValueError, match=field):
+        dataclasses.replace(SPACE.stages[2], **{field: value})
+
+
+@pytest.mark.parametrize("field,value", BAD_SPACES, ids=[f"{f}={v}" for f, v in BAD_SPACES])
+def test_a_space_built_in_code_refuses_bad_values(field, value):
+    with pytest.raises(ValueError, match=field):
+        dataclasses.replace(SPACE, **{field: value})
+
+
+def test_good_values_build():
+    # The counterpart: the same fields at legal values construct (the checks refuse only what they should).
+    dataclasses.replace(SPACE.stages[2], stride=1, kernels=(1, 3), widths=(8, 16), expansions=(0.5, 6))
+    dataclasses.replace(SPACE, stem_stride=2, head_channels=0, dropout=0.0, stem_widths=(4, 8), smaller_kernels="mapped")
+
+
+def test_mapped_smaller_kernels_add_one_square_map_per_smaller_size_and_keep_the_latency_key():
+    # Cai et al. 2020 (Sec. 3.2): one (k*k x k*k) matrix per smaller kernel size in each depthwise layer.
+    # By hand for the tiny space: stage 1 (kernels 3, 5; 2 blocks) 2 * 9**2, stage 2 (kernels 3, 5, 7;
+    # 3 blocks) 3 * (9**2 + 25**2), stage 0 (kernel 3 only) none: 2280 parameters in all.
+    from tightfit.model.space import space_hash
+    from tightfit.model.supernet import Supernet
+    mapped = dataclasses.replace(SPACE, smaller_kernels="mapped")
+
+    def params(space):
+        return sum(p.numel() for p in Supernet(space, 3, 5).parameters())
+    assert params(mapped) - params(SPACE) == 2 * 9 ** 2 + 3 * (9 ** 2 + 25 ** 2) == 2280
+    # The shapes, and so the latency, do not depend on it: a latency table serves both.
+    assert space_hash(mapped, 3, 16) == space_hash(SPACE, 3, 16)

@@ -40,7 +40,7 @@ def test_schedule_can_end_at_a_fraction_of_the_base_lr():
 def test_zero_init_residual_zeroes_bn3_gamma_of_exactly_the_skip_blocks():
     # Goyal et al. 2017 (Sec. 5.1): gamma = 0 in the last BN of each residual branch, and nowhere else.
     # Stage 0 here widens 8 -> 12 at stride 1: no skip, so it must keep gamma = 1.
-    from tightfit.model.supernet import build_supernet
+    from tightfit.recipe import build_supernet
     from tightfit.recipe import parse_recipe
     from tightfit.train.initialise import zero_init_residual
     doc = {**TINY, "space": {**TINY["space"], "stage": [{**TINY["space"]["stage"][0], "channels": 12},
@@ -96,7 +96,7 @@ def test_macs_target_draws_the_nearest_of_the_candidates():
 
 def test_largest_dropout_applies_to_the_largest_pass_only():
     # Yu et al. 2020: regularise the largest only; the other passes see no dropout at all.
-    from tightfit.model.supernet import build_supernet
+    from tightfit.recipe import build_supernet
     recipe = tiny_recipe(largest_dropout=0.5)
     space = recipe.space
     gen = torch.Generator().manual_seed(0)

@@ -10,14 +10,16 @@ import json
 import tomllib
 from dataclasses import asdict, dataclass, fields
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from tightfit.errors import UserError
-from tightfit.model.space import ACTIVATIONS, SpaceSpec, StageSpec
+from tightfit.model.space import ACTIVATIONS, SpaceSpec, SpecError, StageSpec
+
+if TYPE_CHECKING:
+    from tightfit.model.supernet import Supernet
 
 DATA_SOURCES = ("builtin", "folder", "fashion-mnist")
 OPTIMIZERS = ("sgd", "adamw")
-KERNEL_MODES = ("transform", "centre")
 DISTILL_LOSSES = ("soft_ce", "kl")
 
 
@@ -27,6 +29,8 @@ class DataConfig:
     path: str = ""                 # image folder root, or folder holding the Fashion-MNIST IDX files
     image_size: int = 32           # side of the square input in pixels (folders: shorter side resized, centre crop)
     channels: int = 3              # 1 (grey) or 3 (RGB)
+    classes: int = 0               # 0 = count them in the data; stated, `tightfit inspect` needs no data and
+                                   # training checks the data has this many
     samples: int = 12000           # builtin only: images generated in total
     val_fraction: float = 0.1      # carved from the training data
     test_fraction: float = 0.15    # builtin/folder only (Fashion-MNIST has its own test set)
@@ -47,7 +51,6 @@ class TrainConfig:
     label_smoothing: float = 0.1   # on hard-label losses: the largest's (every subnet's without distill)
     random_subnets: int = 2        # sandwich: largest + smallest + this many random subnets per step
     distill: bool = True           # in-place distillation from the largest subnet
-    kernel_mode: str = "centre"    # "centre" crop or learned "transform" (Cai et al. 2020)
     channels_last: bool = False    # NHWC memory format in training (faster on CPU here)
     recalibration_batches: int = 20    # training batches that re-estimate BN statistics per evaluated subnet
     checkpoint_every: int = 0      # steps; 0 = only at the end of every epoch
@@ -133,28 +136,16 @@ def _choices(st: dict, key: str, where: str, kind: type) -> tuple:
         if isinstance(x, bool) or not isinstance(x, (int, float)) or (kind is int and not isinstance(x, int)):
             raise _fail(where + key, v, f"every entry must be {'an integer' if kind is int else 'a number'}")
         out.append(int(x) if float(x).is_integer() else float(x))
-    if len(set(out)) != len(out):
-        raise _fail(where + key, v, "entries must be distinct")
-    return tuple(sorted(out))
-
-
-def _act(table: dict, key: str, where: str, default: str) -> str:
-    v = table.get(key, default)
-    if v not in ACTIVATIONS:
-        raise _fail(where + key, v, f"choose one of {', '.join(ACTIVATIONS)}")
-    return v
+    return tuple(sorted(out))  # duplicates are left for the spec to refuse
 
 
 def _widths(table: dict, key: str, where: str, default: int | None) -> tuple[int, tuple[int, ...]]:
-    """``channels = 40`` (fixed) or ``channels = [24, 32, 40]`` (elastic width: the choices, the
-    widest sizing the weights) → (widest, choices or ())."""
+    """``channels = 40`` (fixed) or ``[24, 32, 40]`` (elastic) → (widest, choices or ()); the spec checks values."""
     v = table.get(key, default)
     if isinstance(v, list):
         choices = _choices(table, key, where, int)
-        if min(choices) <= 0:
-            raise _fail(where + key, v, "every width must be an integer > 0")
         return max(choices), (choices if len(choices) > 1 else ())
-    if isinstance(v, bool) or not isinstance(v, int) or v <= 0:
+    if isinstance(v, bool) or not isinstance(v, int):
         raise _fail(where + key, v, "must be an integer > 0, or a list of allowed widths such as [16, 24, 32]")
     return v, ()
 
@@ -167,6 +158,9 @@ SPACE_KEYS = {
     "head_channels": ("0", "1x1 conv before pooling; 0 = none"),
     "head_activation": ('"relu6"', "activation after the head conv"),
     "dropout": ("0.0", "dropout before the classifier, in [0, 1)"),
+    "smaller_kernels": ('"centre"', "how a smaller depthwise kernel is taken from the largest one's weights: "
+                                    '"centre" (its centre) or "mapped" (its centre through one learned k*k x k*k map '
+                                    "per smaller size, shared by all channels; adds parameters; Cai et al. 2020)"),
     "stage": ("(required)", "one [[space.stage]] table per stage, input to output"),
 }
 STAGE_KEYS = {
@@ -179,6 +173,17 @@ STAGE_KEYS = {
     "activation": ('"relu6"', "activation in the stage's blocks: " + ", ".join(ACTIVATIONS)),
     "squeeze_excite": ("false", "squeeze-excite after the depthwise conv"),
 }
+# Spec fields whose recipe key has another name (the rest share theirs).
+_KEY_OF_FIELD = {"out_channels": "channels", "widths": "channels", "stem_widths": "stem_channels", "stages": "stage"}
+
+
+def _checked(build, where: str):
+    """Build a spec; its own ValueError (the spec's invariants) becomes the one-line error naming the recipe key."""
+    try:
+        return build()
+    except SpecError as e:
+        value = list(e.value) if isinstance(e.value, tuple) else e.value
+        raise _fail(where + _KEY_OF_FIELD.get(e.field, e.field), value, e.rule) from None
 
 
 def _stage(st: Any, i: int) -> StageSpec:
@@ -190,39 +195,24 @@ def _stage(st: Any, i: int) -> StageSpec:
         raise _fail(where + "channels", None, "must be an integer > 0, or a list of allowed widths")
     chs, widths = _widths(st, "channels", where, None)
     stride = _typed(st, "stride", where, int, 1)
-    if stride not in (1, 2):
-        raise _fail(where + "stride", stride, "must be 1 or 2")
-    depths = _choices(st, "depths", where, int)
-    if min(depths) < 1:
-        raise _fail(where + "depths", list(depths), "every depth must be >= 1")
-    exps = _choices(st, "expansions", where, float)
-    if min(exps) <= 0:
-        raise _fail(where + "expansions", list(exps), "every expansion ratio must be > 0")
+    depths, exps = _choices(st, "depths", where, int), _choices(st, "expansions", where, float)
     kernels = _choices(st, "kernels", where, int)
-    if any(k < 1 or k % 2 == 0 for k in kernels):
-        raise _fail(where + "kernels", list(kernels), "kernel sizes must be odd and >= 1 (e.g. 3, 5, 7)")
-    return StageSpec(chs, stride, depths, exps, kernels, _act(st, "activation", where, "relu6"),
-                     _typed(st, "squeeze_excite", where, bool, False), widths)
+    return _checked(lambda: StageSpec(chs, stride, depths, exps, kernels, _typed(st, "activation", where, str, "relu6"),
+                                      _typed(st, "squeeze_excite", where, bool, False), widths), where)
 
 
 def _space(sp: dict) -> SpaceSpec:
     _check_keys(sp, set(SPACE_KEYS), "space.")
     stem, stem_widths = _widths(sp, "stem_channels", "space.", 16)
-    stem_stride = _typed(sp, "stem_stride", "space.", int, 1)
-    if stem_stride not in (1, 2):
-        raise _fail("space.stem_stride", stem_stride, "must be 1 or 2")
-    head = _typed(sp, "head_channels", "space.", int, 0)
-    if head < 0:
-        raise _fail("space.head_channels", head, "must be >= 0 (0 means no head conv)")
-    dropout = _typed(sp, "dropout", "space.", float, 0.0)
-    if not 0 <= dropout < 1:
-        raise _fail("space.dropout", dropout, "must be in [0, 1)")
     stages = sp.get("stage")
     if not isinstance(stages, list) or not stages:
         raise UserError("recipe needs at least one [[space.stage]] table")
-    return SpaceSpec(stem, stem_stride, tuple(_stage(s, i) for i, s in enumerate(stages)), head,
-                     _act(sp, "stem_activation", "space.", "relu6"), _act(sp, "head_activation", "space.", "relu6"),
-                     dropout, stem_widths)
+    stages = tuple(_stage(s, i) for i, s in enumerate(stages))
+    return _checked(lambda: SpaceSpec(
+        stem, _typed(sp, "stem_stride", "space.", int, 1), stages, _typed(sp, "head_channels", "space.", int, 0),
+        _typed(sp, "stem_activation", "space.", str, "relu6"), _typed(sp, "head_activation", "space.", str, "relu6"),
+        _typed(sp, "dropout", "space.", float, 0.0), stem_widths,
+        _typed(sp, "smaller_kernels", "space.", str, "centre")), "space.")
 
 
 def parse_recipe(doc: dict, default_name: str = "recipe") -> Recipe:
@@ -232,27 +222,14 @@ def parse_recipe(doc: dict, default_name: str = "recipe") -> Recipe:
             raise UserError(f"recipe key '{sect}' must be a table ([{sect}])")
     if "space" not in doc:
         raise UserError("recipe has no [space] table: add [space] and at least one [[space.stage]]")
+    _refuse_moved_keys(doc, "recipe", "")
     name = _typed(doc, "name", "", str, default_name)
     seed = _typed(doc, "seed", "", int, 0)
-    data = _dataclass_from(doc.get("data", {}), DataConfig, "data.",
-                           positive=("image_size", "channels", "samples"))
-    if data.source not in DATA_SOURCES:
-        raise _fail("data.source", data.source, f"choose one of {', '.join(DATA_SOURCES)}")
-    if data.channels not in (1, 3):
-        raise _fail("data.channels", data.channels, "must be 1 (grey) or 3 (RGB)")
-    for key in ("val_fraction", "test_fraction"):
-        if not 0 <= getattr(data, key) < 0.9:
-            raise _fail("data." + key, getattr(data, key), "must be in [0, 0.9)")
-    if data.max_train_images < 0:
-        raise _fail("data.max_train_images", data.max_train_images, "must be >= 0 (0 means all)")
-    if data.shift < 0:
-        raise _fail("data.shift", data.shift, "must be >= 0")
+    data = _data(doc.get("data", {}))
     train = _dataclass_from(doc.get("train", {}), TrainConfig, "train.",
                             positive=("epochs", "batch_size", "lr", "recalibration_batches", "eval_batch_size"))
     if train.optimizer not in OPTIMIZERS:
         raise _fail("train.optimizer", train.optimizer, f"choose one of {', '.join(OPTIMIZERS)}")
-    if train.kernel_mode not in KERNEL_MODES:
-        raise _fail("train.kernel_mode", train.kernel_mode, f"choose one of {', '.join(KERNEL_MODES)}")
     for key in ("random_subnets", "checkpoint_every", "weight_decay", "warmup_epochs", "momentum"):
         if getattr(train, key) < 0:
             raise _fail("train." + key, getattr(train, key), "must be >= 0")
@@ -260,6 +237,30 @@ def parse_recipe(doc: dict, default_name: str = "recipe") -> Recipe:
         raise _fail("train.label_smoothing", train.label_smoothing, "must be in [0, 1)")
     _check_levers(train)
     return Recipe(name, seed, data, _space(doc["space"]), train)
+
+
+def _refuse_moved_keys(doc: dict, what: str, fix: str) -> None:
+    """train.kernel_mode moved to the space (it adds parameters): one line naming the new key."""
+    if isinstance(doc.get("train"), dict) and "kernel_mode" in doc["train"]:
+        raise UserError(f"{what} has 'train.kernel_mode', which moved to [space] as smaller_kernels "
+                        f'("centre" as before, "transform" is now "mapped"){fix}')
+
+
+def _data(table: dict) -> DataConfig:
+    data = _dataclass_from(table, DataConfig, "data.", positive=("image_size", "channels", "samples"))
+    if data.source not in DATA_SOURCES:
+        raise _fail("data.source", data.source, f"choose one of {', '.join(DATA_SOURCES)}")
+    if data.channels not in (1, 3):
+        raise _fail("data.channels", data.channels, "must be 1 (grey) or 3 (RGB)")
+    if data.classes < 0 or data.classes == 1:
+        raise _fail("data.classes", data.classes, "must be 0 (count them in the data) or >= 2")
+    for key in ("val_fraction", "test_fraction"):
+        if not 0 <= getattr(data, key) < 0.9:
+            raise _fail("data." + key, getattr(data, key), "must be in [0, 0.9)")
+    for key, rule in (("max_train_images", "must be >= 0 (0 means all)"), ("shift", "must be >= 0")):
+        if getattr(data, key) < 0:
+            raise _fail("data." + key, getattr(data, key), rule)
+    return data
 
 
 def _check_levers(train: TrainConfig) -> None:
@@ -292,9 +293,17 @@ def load_recipe(path: str | Path) -> Recipe:
 
 def recipe_from_dict(d: dict[str, Any]) -> Recipe:
     """Rebuild a Recipe from ``Recipe.to_dict()`` (as stored in checkpoints)."""
+    _refuse_moved_keys(d, "this checkpoint's recipe", ": an older tightfit wrote it; train again with this one, "
+                                                      "or use the tightfit that wrote it")
     sp = dict(d["space"])
     sp["stages"] = tuple(StageSpec(**{**s, "depths": tuple(s["depths"]), "expansions": tuple(s["expansions"]),
                                       "kernels": tuple(s["kernels"]), "widths": tuple(s.get("widths", ()))})
                          for s in sp["stages"])
     sp["stem_widths"] = tuple(sp.get("stem_widths", ()))
     return Recipe(d["name"], d["seed"], DataConfig(**d["data"]), SpaceSpec(**sp), TrainConfig(**d["train"]))
+
+
+def build_supernet(recipe: Recipe, num_classes: int) -> Supernet:
+    """The supernet a recipe describes: the one place a recipe becomes a network (torch loads only here)."""
+    from tightfit.model.supernet import Supernet
+    return Supernet(recipe.space, recipe.data.channels, num_classes)

@@ -63,6 +63,9 @@ def _raw(cfg: DataConfig, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray
 
 def load_dataset(cfg: DataConfig, seed: int) -> Dataset:
     x, y, tx, ty, names, skipped = _raw(cfg, seed)
+    if cfg.classes and cfg.classes != len(names):
+        raise UserError(f"recipe key 'data.classes' = {cfg.classes}, but the data has {len(names)} classes; "
+                        "correct it, or set it to 0 to count them in the data")
     rng = np.random.default_rng(seed + 1)
     if tx is None:
         keep, test = _carve(len(x), cfg.test_fraction, rng)

@@ -19,9 +19,9 @@ from tightfit.model.onnx import onnx_bytes
 from tightfit.latency.layers import LayerConfig, calibration_subnets, layer_configs, overhead_configs
 from tightfit.model.extract import extract_block, extract_classifier, extract_conv_bn, extract_subnet
 from tightfit.model.space import space_hash
-from tightfit.model.supernet import Supernet, build_supernet
+from tightfit.model.supernet import Supernet
 from tightfit.ondevice.files import BUNDLE_FORMAT, atomic_write, write_bytes, write_json
-from tightfit.recipe import Recipe, load_recipe
+from tightfit.recipe import Recipe, build_supernet, load_recipe
 from tightfit.train.checkpoint import CHECKPOINT_NAME
 from tightfit.train.rundir import load_trained
 

@@ -4,9 +4,9 @@ Width is elastic as channel prefixes: a block with k hidden channels uses the fi
 output channels of the expand conv, the first k depthwise filters and the first k input
 channels of the projection; a stage (or the stem) of width w uses the first w output
 channels of its convs, and the next layer the first w of its inputs. Kernel size is elastic in the depthwise
-conv: a small kernel is the centre of the largest one, optionally passed through the
-kernel transformation of Cai et al. 2020 (Once-for-All, Sec. 3.2): one small learned
-linear map per kernel size, shared by all channels and initialised to identity.
+conv: a small kernel is the centre of the largest one, or (``smaller_kernels = "mapped"``) that
+centre passed through one small learned linear map per kernel size, shared by all channels and
+initialised to identity (Cai et al. 2020, Sec. 3.2).
 """
 from __future__ import annotations
 
@@ -37,7 +37,7 @@ class ElasticConv(nn.Module):
 class ElasticDepthwise(nn.Module):
     """Depthwise conv whose channel count follows the input and whose kernel is chosen per call."""
 
-    def __init__(self, chs: int, kernels: tuple[int, ...], stride: int, kernel_mode: str = "centre"):
+    def __init__(self, chs: int, kernels: tuple[int, ...], stride: int, smaller_kernels: str = "centre"):
         super().__init__()
         self.kernels = tuple(sorted(kernels))
         self.max_kernel = self.kernels[-1]
@@ -45,7 +45,7 @@ class ElasticDepthwise(nn.Module):
         self.weight = nn.Parameter(torch.empty(chs, 1, self.max_kernel, self.max_kernel))
         nn.init.kaiming_normal_(self.weight, mode="fan_out")
         self.transforms = nn.ParameterDict()
-        if kernel_mode == "transform":
+        if smaller_kernels == "mapped":
             # One (k*k x k*k) matrix per smaller kernel, going down from the largest.
             for k in self.kernels[:-1]:
                 self.transforms[f"k{k}"] = nn.Parameter(torch.eye(k * k))

@@ -19,6 +19,34 @@ from typing import NamedTuple
 from tightfit.errors import UserError
 
 ACTIVATIONS = ("relu6", "hswish")
+# How a smaller depthwise kernel is taken from the largest one's weights: "centre", its centre as is;
+# "mapped", its centre through one learned (k*k x k*k) map per smaller size, shared by all channels
+# (Cai et al. 2020, Sec. 3.2). Only "mapped" adds parameters; neither changes a subnet's shapes.
+SMALLER_KERNELS = ("centre", "mapped")
+
+
+class SpecError(ValueError):
+    """A bad value in a space, whether built in code or from a recipe. ``field`` names the dataclass
+    field, so the recipe parser can name its own key in its one-line error."""
+
+    def __init__(self, field: str, value: object, rule: str):
+        super().__init__(f"{field} = {value!r} is invalid: {rule}")
+        self.field, self.value, self.rule = field, value, rule
+
+
+def _require(ok: bool, field: str, value: object, rule: str) -> None:
+    if not ok:
+        raise SpecError(field, value, rule)
+
+
+def _increasing(values: tuple) -> bool:
+    return len(values) > 0 and all(a < b for a, b in zip(values, values[1:]))
+
+
+def _check_widths(field: str, widths: tuple[int, ...], widest: int) -> None:
+    # Narrower widths are channel prefixes of weights sized for the widest (elastic.py).
+    _require(not widths or (_increasing(widths) and min(widths) > 0 and max(widths) == widest), field, widths,
+             "every width must be > 0, distinct, in increasing order, the widest sizing the weights")
 
 
 class BlockChoice(NamedTuple):
@@ -37,6 +65,19 @@ class StageSpec:
     activation: str = "relu6"
     squeeze_excite: bool = False     # squeeze-excite after the depthwise conv
     widths: tuple[int, ...] = ()     # allowed output channels, each a prefix of out_channels; () = out_channels only
+
+    def __post_init__(self) -> None:
+        _require(self.out_channels > 0, "out_channels", self.out_channels, "must be an integer > 0")
+        _require(self.stride in (1, 2), "stride", self.stride, "must be 1 or 2")
+        for name in ("depths", "expansions", "kernels"):  # middle() and largest() rely on the order
+            _require(_increasing(getattr(self, name)), name, getattr(self, name),
+                     "must be a non-empty list of distinct values in increasing order")
+        _require(self.depths[0] >= 1, "depths", self.depths, "every depth must be >= 1")
+        _require(self.expansions[0] > 0, "expansions", self.expansions, "every expansion ratio must be > 0")
+        _require(all(k >= 1 and k % 2 == 1 for k in self.kernels), "kernels", self.kernels,
+                 "kernel sizes must be odd and >= 1 (e.g. 3, 5, 7)")
+        _require(self.activation in ACTIVATIONS, "activation", self.activation, f"choose one of {', '.join(ACTIVATIONS)}")
+        _check_widths("widths", self.widths, self.out_channels)
 
     @property
     def width_choices(self) -> tuple[int, ...]:
@@ -58,6 +99,20 @@ class SpaceSpec:
     head_activation: str = "relu6"
     dropout: float = 0.0
     stem_widths: tuple[int, ...] = ()     # allowed stem output channels; () = stem_channels only
+    smaller_kernels: str = "centre"       # one of SMALLER_KERNELS
+
+    def __post_init__(self) -> None:
+        _require(self.stem_channels > 0, "stem_channels", self.stem_channels, "must be an integer > 0")
+        _require(self.stem_stride in (1, 2), "stem_stride", self.stem_stride, "must be 1 or 2")
+        _require(len(self.stages) > 0, "stages", self.stages, "a space needs at least one stage")
+        _require(self.head_channels >= 0, "head_channels", self.head_channels, "must be >= 0 (0 means no head conv)")
+        for name in ("stem_activation", "head_activation"):
+            _require(getattr(self, name) in ACTIVATIONS, name, getattr(self, name),
+                     f"choose one of {', '.join(ACTIVATIONS)}")
+        _require(0 <= self.dropout < 1, "dropout", self.dropout, "must be in [0, 1)")
+        _check_widths("stem_widths", self.stem_widths, self.stem_channels)
+        _require(self.smaller_kernels in SMALLER_KERNELS, "smaller_kernels", self.smaller_kernels,
+                 f"choose one of {', '.join(SMALLER_KERNELS)}")
 
     @property
     def stem_choices(self) -> tuple[int, ...]:
@@ -193,6 +248,8 @@ class Subnet:
 
 def space_hash(space: SpaceSpec, in_channels: int, image_size: int) -> str:
     """Identifies a search space together with its input shape: latency tables and probe
-    bundles carry it, so a table measured for another space is refused."""
-    blob = json.dumps({"space": asdict(space), "in_channels": in_channels, "image_size": image_size}, sort_keys=True)
+    bundles carry it, so a table measured for another space is refused. How smaller kernels are taken
+    changes weights, not shapes or time, so it is left out: one table serves both ways."""
+    shapes = {k: v for k, v in asdict(space).items() if k != "smaller_kernels"}
+    blob = json.dumps({"space": shapes, "in_channels": in_channels, "image_size": image_size}, sort_keys=True)
     return hashlib.sha256(blob.encode()).hexdigest()[:16]

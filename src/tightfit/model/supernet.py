@@ -15,7 +15,6 @@ from torch import nn
 from tightfit.model.arithmetic import hidden_channels
 from tightfit.model.elastic import ElasticBatchNorm, ElasticConv, ElasticDepthwise, ElasticSqueezeExcite
 from tightfit.model.space import SpaceSpec, StageSpec, Subnet
-from tightfit.recipe import Recipe
 
 
 def act_layer(name: str) -> Callable[[], nn.Module]:
@@ -43,7 +42,7 @@ class ElasticInvertedResidual(nn.Module):
     it narrows the block as a width multiplier would; the skip is used whenever the stride is
     1 and the active input and output widths agree (as in a fixed network of those widths)."""
 
-    def __init__(self, in_channels: int, out_channels: int, stride: int, stage: StageSpec, kernel_mode: str):
+    def __init__(self, in_channels: int, out_channels: int, stride: int, stage: StageSpec, smaller_kernels: str):
         super().__init__()
         self.in_channels, self.out_channels, self.stride = in_channels, out_channels, stride
         hidden_max = hidden_channels(in_channels, max(stage.expansions))
@@ -51,7 +50,7 @@ class ElasticInvertedResidual(nn.Module):
         if self.has_expand:
             self.expand = ElasticConv(in_channels, hidden_max)
             self.bn1 = ElasticBatchNorm(hidden_max)
-        self.dw = ElasticDepthwise(hidden_max, stage.kernels, stride, kernel_mode)
+        self.dw = ElasticDepthwise(hidden_max, stage.kernels, stride, smaller_kernels)
         self.bn2 = ElasticBatchNorm(hidden_max)
         self.act = act_layer(stage.activation)()
         self.se = ElasticSqueezeExcite(hidden_max) if stage.squeeze_excite else None
@@ -73,10 +72,9 @@ class ElasticInvertedResidual(nn.Module):
 
 
 class Supernet(nn.Module):
-    def __init__(self, space: SpaceSpec, in_channels: int, num_classes: int, kernel_mode: str = "centre"):
+    def __init__(self, space: SpaceSpec, in_channels: int, num_classes: int):
         super().__init__()
         self.space, self.in_channels, self.num_classes = space, in_channels, num_classes
-        self.kernel_mode = kernel_mode
         self.stem = ElasticConvBN(in_channels, space.stem_channels, 3, space.stem_stride, space.stem_activation)
         self.stages = nn.ModuleList()
         for i, st in enumerate(space.stages):
@@ -84,7 +82,7 @@ class Supernet(nn.Module):
             blocks = nn.ModuleList()
             for j in range(max(st.depths)):
                 blocks.append(ElasticInvertedResidual(chs, st.out_channels, st.stride if j == 0 else 1, st,
-                                                      kernel_mode))
+                                                      space.smaller_kernels))
                 chs = st.out_channels
             self.stages.append(blocks)
         last = space.stages[-1].out_channels
@@ -128,9 +126,3 @@ class Supernet(nn.Module):
                 x = block(x)
         x = self.pool(self.head(x)).flatten(1)  # (B, C): C follows the last stage's width without a head conv
         return F.linear(self.dropout(x), self.classifier.weight[:, :x.shape[1]], self.classifier.bias)
-
-
-def build_supernet(recipe: Recipe, num_classes: int) -> Supernet:
-    """The supernet a recipe describes (the one place a recipe becomes a network)."""
-    return Supernet(recipe.space, recipe.data.channels, num_classes,
-                    kernel_mode=recipe.train.kernel_mode)

@@ -20,9 +20,9 @@ from tightfit.train.distributed import (GradientSync, Ranks, barrier, broadcast_
 from tightfit.data.dataset import Dataset, calibration_batches, eval_batches, load_dataset, steps_per_epoch, train_batches
 from tightfit.errors import Interrupted, UserError
 from tightfit.model.recalibrate import subnet_accuracy
-from tightfit.model.supernet import Supernet, build_supernet
+from tightfit.model.supernet import Supernet
 from tightfit.ondevice.files import append_jsonl, read_jsonl, write_bytes, write_text
-from tightfit.recipe import Recipe
+from tightfit.recipe import Recipe, build_supernet
 from tightfit.train.rundir import checkpoint_path
 from tightfit.train.initialise import zero_init_residual
 from tightfit.train.sandwich import lr_at, macs_distance, make_optimizer, step_subnets, train_step

@@ -19,8 +19,8 @@ import torch
 
 from tightfit.train.checkpoint import CHECKPOINT_NAME, load_checkpoint
 from tightfit.errors import UserError
-from tightfit.recipe import Recipe, recipe_from_dict
-from tightfit.model.supernet import Supernet, build_supernet
+from tightfit.recipe import Recipe, build_supernet, recipe_from_dict
+from tightfit.model.supernet import Supernet
 
 
 @dataclass
