@@ -25,6 +25,8 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 RULES = "tests/test_method_rules.py"
+FINETUNE = "tests/test_finetune_rules.py"
+CONFIRM = "tests/test_confirm_rules.py"
 
 
 @dataclass(frozen=True)
@@ -179,6 +181,63 @@ MUTATIONS = (
     Mutation("report's fits cell inverted", "report/page.py",
              '"yes" if p.get("fits") else "NO"', '"NO" if p.get("fits") else "yes"',
              ("tests/test_report.py::test_picks_table_cells_follow_each_pick_and_verdict",)),
+    # the fine-tune of picks (train/finetune.py)
+    Mutation("fine-tune taught by the middle subnet", "train/finetune.py",
+             "inherited_net(run, run.recipe.space.largest(), calib)", "inherited_net(run, run.recipe.space.middle(), calib)",
+             (f"{FINETUNE}::test_the_first_step_distils_from_the_recalibrated_frozen_largest_at_the_recipes_temperature",)),
+    Mutation("fine-tune teacher left in training mode", "train/finetune.py",
+             "run.recipe.space.largest(), calib).eval()", "run.recipe.space.largest(), calib).train()",
+             (f"{FINETUNE}::test_the_first_step_distils_from_the_recalibrated_frozen_largest_at_the_recipes_temperature",)),
+    Mutation("fine-tune teacher's BatchNorm not recalibrated", "train/finetune.py",
+             "        recalibrate_bn(run.supernet, calib)\n        return extract_subnet(run.supernet, subnet)",
+             "        return extract_subnet(run.supernet, subnet)",
+             (f"{FINETUNE}::test_the_first_step_distils_from_the_recalibrated_frozen_largest_at_the_recipes_temperature",)),
+    Mutation("fine-tune on the labels instead of the teacher", "train/finetune.py",
+             "loss = distill_loss(net(x), target, cfg.distill_loss, cfg.distill_temperature)",
+             "loss = torch.nn.functional.cross_entropy(net(x), y)",
+             (f"{FINETUNE}::test_the_first_step_distils_from_the_recalibrated_frozen_largest_at_the_recipes_temperature",)),
+    Mutation("fine-tune ignores the distillation temperature", "train/finetune.py",
+             "target, cfg.distill_loss, cfg.distill_temperature)", "target, cfg.distill_loss)",
+             (f"{FINETUNE}::test_the_first_step_distils_from_the_recalibrated_frozen_largest_at_the_recipes_temperature",)),
+    Mutation("fine-tune ignores the distillation loss kind", "train/finetune.py",
+             "target, cfg.distill_loss, cfg.distill_temperature)", 'target, "soft_ce", cfg.distill_temperature)',
+             (f"{FINETUNE}::test_the_first_step_distils_from_the_recalibrated_frozen_largest_at_the_recipes_temperature",)),
+    Mutation("fine-tune without weight decay", "train/finetune.py",
+             "param_groups(net, cfg.weight_decay)", "param_groups(net, 0.0)",
+             (f"{FINETUNE}::test_the_optimizer_is_the_recipes_nesterov_sgd_without_decay_on_norm_and_bias",)),
+    Mutation("fine-tune decays norm and bias parameters", "train/finetune.py",
+             "param_groups(net, cfg.weight_decay)", '[{"params": list(net.parameters()), "weight_decay": cfg.weight_decay}]',
+             (f"{FINETUNE}::test_the_optimizer_is_the_recipes_nesterov_sgd_without_decay_on_norm_and_bias",)),
+    Mutation("fine-tune without Nesterov's look-ahead", "train/finetune.py",
+             "momentum=cfg.momentum,\n                          nesterov=cfg.momentum > 0)", "momentum=cfg.momentum)",
+             (f"{FINETUNE}::test_the_optimizer_is_the_recipes_nesterov_sgd_without_decay_on_norm_and_bias",)),
+    Mutation("fine-tune at a constant learning rate", "train/finetune.py",
+             'g["lr"] = cosine_lr(step, settings.steps, settings.lr)', 'g["lr"] = settings.lr',
+             (f"{FINETUNE}::test_the_learning_rate_falls_by_a_cosine_from_the_peak_to_zero_over_exactly_the_steps",)),
+    Mutation("fine-tune learning rate falls linearly", "train/finetune.py",
+             "return peak * 0.5 * (1 + math.cos(math.pi * step / max(1, steps)))", "return peak * (1 - step / max(1, steps))",
+             (f"{FINETUNE}::test_the_learning_rate_falls_by_a_cosine_from_the_peak_to_zero_over_exactly_the_steps",)),
+    Mutation("fine-tune schedule one step ahead", "train/finetune.py",
+             "cosine_lr(step, settings.steps, settings.lr)", "cosine_lr(step + 1, settings.steps, settings.lr)",
+             (f"{FINETUNE}::test_the_learning_rate_falls_by_a_cosine_from_the_peak_to_zero_over_exactly_the_steps",)),
+    Mutation("fine-tune takes one step too many", "train/finetune.py",
+             "if step == settings.steps:", "if step > settings.steps:",
+             (f"{FINETUNE}::test_the_learning_rate_falls_by_a_cosine_from_the_peak_to_zero_over_exactly_the_steps",)),
+    Mutation("fine-tune replays the supernet's batch order", "train/finetune.py",
+             "run.recipe.seed + SEED_OFFSET, epoch)", "run.recipe.seed, epoch)",
+             (f"{FINETUNE}::test_the_batches_are_the_recipes_in_an_order_of_their_own_reshuffled_each_epoch_and_reproducible",)),
+    Mutation("fine-tune repeats its first epoch's order", "train/finetune.py",
+             "        epoch += 1\n    recalibrate_bn(net, calib)", "    recalibrate_bn(net, calib)",
+             (f"{FINETUNE}::test_the_batches_are_the_recipes_in_an_order_of_their_own_reshuffled_each_epoch_and_reproducible",)),
+    Mutation("fine-tuned pick not recalibrated", "train/finetune.py",
+             "    recalibrate_bn(net, calib)\n    net.eval()", "    net.eval()",
+             (f"{FINETUNE}::test_after_the_steps_every_batchnorm_holds_the_exact_average_over_the_calibration_batches",)),
+    Mutation("fine-tuned pick handed back in training mode", "train/finetune.py",
+             "    net.eval()\n    return {", "    return {",
+             (f"{FINETUNE}::test_after_the_steps_every_batchnorm_holds_the_exact_average_over_the_calibration_batches",)),
+    Mutation("taking a pick out changes the supernet's statistics", "train/finetune.py",
+             "    with preserved_bn_stats(run.supernet):", "    if True:",
+             (f"{FINETUNE}::test_taking_out_a_pick_and_its_teacher_leaves_the_supernet_as_it_was",)),
 )
 
 
