@@ -1,4 +1,6 @@
 """The MobileNetV2 recipe's largest subnet is the published MobileNetV2 (Sandler et al. 2018, Table 2)."""
+import subprocess
+import sys
 from pathlib import Path
 
 import pytest
@@ -10,7 +12,8 @@ from tightfit.recipe import load_recipe
 from tightfit.model.supernet import Supernet
 
 torchvision = pytest.importorskip("torchvision")
-RECIPE = load_recipe(Path(__file__).parents[1] / "recipes" / "mobilenetv2-224.toml")
+RECIPE_PATH = Path(__file__).parents[1] / "recipes" / "mobilenetv2-224.toml"
+RECIPE = load_recipe(RECIPE_PATH)
 
 
 @pytest.fixture(scope="module")
@@ -61,3 +64,39 @@ def test_macs_match_flop_counter_and_paper(pair):
     assert macs == counter.get_total_flops() // 2
     # Sandler et al. 2018, Table 3: MobileNetV2 (1.0, 224) has ~300M multiply-adds.
     assert abs(macs - 300e6) / 300e6 <= 0.02
+
+
+def _largest_line(text: str) -> tuple[int, float]:
+    """(params, multiply-adds) from inspect's 'largest' line: '  largest  3,504,872 params  300.77 M MACs  KEY'."""
+    words = next(line for line in text.splitlines() if line.split()[:1] == ["largest"]).split()
+    return int(words[1].replace(",", "")), float(words[3]) * 1e6
+
+
+def _inspect_cli(*args: str, cwd: Path) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "tightfit", "inspect", str(RECIPE_PATH), *args], cwd=cwd,
+                          capture_output=True, text=True)
+
+
+def test_inspect_without_the_data_reports_the_published_size(tmp_path):
+    # Sandler et al. 2018, Table 4: MobileNetV2 (1.0, 224) has 3.4 M parameters and 300 M multiply-adds for
+    # ImageNet's 1,000 classes. The paper rounds its count; torchvision's MobileNetV2, built from the paper's
+    # Table 2, has 3,504,872 (torchvision model docs), 3 % above the rounded figure. data.path ('data/my-images')
+    # does not exist in tmp_path, so the figures come from the space and the class count alone.
+    done = _inspect_cli("--classes", "1000", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    assert "1000 classes" in done.stdout
+    params, macs = _largest_line(done.stdout)
+    assert params == 3_504_872 and abs(params - 3.4e6) / 3.4e6 <= 0.05
+    assert abs(macs - 300e6) / 300e6 <= 0.02
+
+
+def test_inspect_takes_the_class_count_from_the_recipe_and_says_how_to_give_it(tmp_path):
+    from tightfit.report.inspect import inspect
+    stated = tmp_path / "stated.toml"
+    stated.write_text(RECIPE_PATH.read_text("utf-8").replace("channels = 3\n", "channels = 3\nclasses = 1000\n", 1))
+    params, macs = _largest_line(inspect(str(stated), [], [], front=False))
+    assert params == 3_504_872 and abs(macs - 300e6) / 300e6 <= 0.02  # the same figures as with --classes
+    # Neither the count nor the data: exit 2 and one line that names both ways to give the count.
+    refused = _inspect_cli(cwd=tmp_path)
+    assert refused.returncode == 2 and refused.stderr.count("\n") == 1
+    assert "--classes" in refused.stderr and "data.classes" in refused.stderr

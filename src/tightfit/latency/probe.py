@@ -71,6 +71,8 @@ def layer_module(supernet: Supernet, cfg: LayerConfig) -> nn.Module:
 
 def class_count(recipe: Recipe) -> int:
     """Classes the recipe's data has, without loading it (only the classifier's width depends on it)."""
+    if recipe.data.classes:
+        return recipe.data.classes
     if recipe.data.source == "builtin":
         from tightfit.data.synthetic import CLASS_NAMES
         return len(CLASS_NAMES)

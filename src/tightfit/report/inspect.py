@@ -72,17 +72,35 @@ def search_lines(run_dir: Path, front: bool) -> list[str]:
     return lines
 
 
-def inspect(target: str, tables: list[str], subnets: list[str], front: bool) -> str:
-    """The text of `tightfit inspect TARGET`: TARGET is a recipe file or a run directory."""
+def recipe_classes(recipe: Recipe, given: int) -> int:
+    """A recipe file's class count: ``given`` (--classes), else data.classes, else counted in the data.
+    Sizes and latency ranges need only the space and this count, not the images."""
+    if given:
+        return given
+    try:
+        return class_count(recipe)
+    except UserError as e:
+        raise UserError(f"{e}; or, to inspect before the data exists, give the class count: --classes N "
+                        "(or data.classes in the recipe)") from None
+
+
+def inspect(target: str, tables: list[str], subnets: list[str], front: bool, classes: int = 0) -> str:
+    """The text of `tightfit inspect TARGET`: TARGET is a recipe file or a run directory; ``classes``
+    (0: unknown) stands in for a recipe's data that does not exist yet."""
+    if classes < 0 or classes == 1:
+        raise UserError(f"--classes {classes}: a classifier needs at least 2 classes")
     path = Path(target)
     run_dir: Optional[Path] = None
     if path.is_dir():
         from tightfit.train.rundir import load_trained
         run = load_trained(path)
+        if classes and classes != len(run.class_names):
+            raise UserError(f"--classes {classes}: the run in {path} has {len(run.class_names)} classes; "
+                            "--classes is for a recipe file whose data does not exist yet")
         recipe, classes, run_dir = run.recipe, len(run.class_names), path
     elif path.is_file():
         recipe = load_recipe(path)
-        classes = class_count(recipe)
+        classes = recipe_classes(recipe, classes)
     else:
         raise UserError(f"{target} is neither a recipe file nor a run directory")
     table_paths = [Path(t) for t in tables] or (sorted((run_dir / "latency").glob("*.json")) if run_dir else [])
