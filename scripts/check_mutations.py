@@ -320,8 +320,8 @@ def drifted(mutations: tuple[Mutation, ...]) -> list[str]:
     return out
 
 
-def run_one(m: Mutation | None, python: str, tests: tuple[str, ...] = ()) -> tuple[bool, float]:
-    """(failed, seconds): apply ``m`` (None: nothing) to a fresh copy and run its tests there."""
+def run_one(m: Mutation | None, python: str, tests: tuple[str, ...] = ()) -> tuple[bool, float, str]:
+    """(failed, seconds, pytest's output): apply ``m`` (None: nothing) to a fresh copy and run its tests there."""
     with tempfile.TemporaryDirectory(prefix="tightfit-mutant-") as tmp:
         for part in ("src", "tests"):
             shutil.copytree(ROOT / part, Path(tmp) / part, ignore=shutil.ignore_patterns("__pycache__", "*.egg-info"))
@@ -336,7 +336,7 @@ def run_one(m: Mutation | None, python: str, tests: tuple[str, ...] = ()) -> tup
         t0 = time.perf_counter()
         proc = subprocess.run([python, "-m", "pytest", "-q", "-x", "-p", "no:cacheprovider", *(tests or m.tests)],
                               cwd=tmp, env=env, capture_output=True, text=True)
-        return proc.returncode != 0, time.perf_counter() - t0
+        return proc.returncode != 0, time.perf_counter() - t0, proc.stdout
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -355,11 +355,14 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     t0, survivors = time.perf_counter(), []
     every_test = tuple(dict.fromkeys(t for m in chosen for t in m.tests))
-    if run_one(None, sys.executable, every_test)[0]:  # a kill only counts if the unmutated code passes
-        print("error: the named tests fail on the unmutated code; fix them first", file=sys.stderr)
+    failed, _, output = run_one(None, sys.executable, every_test)
+    if failed:  # a kill only counts if the unmutated code passes
+        lines = [line for line in output.splitlines() if line.startswith(("FAILED", "ERROR"))]
+        print("error: the named tests fail on the unmutated code; fix them first\n  " + "\n  ".join(lines),
+              file=sys.stderr)
         return 2
     for i, m in enumerate(chosen, 1):
-        killed, seconds = run_one(m, sys.executable)
+        killed, seconds, _ = run_one(m, sys.executable)
         print(f"[{i:>2}/{len(chosen)}] {'killed  ' if killed else 'SURVIVED'} {seconds:5.1f} s  {m.file}: {m.what}",
               flush=True)
         if not killed:
