@@ -17,7 +17,7 @@ from tightfit.data.dataset import normalize
 from tightfit.model.elastic import ElasticBatchNorm, ElasticConv
 from tightfit.recipe import build_supernet
 from tightfit.ondevice.timing import fits_budget
-from tightfit.search.choose import Tried, measure_and_choose
+from tightfit.search.choice_rule import Tried, measure_and_choose
 from tightfit.search.evolution import Candidate
 from tightfit.train.sandwich import sandwich, sandwich_backward
 

@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import pytest
 
-from tightfit.search.choose import Choice, Tried, measure_and_choose
+from tightfit.search.choice_rule import Choice, Tried, measure_and_choose
 from tightfit.search.evolution import Candidate
 
 def test_choice_ratio_is_the_median_over_measured_candidates():
@@ -76,7 +76,7 @@ def test_front_candidates_come_first_most_accurate_first():
 
 
 def test_each_candidate_keeps_its_own_measured_guard():
-    # This project's rule (search/choose.py keeps_guard; the guard from ondevice/repeats.py guard_from_spread):
+    # This project's rule (search/choice_rule.py keeps_guard; the guard from ondevice/repeats.py guard_from_spread):
     # without --guard, a candidate must fit budget x (1 - its own guard). A steady candidate may use 97 % of the
     # budget (a fixed 5 % rule would refuse it); a jumpy one at 93 % may not.
     cands = [Candidate("steady", None, 90.0, 0.9, 0), Candidate("jumpy", None, 89.5, 0.9, 0),
@@ -104,7 +104,7 @@ def test_a_miss_without_a_positive_prediction_still_falls_back():
 
 
 def test_a_candidate_within_budget_but_not_its_guard_is_measured_again_before_faster_ones():
-    # This project's rule (search/choose.py _remeasure_close): a wide guard from five repeats is mostly the
+    # This project's rule (search/choice_rule.py _remeasure_close): a wide guard from five repeats is mostly the
     # uncertainty of five draws; twice the repeats narrow it (guard_from_spread), so a candidate that fits the
     # budget is measured again before the choice drops to a much faster subnet. In the benchmark of 9300263
     # the 0.304 ms pick fell to 48 % of its budget this way.
@@ -134,3 +134,43 @@ def test_a_candidate_within_budget_but_not_its_guard_is_measured_again_before_fa
     seen.clear()
     measure_and_choose(cands, 1.0, measure, 1, lambda: cands[-1], lambda line: None, guard=0.12, remeasure=remeasure)
     assert "again close" not in seen
+
+
+def test_a_miss_at_the_top_rung_falls_to_the_next_rung_not_to_the_smallest():
+    """Injected figures: every candidate runs 1.06 x its prediction, so the evolution's best four,
+    crowded at 98-100 % of the limit, all miss budget x (1 - 5 %). Measuring only those four, then
+    rescaling, leaves nothing ranked that should fit and falls to the smallest subnet (the behaviour
+    before rungs). Rungs spaced down the band measure a candidate at 88 % predicted in the same batch;
+    it measures 93.3 % of the budget, keeps the 5 % guard and is the pick. (Hand arithmetic on the
+    figures below; the guard rule is search/choice_rule.py keeps_guard.)"""
+    spec = [("a", 90.0, 1.00), ("b", 89.9, 0.99), ("c", 89.8, 0.985), ("d", 89.7, 0.98), ("e", 88.0, 0.92),
+            ("f", 87.0, 0.88)]
+    ranked = [Candidate(k, None, acc, ms, 0) for k, acc, ms in spec]
+    smallest = Candidate("smallest", None, 70.0, 0.3, -1)
+    figures = {c.key: 1.06 * c.latency_ms for c in ranked + [smallest]}
+    choice = measure_and_choose(ranked, 1.0, _measured_as(figures), 4, lambda: smallest, lambda line: None, guard=0.05)
+    assert choice.pick.cand.key == "f" and choice.fits
+    assert "smallest" not in [t.cand.key for t in choice.tried]
+    assert [t.cand.key for t in choice.tried][:4] == ["a", "e", "f", "b"]    # rungs 1.0, 0.949, 0.901, then the next
+    assert figures["f"] / 1.0 == pytest.approx(0.9328)                        # budget use of the pick
+
+
+def test_rungs_span_the_band_from_the_most_preferred_down():
+    from tightfit.search.choice_rule import rungs
+    pool = [Candidate(k, None, acc, ms, 0) for k, acc, ms in
+            [("a", 90, 1.0), ("b", 89, 0.99), ("c", 88, 0.95), ("d", 87, 0.9), ("e", 86, 0.8)]]
+    # limits 1.0, 0.9**(1/3)=0.9655, 0.9**(2/3)=0.9322, 0.9 (geometric from the ceiling to the bottom);
+    # d already stands for 0.9322, so the 0.9 rung takes the next one under it, e
+    assert [c.key for c in rungs(pool, 4, 0.9)] == ["a", "c", "d", "e"]
+    assert [c.key for c in rungs(pool[:4], 4, 0.9)] == ["a", "c", "d", "b"]  # no rung left: the next in order
+    assert [c.key for c in rungs(pool, 1, 0.9)] == ["a"]
+    assert rungs([], 4, 0.9) == []
+
+
+def test_the_smallest_as_last_resort_names_the_fastest_measured_above_it():
+    ranked, smallest = [Candidate("a", None, 90.0, 0.9, 0), Candidate("b", None, 89.0, 0.85, 0)], \
+        Candidate("smallest", None, 70.0, 0.3, -1)
+    choice = measure_and_choose(ranked, 1.0, _measured_as({"a": 1.3, "b": 1.2, "smallest": 0.4}), 2,
+                                lambda: smallest, lambda line: None, guard=0.05)
+    assert choice.pick.cand.key == "smallest"
+    assert "b measured 1.2 ms (120 % of the budget)" in choice.note and "smallest" in choice.note

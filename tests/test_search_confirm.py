@@ -14,7 +14,8 @@ import numpy as np
 import pytest
 
 from tightfit.ondevice.timing import Protocol, summarize
-from tightfit.search.choose import PickRuns, Tried, _Measurer
+from tightfit.search.choice_rule import Tried
+from tightfit.search.choose import PickRuns, _Measurer
 from tightfit.search.confirm import confirm_picks, guard_floor_of
 from tightfit.search.evolution import Candidate
 from tightfit.search.settings import SearchSettings
@@ -33,7 +34,8 @@ def _setup(tmp_path, first_levels, settings=SearchSettings()):
     export = tmp_path / "exports" / "host-1ms"
     export.mkdir(parents=True)
     (export / "model.onnx").write_bytes(b"graph")
-    (export / "manifest.json").write_text(json.dumps({"latency": {"predicted_ms": 0.9, "budget_stat_ms": 0.0}}))
+    (export / "manifest.json").write_text(json.dumps({"latency": {"predicted_ms": 0.9, "budget_stat_ms": 0.0},
+                                                     "budget": {"ms": 1.0, "percentile": 90.0}}))
     runs = [repeat(level, rng) for level in first_levels]
     ctx = SimpleNamespace(settings=settings, say=lambda line: None, pick_runs={str(export): PickRuns(runs, 0.0)})
     table = SimpleNamespace(name="host", protocol=PROTOCOL.to_dict())
@@ -56,6 +58,7 @@ def test_a_pick_that_fit_in_a_fast_window_is_over_budget_when_the_machine_slowed
     manifest = json.loads((tmp_path / "exports" / "host-1ms" / "manifest.json").read_text())
     assert manifest["latency"]["p90_ms"] == pytest.approx(pooled)
     assert manifest["latency"]["predicted_ms"] == 0.9 and manifest["latency"]["confirmation"]["keeps_guard"] is False
+    assert manifest["budget"]["use"] == pytest.approx(pooled / 1.0, abs=1e-4) == out["budget_use"]  # p90 over the budget
     # the guard over both windows is far wider than the first window's own
     assert guard_floor_of(out) > 0.05 > combine_first_guard(first)
 

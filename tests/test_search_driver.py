@@ -213,7 +213,7 @@ def _drive(tmp_path, monkeypatch, use: float, ratio: float):
     calls = []
 
     def fake_search(space_, fitness, latency, budget_ms, device, settings, log_path=None, progress=False,
-                    limit_ms=None):
+                    limit_ms=None, usable_ms=None):
         calls.append((limit_ms, settings.evaluations))
         return driver.BudgetResult(device, budget_ms, [], 0.0, 0, 0)
 

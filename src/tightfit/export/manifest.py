@@ -64,6 +64,12 @@ def latency_section(summary: Optional[dict[str, Any]], hardware: dict[str, Any],
     return out
 
 
+def budget_use(latency: dict[str, Any], budget_ms: Optional[float], percentile: float) -> Optional[float]:
+    """The measured percentile over the budget: how much of its budget a pick uses (None unmeasured)."""
+    figure = latency.get(f"p{percentile:g}_ms")
+    return None if figure is None or not budget_ms else round(figure / budget_ms, 4)
+
+
 def build_manifest(*, space: SpaceSpec, subnet: Subnet, params: int, macs: int, onnx_data: bytes,
                    channels: int, image_size: int, class_names: tuple[str, ...], mean: tuple[float, ...],
                    std: tuple[float, ...], validation: Accuracy, test: Accuracy, latency: dict[str, Any],
@@ -89,7 +95,7 @@ def build_manifest(*, space: SpaceSpec, subnet: Subnet, params: int, macs: int, 
                      **({"lead": lead.to_dict()} if lead is not None else {})},
         "latency": latency,
         "budget": {"ms": None if budget_ms is None else float(budget_ms), "percentile": float(percentile),
-                   "device": device, "rule": f"met when latency.budget_stat_ms, the p{percentile:g} of all pooled "
+                   "device": device, "use": budget_use(latency, budget_ms, percentile), "rule": f"met when latency.budget_stat_ms, the p{percentile:g} of all pooled "
                                              "timed runs, is at most ms"},
         "finetune": finetune,
         "software": software_versions(),

@@ -18,7 +18,7 @@ from typing import Any, Collection, Optional, Sequence
 
 import numpy as np
 
-from tightfit.ondevice.timing import Progress, Protocol, measure_interleaved, summarize
+from tightfit.ondevice.timing import Progress, Protocol, measure_interleaved, stderr_progress, summarize
 from tightfit.ondevice.worker import run_in_fresh_process
 
 MIN_GUARD = 0.01      # below the timer's and the session's own run-to-run noise on a quiet CPU
@@ -51,8 +51,12 @@ def repeat_summaries(paths: list[str], protocol: Protocol, chunk: int = 10,
     if protocol.repeats <= 1:
         runs = [measure_interleaved(todo, protocol, chunk, abs_layers, progress)]
     else:
-        runs = [run_in_fresh_process(todo, protocol, chunk, abs_layers, f"repeat {i + 1}/{protocol.repeats}")
-                for i in range(protocol.repeats)]
+        # off a terminal the fresh processes stay quiet: one line per batch (or every few seconds) here
+        report = progress or stderr_progress(f"measuring {len(todo)} model(s)", every_s=5.0)
+        runs = []
+        for i in range(protocol.repeats):
+            runs.append(run_in_fresh_process(todo, protocol, chunk, abs_layers, f"repeat {i + 1}/{protocol.repeats}"))
+            report("fresh-process repeats", i + 1, protocol.repeats)
     return {p: [r[a] for r in runs] for p, a in absolute.items()}
 
 

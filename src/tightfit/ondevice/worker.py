@@ -55,7 +55,8 @@ def main(argv: list[str] | None = None) -> int:
         job = json.loads(Path(job_path).read_text("utf-8"))
         label = job.get("label", "measure")
         results = measure_interleaved(job["paths"], Protocol.from_dict(job["protocol"]),
-                                      int(job["chunk"]), set(job["layers"]), stderr_progress(label))
+                                      int(job["chunk"]), set(job["layers"]),
+                                      stderr_progress(label) if sys.stderr.isatty() else None)
     except Exception as exc:  # reported to the parent as one line, which re-raises it
         write_json(result_path, {"error": f"{type(exc).__name__}: {exc}".replace("\n", " ")})
         return 1

@@ -11,14 +11,12 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Callable, Optional
 
-import numpy as np
 
 from tightfit.data.dataset import Dataset
-from tightfit.export.cut import CutResult, cut_one
+from tightfit.export.cut import cut_one
 from tightfit.export.finetuned import finetune_export
 from tightfit.export.manifest import export_pick, latency_section
 from tightfit.latency.table import LatencyTable
-from tightfit.model.extract import StaticNet
 from tightfit.ondevice.files import device_name
 from tightfit.ondevice.hardware import describe_hardware
 from tightfit.ondevice.repeats import combine_repeats, repeat_summaries
@@ -26,6 +24,7 @@ from tightfit.ondevice.timing import Protocol
 from tightfit.budgets import budget_label
 from tightfit.progress import bar as progress_bar
 from tightfit.search.cache import CachedAccuracy, CachedLatency
+from tightfit.search.choice_rule import Tried, guard_of, guard_share, measure_and_choose
 from tightfit.search.evolution import Candidate
 from tightfit.search.fitness import RunAccuracy
 from tightfit.search.settings import SearchSettings
@@ -62,132 +61,6 @@ def verification_protocol(table_protocol: dict[str, Any]) -> Protocol:
     p, full = Protocol.from_dict(table_protocol), Protocol()
     return replace(p, repeats=max(2, p.repeats), timed_seconds=max(p.timed_seconds, full.timed_seconds),
                    timed_runs=max(p.timed_runs, full.timed_runs))
-
-
-@dataclass
-class Tried:
-    cand: Candidate
-    cut: Optional[CutResult]
-    net: Optional[StaticNet]
-    measured: Optional[dict[str, Any]] = None
-    remeasured: bool = False  # measured a second time, its repeats pooled with the first ones
-
-
-@dataclass
-class Choice:
-    pick: Tried
-    fits: bool
-    note: str
-    tried: list[Tried]
-
-    def ratio(self) -> Optional[float]:
-        return measured_ratio(self.tried)
-
-
-Measure = Callable[[list[Candidate], int], list[Tried]]
-"""(candidates, how many were tried before) -> the candidates cut and measured (``Tried.measured`` set)."""
-Remeasure = Callable[[list[Tried]], None]
-"""Measure these again and pool the new repeats with the old (``Tried.measured`` replaced)."""
-
-
-def measured_ratio(tried: list[Tried]) -> Optional[float]:
-    """Median measured/predicted over every candidate measured: how far off the predictor is now."""
-    r = [t.measured["budget_stat_ms"] / t.cand.latency_ms for t in tried if t.measured and t.cand.latency_ms > 0]
-    return float(np.median(r)) if r else None
-
-
-def _most_accurate(tried: list[Tried]) -> Tried:
-    return max(tried, key=lambda t: (t.cand.fitness, -t.measured["budget_stat_ms"]))
-
-
-DEFAULT_GUARD = 0.05  # when a candidate's spread is unknown (one repeat) and no --guard is given
-
-
-def guard_share(measured: dict[str, Any], fixed: Optional[float]) -> float:
-    """Share of the budget a measured figure must leave free: ``fixed`` (--guard) when given, else the
-    figure's own guard from the spread of its repeats (ondevice/repeats.py guard_from_spread)."""
-    if fixed is not None:
-        return fixed
-    own = measured.get("guard")
-    return DEFAULT_GUARD if own is None else float(own)
-
-
-def guard_of(t: Tried, fixed: Optional[float]) -> float:
-    return guard_share(t.measured, fixed)
-
-
-def keeps_guard(t: Tried, budget_ms: float, fixed: Optional[float]) -> bool:
-    return t.measured["budget_stat_ms"] <= budget_ms * (1.0 - guard_of(t, fixed))
-
-
-def measure_and_choose(ranked: list[Candidate], budget_ms: float, measure: Measure, top: int,
-                       fallback: Callable[[], Candidate], say: Callable[[str], None],
-                       guard: Optional[float] = None, rounds: int = 3,
-                       remeasure: Optional[Remeasure] = None) -> Choice:
-    """Measure the first ``top`` candidates (front first) interleaved; the most accurate whose measured
-    percentile fits within budget x (1 - its guard) wins, so that QA's later measurement still fits
-    (guard: fixed, or None for each candidate's own from its measured spread). If none does, rescale
-    predictions by measured/predicted and try the most accurate of those that should then fit (the
-    smallest subnet last); if still none, the most accurate that fits the budget itself. With
-    ``remeasure``, candidates that fit the budget but not their guard are measured once more before
-    faster ones are tried: twice the repeats narrow a guard that the spread of a few made wide."""
-    tried: list[Tried] = []
-    ratio: Optional[float] = None
-    for attempt in range(rounds):
-        done = {t.cand.key for t in tried}
-        expected = budget_ms * (1.0 - _expected_guard(tried, guard))
-        pool = [c for c in ranked if c.key not in done and (ratio is None or c.latency_ms * ratio <= expected)]
-        if not pool:
-            last = fallback()
-            pool = [] if last.key in done else [last]
-        if not pool:
-            break
-        tried += measure(pool[:top], len(tried))
-        fitting = [t for t in tried if keeps_guard(t, budget_ms, guard)]
-        if not fitting and remeasure is not None:
-            fitting = _remeasure_close(tried, budget_ms, remeasure, top, guard, say)
-        if fitting:
-            note = "" if attempt == 0 else "the most accurate candidates measured over budget: fell back to faster ones"
-            return Choice(_most_accurate(fitting), True, note, tried)
-        ratio = measured_ratio(tried)
-        vs = "" if ratio is None else f"; measured = {ratio:.2f} x predicted"  # None: no positive prediction
-        say(f"  none of {len(tried)} measured candidates fits the budget less its guard "
-            f"({_guards_text(tried, guard)}{vs}): trying faster ones")
-    within = [t for t in tried if t.measured["budget_stat_ms"] <= budget_ms]
-    if within:
-        return Choice(_most_accurate(within), True, "no candidate kept its guard; this one fits the budget", tried)
-    return Choice(min(tried, key=lambda t: t.measured["budget_stat_ms"]), False,
-                  "no candidate measured within the budget: this is the fastest one tried", tried)
-
-
-def _remeasure_close(tried: list[Tried], budget_ms: float, remeasure: Remeasure, top: int,
-                     guard: Optional[float], say: Callable[[str], None]) -> list[Tried]:
-    """Measure again the most accurate candidates that fit the budget but not their own guard; return
-    those that keep it now. Only for guards from the spread (a fixed --guard does not narrow)."""
-    if guard is not None:
-        return []
-    close = [t for t in tried if not t.remeasured and t.measured["budget_stat_ms"] <= budget_ms]
-    close = sorted(close, key=lambda t: (-t.cand.fitness, t.measured["budget_stat_ms"]))[:top]
-    if not close:
-        return []
-    say(f"  {len(close)} candidate(s) fit the budget but not their guard ({_guards_text(close, None)}): "
-        "measuring them again, pooled with the first repeats")
-    remeasure(close)
-    return [t for t in tried if keeps_guard(t, budget_ms, guard)]
-
-
-def _expected_guard(tried: list[Tried], fixed: Optional[float]) -> float:
-    """The guard an unmeasured candidate will likely need: --guard, else the median of those measured."""
-    if fixed is not None:
-        return fixed
-    return float(np.median([guard_of(t, None) for t in tried])) if tried else DEFAULT_GUARD
-
-
-def _guards_text(tried: list[Tried], fixed: Optional[float]) -> str:
-    if fixed is not None:
-        return f"--guard {100 * fixed:g} %"
-    g = [100 * guard_of(t, None) for t in tried]
-    return f"guards {min(g):.1f}-{max(g):.1f} % from their measured spread"
 
 
 class _Measurer:
@@ -272,6 +145,7 @@ def choose_and_export(ctx: SearchContext, table: LatencyTable, ranked: list[Cand
             "export_dir": str(export_dir), "fits": fits, "verified": pick.measured is not None, "note": note,
             "guard": guard,
             "measured_over_predicted": None if ratio is None else round(ratio, 4),
+            "budget_use": None if pick.measured is None else round(pick.measured["budget_stat_ms"] / budget_ms, 4),
             "test_acc": manifest["accuracy"]["test"]["top1"]}
 
 

@@ -14,13 +14,14 @@ import time
 from pathlib import Path
 from typing import Any, Callable, Optional
 
-from tightfit.export.manifest import latency_section
+from tightfit.export.manifest import budget_use, latency_section
 from tightfit.latency.table import LatencyTable
 from tightfit.ondevice.files import write_json
 from tightfit.ondevice.hardware import describe_hardware
 from tightfit.ondevice.repeats import combine_repeats, repeat_summaries
 from tightfit.ondevice.timing import Protocol
-from tightfit.search.choose import SearchContext, guard_rule, guard_share, verification_protocol
+from tightfit.search.choice_rule import guard_share
+from tightfit.search.choose import SearchContext, guard_rule, verification_protocol
 
 MeasureAgain = Callable[[list[str], Protocol], dict[str, list[dict[str, Any]]]]
 """(model paths, protocol) -> each path's new repeat summaries (ondevice.repeats.repeat_summaries)."""
@@ -63,6 +64,7 @@ def _pooled_row(ctx: SearchContext, row: dict[str, Any], later: list[dict[str, A
     _rewrite_latency(Path(row["export_dir"]), pooled, protocol, note, guard, record)
     fits = figure <= budget
     return {**row, "measured": pooled, "fits": fits, "guard": guard, "confirmed": record,
+            "budget_use": round(figure / budget, 4),
             "note": "; ".join(filter(None, [row.get("note"), None if fits else "over its budget when measured again"]))}
 
 
@@ -73,6 +75,7 @@ def _rewrite_latency(export_dir: Path, pooled: dict[str, Any], protocol: Protoco
     old = manifest["latency"]
     section = latency_section(pooled, describe_hardware(), protocol.to_dict(), old.get("predicted_ms"), note, guard)
     manifest["latency"] = {**section, "confirmation": record}
+    manifest["budget"]["use"] = budget_use(section, manifest["budget"]["ms"], manifest["budget"]["percentile"])
     write_json(path, manifest)
 
 

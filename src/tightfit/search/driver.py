@@ -28,7 +28,8 @@ from tightfit.budgets import budget_label, parse_budget
 from tightfit.progress import bar
 from tightfit.search.cache import AccuracyCache, CachedAccuracy, CachedLatency
 from tightfit.ondevice.hardware import same_host
-from tightfit.search.choose import DEFAULT_GUARD, SearchContext, choose_and_export, finetune_pick
+from tightfit.search.choice_rule import DEFAULT_GUARD
+from tightfit.search.choose import SearchContext, choose_and_export, finetune_pick
 from tightfit.search.confirm import confirm_picks, guard_floor_of
 from tightfit.search.evolution import Candidate, fastest_check, front_first, pareto_front, regularized_evolution
 from tightfit.search.fitness import RunAccuracy
@@ -61,9 +62,11 @@ def search_slack(settings: SearchSettings, predictor: LatencyPredictor, verifiab
 
 def search_budget(space: SpaceSpec, fitness: CachedAccuracy, latency: CachedLatency, budget_ms: float,
                   device: str, settings: SearchSettings, log_path: Optional[Path] = None,
-                  progress: bool = False, limit_ms: Optional[float] = None) -> BudgetResult:
-    """Evolution under predicted latency <= limit_ms (default: the budget); every evaluated
-    candidate is appended to ``log_path``."""
+                  progress: bool = False, limit_ms: Optional[float] = None,
+                  usable_ms: Optional[float] = None) -> BudgetResult:
+    """Evolution under predicted latency <= limit_ms (default: the budget), its preferred band under
+    ``usable_ms`` (the budget less its expected guard; default: the limit); every evaluated candidate
+    is appended to ``log_path``."""
     cfg = settings.evolution()
     limit_ms = budget_ms if limit_ms is None else limit_ms
     fresh0, hits0, t0 = fitness.fresh, fitness.hits, time.perf_counter()
@@ -83,7 +86,7 @@ def search_budget(space: SpaceSpec, fitness: CachedAccuracy, latency: CachedLate
             bar.set_postfix(best=f"{best[0]:.2f}")
 
     try:
-        cands = regularized_evolution(space, fitness, latency, limit_ms, cfg, on_eval, device)
+        cands = regularized_evolution(space, fitness, latency, limit_ms, cfg, on_eval, device, usable_ms)
     finally:
         if bar is not None:
             bar.close()
@@ -205,7 +208,8 @@ def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPr
         t0 = time.perf_counter()
         drift = _drift(ctx, table, predictor) if verifiable and ctx.settings.drift_check else None
         # picks measured here must fit budget x (1 - guard): search around that, not the budget itself
-        base = b * (1 - (expected_guard(ctx.settings) if verifiable else 0.0)) * (1 + slack)
+        usable = b * (1 - (expected_guard(ctx.settings) if verifiable else 0.0))
+        base = usable * (1 + slack)
         limit = drifted_limit(base, drift)
         if drift is not None:
             say(f"  {budget_label(b)}: this machine now runs the table's calibration subnets at {drift:.2f} x their "
@@ -215,7 +219,7 @@ def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPr
         for attempt in range(2):
             before = compute.phases(latency)
             result = search_budget(ctx.run.recipe.space, ctx.fitness, latency, b, table.name, settings,
-                                   out / "candidates.jsonl", ctx.progress, limit_ms=limit)
+                                   out / "candidates.jsonl", ctx.progress, limit_ms=limit, usable_ms=usable)
             say(time_report(result, {k: v - before[k] for k, v in compute.phases(latency).items()}))
             seen += result.candidates
             write_front(out / f"front-{device_name(table.name)}.json", table.name, out / "candidates.jsonl")

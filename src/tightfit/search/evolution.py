@@ -185,12 +185,14 @@ def _child(space: SpaceSpec, parent: Subnet, rng: random.Random, ledger: _Ledger
 
 def regularized_evolution(space: SpaceSpec, fitness: Fitness, latency: Latency, budget_ms: float,
                           cfg: EvolutionSettings, on_eval: Optional[Callable[[Candidate], None]] = None,
-                          device: str = "device") -> list[Candidate]:
-    """Aging evolution under ``latency <= budget_ms``; returns every evaluated candidate in order."""
+                          device: str = "device", band_under_ms: Optional[float] = None) -> list[Candidate]:
+    """Aging evolution under ``latency <= budget_ms``; returns every evaluated candidate in order.
+    The preferred band lies under ``band_under_ms`` (default: the budget searched), so a search that
+    may go above the budget still explores the rungs under it (choose.py measures them)."""
     fastest_check(space, latency, budget_ms, device)
     rng = random.Random(cfg.seed)
     ledger = _Ledger(fitness, latency, on_eval)
-    floor_ms = band_floor(space, latency, budget_ms, cfg.band)
+    floor_ms = band_floor(space, latency, min(budget_ms, band_under_ms or budget_ms), cfg.band)
     population: deque[Candidate] = deque()
     for _ in range(min(cfg.population, cfg.evaluations)):
         population.append(ledger.evaluate(_fresh_within(space, rng, ledger, budget_ms, cfg.sample_tries, floor_ms), 0))
