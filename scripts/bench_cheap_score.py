@@ -34,7 +34,7 @@ def main(argv: list[str] | None = None) -> int:
     from tightfit.data.dataset import load_dataset
     from tightfit.latency.predict import kendall_tau
     from tightfit.search.fitness import RunAccuracy
-    from tightfit.train.rundir import load_trained
+    from tightfit.rundir import load_trained
     torch.set_num_threads(1)
     t = load_trained(args.run)
     ds = load_dataset(t.recipe.data, t.recipe.seed)

@@ -104,7 +104,7 @@ def smoke_data(recipe, smoke: bool):
 
 
 def train_supernet(recipe, run: Path, smoke: bool) -> dict:
-    from tightfit.train.rundir import checkpoint_path
+    from tightfit.rundir import checkpoint_path
     from tightfit.train.loop import train
     train(recipe, run, resume=checkpoint_path(run).exists(), ds=smoke_data(recipe, smoke))
     return {"throughput": throughput(run)}
@@ -221,7 +221,7 @@ def sample_finetune_cpu(recipe, steps: int = 15) -> dict:
     from tightfit.data.dataset import calibration_batches, load_dataset
     from tightfit.recipe import build_supernet
     from tightfit.train.finetune import FinetuneSettings, finetune, inherited_net
-    from tightfit.train.rundir import TrainedRun
+    from tightfit.rundir import TrainedRun
     import torch
     ds = load_dataset(recipe.data, recipe.seed)
     run = TrainedRun(build_supernet(recipe, ds.num_classes), recipe, ds.class_names, ds.mean, ds.std, False)
@@ -245,7 +245,7 @@ def supernet_epochs(family_cpu: float, epoch_cpu: float, reserve: float, family_
 
 def train_member(recipe, member, family_dir: Path, smoke: bool) -> dict:
     from tightfit.train.baselines import member_recipe
-    from tightfit.train.rundir import checkpoint_path
+    from tightfit.rundir import checkpoint_path
     from tightfit.train.loop import train
     r = member_recipe(recipe, member)
     run = family_dir / member.name
@@ -258,7 +258,7 @@ def export_member(run: Path) -> tuple[Path, int, int]:
     """The trained member as a static net (its own running BN statistics) → ONNX."""
     from tightfit.model.onnx import export_onnx
     from tightfit.model.extract import count_macs, count_params, extract_subnet
-    from tightfit.train.rundir import load_trained
+    from tightfit.rundir import load_trained
     t = load_trained(run)
     net = extract_subnet(t.supernet, t.recipe.space.largest()).eval()
     path = run / "model.onnx"
@@ -355,7 +355,7 @@ def ranking_check(run: Path, smoke: bool, n: int = 24) -> dict:
     from tightfit.data.dataset import load_dataset
     from tightfit.latency.predict import kendall_tau
     from tightfit.search.fitness import RunAccuracy
-    from tightfit.train.rundir import load_trained
+    from tightfit.rundir import load_trained
     settings, t = search_settings(smoke), load_trained(run)
     ds = load_dataset(t.recipe.data, t.recipe.seed)
     threads = torch.get_num_threads()

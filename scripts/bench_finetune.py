@@ -19,7 +19,7 @@ import torch
 from tightfit.data.dataset import calibration_batches, eval_batches, load_dataset
 from tightfit.model.recalibrate import accuracy
 from tightfit.train.finetune import FinetuneSettings, finetune, inherited_net, teacher_of
-from tightfit.train.rundir import load_trained
+from tightfit.rundir import load_trained
 
 
 def split_accuracy(net, ds) -> dict[str, float]:

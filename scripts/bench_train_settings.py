@@ -38,7 +38,7 @@ from tightfit.model.recalibrate import accuracy, subnet_accuracy
 from tightfit.model.space import SpaceSpec, Subnet
 from tightfit.recipe import Recipe, TrainConfig, load_recipe
 from tightfit.train.loop import train
-from tightfit.train.rundir import load_trained
+from tightfit.rundir import load_trained
 from tightfit.train.finetune import FinetuneSettings, finetuned_subnet
 
 from screen_summary import COLUMNS, summarise  # scripts/screen_summary.py, torch-free for the benchmark page

@@ -41,7 +41,7 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
 
 def compare(args: argparse.Namespace) -> list[dict]:
     from tightfit.data.dataset import load_dataset
-    from tightfit.train.rundir import load_trained
+    from tightfit.rundir import load_trained
     from tightfit.budgets import parse_budget
     from tightfit.search.cache import AccuracyCache, CachedAccuracy, CachedLatency
     from tightfit.search.driver import load_predictors

@@ -131,7 +131,7 @@ def shared(tmp_path_factory) -> Shared:
     from tightfit.export.cut import cut_one
     from tightfit.data.dataset import load_dataset
     from tightfit.recipe import load_recipe
-    from tightfit.train.rundir import load_trained
+    from tightfit.rundir import load_trained
     from tightfit.train.loop import train
     from tightfit.ondevice.verify import load_export
     root = tmp_path_factory.mktemp("bad-input")

@@ -9,7 +9,7 @@ from tightfit.data.dataset import eval_batches, load_dataset
 from tightfit.data.fashion_mnist import DEFAULT_DIR
 from tightfit.model.recalibrate import accuracy
 from tightfit.recipe import parse_recipe
-from tightfit.train.rundir import load_trained
+from tightfit.rundir import load_trained
 from tightfit.train.loop import train
 
 pytestmark = pytest.mark.skipif(not Path(DEFAULT_DIR).is_dir(),

@@ -20,7 +20,7 @@ from tightfit.export.finetuned import finetune_export, graph_signature
 from tightfit.model.onnx import ort_outputs
 from tightfit.model.extract import extract_subnet
 from tightfit.train.finetune import FinetuneSettings, finetune, inherited_net, teacher_of
-from tightfit.train.rundir import load_trained
+from tightfit.rundir import load_trained
 
 
 @pytest.fixture

@@ -15,7 +15,7 @@ from tightfit.data.dataset import calibration_batches, load_dataset, train_batch
 from tightfit.model.recalibrate import recalibrate_bn
 from tightfit.model.supernet import Supernet
 from tightfit.train.finetune import FinetuneSettings, finetune, inherited_net
-from tightfit.train.rundir import TrainedRun
+from tightfit.rundir import TrainedRun
 
 BATCHES_PER_EPOCH = 14  # 459 training images of the tiny recipe, batches of 32, the last incomplete one dropped
 

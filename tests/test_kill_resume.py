@@ -27,7 +27,7 @@ import torch
 
 from gated_train import read_number, write_number
 from helpers import TINY, recipe_toml
-from tightfit.train.checkpoint import load_checkpoint, save_checkpoint
+from tightfit.checkpoint import load_checkpoint, save_checkpoint
 
 RECIPE = copy.deepcopy(TINY)
 RECIPE["data"]["samples"] = 400                                 # 306 training images: 9 steps of 32 per epoch
@@ -202,7 +202,7 @@ def test_sigint_sigterm_write_a_checkpoint_and_say_how_to_resume(tmp_path, recip
 def test_sigkill_while_writing_keeps_the_previous_checkpoint(tmp_path):
     """A kill in the middle of a checkpoint write (the writer blocks after half the bytes) leaves
     the previous checkpoint.pt whole; the half-written file exists only under a temporary name."""
-    from tightfit.train.checkpoint import save_checkpoint
+    from tightfit.checkpoint import save_checkpoint
     path = tmp_path / "checkpoint.pt"
     save_checkpoint(path, {"model": {"w": torch.arange(1000.0)}, "recipe": {}, "step": 3})
     writer = (

@@ -91,10 +91,10 @@ def test_no_import_cycles():
 FLOORS = (
     ("tightfit", "tightfit.errors", "tightfit.progress", "tightfit.budgets", "tightfit.ondevice"),
     ("tightfit.model",),
-    ("tightfit.recipe",),
+    ("tightfit.recipe", "tightfit.checkpoint", "tightfit.rundir"),
     ("tightfit.data",),
-    ("tightfit.train",),
     ("tightfit.latency",),
+    ("tightfit.train",),
     ("tightfit.export",),
     ("tightfit.search",),
     ("tightfit.report",),

@@ -80,7 +80,7 @@ def test_search_verify_export_end_to_end(tiny_run, monkeypatch, capsys):
     import tightfit.search.driver as search
     import tightfit.search.commands as search_cli
     from tightfit.ondevice.hardware import describe_hardware
-    from tightfit.train.rundir import load_trained
+    from tightfit.rundir import load_trained
     space = load_trained(tiny_run).recipe.space
     here = FakeTable("this-host", describe_hardware())
     away = FakeTable("far-board", {"cpu_model": "some ARM board", "logical_cores": 4, "hostname": "board"})

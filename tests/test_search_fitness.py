@@ -53,7 +53,7 @@ def test_held_out_accuracy_uses_the_images_the_search_did_not(tiny_run):
     the score on the whole split (accuracy is a count over images: common practice), and the cache tag
     tells the parts apart so a held-out figure is never served as a search figure."""
     from tightfit.data.dataset import load_dataset
-    from tightfit.train.rundir import load_trained
+    from tightfit.rundir import load_trained
     from tightfit.search.fitness import RunAccuracy
     run = load_trained(tiny_run)
     ds = load_dataset(run.recipe.data, run.recipe.seed)

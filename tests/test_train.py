@@ -3,7 +3,7 @@
 import pytest
 import torch
 
-from tightfit.train.checkpoint import load_checkpoint, save_checkpoint
+from tightfit.checkpoint import load_checkpoint, save_checkpoint
 from tightfit.data.dataset import load_dataset
 from tightfit.errors import Interrupted, UserError
 from tightfit.train.loop import train
@@ -191,7 +191,7 @@ def test_a_half_trained_run_is_loaded_with_a_warning(tiny_run, tmp_path, capsys)
     # Contract ("Errors and safety"): nothing is used silently; an interrupted run says so when loaded.
     import shutil
     import torch
-    from tightfit.train.rundir import load_trained
+    from tightfit.rundir import load_trained
     run = tmp_path / "run"
     shutil.copytree(tiny_run, run, ignore=shutil.ignore_patterns("search", "exports"))
     assert load_trained(run).complete and "warning" not in capsys.readouterr().err

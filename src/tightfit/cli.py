@@ -43,7 +43,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
         from tightfit.recipe import load_recipe
         load_recipe(args.recipe)
     from tightfit.demo import run_demo
-    from tightfit.train.rundir import set_threads
+    from tightfit.rundir import set_threads
     set_threads(args.threads)
     run_demo(args.run, recipe_path=args.recipe)
     return 0

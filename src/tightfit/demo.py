@@ -14,7 +14,7 @@ from tightfit.export.cut import format_table
 from tightfit.data.dataset import load_dataset
 from tightfit.errors import UserError
 from tightfit.recipe import load_recipe
-from tightfit.train.rundir import load_trained
+from tightfit.rundir import load_trained
 from tightfit.train.loop import train
 
 

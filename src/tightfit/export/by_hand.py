@@ -12,7 +12,7 @@ from tightfit.export.manifest import export_pick, latency_section
 from tightfit.model.space import Subnet
 from tightfit.ondevice.hardware import describe_hardware
 from tightfit.ondevice.timing import Protocol
-from tightfit.train.rundir import TrainedRun, load_trained
+from tightfit.rundir import TrainedRun, load_trained
 
 
 def export_cuts(run: TrainedRun, ds: Dataset, picked: list[tuple[str, Subnet]], out_dir: Path,

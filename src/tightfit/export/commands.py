@@ -10,7 +10,7 @@ def _cmd_cut(args: argparse.Namespace) -> int:
     budget_ms = None if args.budget is None else parse_budget(args.budget)
     from tightfit.export.by_hand import cut_subnets
     from tightfit.export.cut import format_table
-    from tightfit.train.rundir import set_threads
+    from tightfit.rundir import set_threads
     set_threads(args.threads)
     print(format_table(cut_subnets(args.run, args.subnet, args.out, budget_ms)))
     print("each folder holds model.onnx, state_dict.pt and manifest.json: check one with tightfit verify FOLDER")

@@ -15,7 +15,7 @@ from tightfit.data.dataset import Dataset, calibration_batches, eval_batches
 from tightfit.model.onnx import export_onnx, max_parity_error
 from tightfit.model.extract import StaticNet, count_macs, count_params, extract_subnet
 from tightfit.model.recalibrate import accuracy, preserved_bn_stats, recalibrate_bn
-from tightfit.train.rundir import TrainedRun
+from tightfit.rundir import TrainedRun
 from tightfit.model.space import Subnet
 from tightfit.ondevice.repeats import measure_repeated
 from tightfit.ondevice.timing import Protocol

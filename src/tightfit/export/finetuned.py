@@ -23,7 +23,7 @@ from tightfit.model.onnx import export_onnx, max_parity_error
 from tightfit.model.space import Subnet
 from tightfit.ondevice.files import write_bytes, write_json
 from tightfit.train.finetune import FinetuneSettings, finetune, inherited_net
-from tightfit.train.rundir import TrainedRun
+from tightfit.rundir import TrainedRun
 
 
 def graph_signature(data: bytes) -> tuple:

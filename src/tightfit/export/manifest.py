@@ -26,7 +26,7 @@ from tightfit.model.arithmetic import describe_architecture
 from tightfit.model.space import SpaceSpec, Subnet
 from tightfit.ondevice.accuracy import Accuracy, PairedComparison  # accuracy records: count, interval, pairs
 from tightfit.ondevice.files import MANIFEST_FORMAT, MANIFEST_VERSION, write_bytes, write_json
-from tightfit.train.rundir import TrainedRun
+from tightfit.rundir import TrainedRun
 LATENCY_KEYS = ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "cv", "iqr_over_median", "repeat_figures_ms", "repeat_spread",
                 "states", "stable", "note")
 

@@ -22,7 +22,7 @@ def _cmd_profile(args: argparse.Namespace) -> int:
     out = profile_host(args.run, args.name, threads=args.threads, quick=args.quick, n_subnets=args.subnets)
     print(f"latency table: {out}")
     from tightfit.latency.predict import predicted_range
-    from tightfit.train.rundir import load_trained
+    from tightfit.rundir import load_trained
     print(predicted_range(load_trained(args.run).recipe, out))
     return 0
 

@@ -22,8 +22,8 @@ from tightfit.model.space import space_hash
 from tightfit.model.supernet import Supernet
 from tightfit.ondevice.files import BUNDLE_FORMAT, atomic_write, write_bytes, write_json
 from tightfit.recipe import Recipe, build_supernet, load_recipe
-from tightfit.train.checkpoint import CHECKPOINT_NAME
-from tightfit.train.rundir import load_trained
+from tightfit.checkpoint import CHECKPOINT_NAME
+from tightfit.rundir import load_trained
 
 class _Head(nn.Module):
     """Head conv (if any) → global average pool → classifier, exactly as StaticNet ends."""

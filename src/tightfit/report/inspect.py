@@ -92,7 +92,7 @@ def inspect(target: str, tables: list[str], subnets: list[str], front: bool, cla
     path = Path(target)
     run_dir: Optional[Path] = None
     if path.is_dir():
-        from tightfit.train.rundir import load_trained
+        from tightfit.rundir import load_trained
         run = load_trained(path)
         if classes and classes != len(run.class_names):
             raise UserError(f"--classes {classes}: the run in {path} has {len(run.class_names)} classes; "

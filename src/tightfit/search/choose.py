@@ -29,7 +29,7 @@ from tightfit.search.evolution import Candidate
 from tightfit.search.fitness import RunAccuracy
 from tightfit.search.settings import SearchSettings
 from tightfit.train.finetune import FinetuneSettings
-from tightfit.train.rundir import TrainedRun
+from tightfit.rundir import TrainedRun
 
 @dataclass
 class SearchContext:

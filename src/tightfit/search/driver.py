@@ -34,7 +34,7 @@ from tightfit.search.confirm import confirm_picks, guard_floor_of
 from tightfit.search.evolution import Candidate, fastest_check, front_first, pareto_front, regularized_evolution
 from tightfit.search.fitness import RunAccuracy
 from tightfit.search.settings import SearchSettings
-from tightfit.train.rundir import load_trained
+from tightfit.rundir import load_trained
 
 # ----------------------------------------------------------------------------- one (device, budget)
 

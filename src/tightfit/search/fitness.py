@@ -23,7 +23,7 @@ from tightfit.model.recalibrate import accuracy, batch_norms, preserved_bn_stats
 from tightfit.model.space import SpaceSpec, Subnet
 from tightfit.model.supernet import Supernet
 from tightfit.search.cache import CachedLatency
-from tightfit.train.rundir import TrainedRun, checkpoint_path
+from tightfit.rundir import TrainedRun, checkpoint_path
 
 
 def fixed_stages(space: SpaceSpec) -> int:

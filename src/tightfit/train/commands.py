@@ -9,7 +9,7 @@ def _cmd_train(args: argparse.Namespace) -> int:
     from tightfit.recipe import load_recipe
     recipe = load_recipe(args.recipe)  # before torch is imported: a bad recipe is refused in a second
     from tightfit.train.loop import train
-    from tightfit.train.rundir import discard_unstarted_run, set_threads
+    from tightfit.rundir import discard_unstarted_run, set_threads
     set_threads(args.threads)
     with discard_unstarted_run(args.run):
         ckpt = train(recipe, args.run, resume=args.resume, recipe_path=args.recipe, progress=not args.quiet,

@@ -58,7 +58,7 @@ import torch.distributed as dist
 from torch import nn
 
 from tightfit.errors import UserError
-from tightfit.train.rundir import pick_device
+from tightfit.rundir import pick_device
 
 # Rank 0 alone evaluates at each epoch end while the others wait at the next collective;
 # torch's default (10 min for NCCL) could cut a long evaluation short.

@@ -20,7 +20,7 @@ from tightfit.data.dataset import Dataset, calibration_batches, train_batches
 from tightfit.model.extract import StaticNet, extract_subnet
 from tightfit.model.recalibrate import preserved_bn_stats, recalibrate_bn
 from tightfit.model.space import Subnet
-from tightfit.train.rundir import TrainedRun
+from tightfit.rundir import TrainedRun
 from tightfit.train.sandwich import distill_loss, param_groups
 
 SEED_OFFSET = 1_000  # its batch order differs from the supernet's epochs, reproducibly

@@ -14,7 +14,7 @@ from pathlib import Path
 import torch
 from tightfit.progress import bar as progress_bar
 
-from tightfit.train.checkpoint import load_checkpoint, remove_stale_temporaries, save_checkpoint
+from tightfit.checkpoint import load_checkpoint, remove_stale_temporaries, save_checkpoint
 from tightfit.train.distributed import (GradientSync, Ranks, barrier, broadcast_weights, decided_on_main, joined,
                                   local_rows, step_seed)
 from tightfit.data.dataset import Dataset, calibration_batches, eval_batches, load_dataset, steps_per_epoch, train_batches
@@ -23,7 +23,7 @@ from tightfit.model.recalibrate import subnet_accuracy
 from tightfit.model.supernet import Supernet
 from tightfit.ondevice.files import append_jsonl, read_jsonl, write_bytes, write_text
 from tightfit.recipe import Recipe, build_supernet
-from tightfit.train.rundir import checkpoint_path
+from tightfit.rundir import checkpoint_path
 from tightfit.train.initialise import zero_init_residual
 from tightfit.train.sandwich import lr_at, macs_distance, make_optimizer, step_subnets, train_step
 

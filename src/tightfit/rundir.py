@@ -17,7 +17,7 @@ from typing import Iterator
 
 import torch
 
-from tightfit.train.checkpoint import CHECKPOINT_NAME, load_checkpoint
+from tightfit.checkpoint import CHECKPOINT_NAME, load_checkpoint
 from tightfit.errors import UserError
 from tightfit.recipe import Recipe, build_supernet, recipe_from_dict
 from tightfit.model.supernet import Supernet
