@@ -91,7 +91,7 @@ def test_no_import_cycles():
 FLOORS = (
     ("tightfit", "tightfit.errors", "tightfit.progress", "tightfit.budgets", "tightfit.ondevice"),
     ("tightfit.model",),
-    ("tightfit.recipe", "tightfit.checkpoint", "tightfit.rundir"),
+    ("tightfit.recipe", "tightfit.recipe_tables", "tightfit.checkpoint", "tightfit.rundir"),
     ("tightfit.data",),
     ("tightfit.latency",),
     ("tightfit.train",),

@@ -8,12 +8,14 @@ from __future__ import annotations
 import hashlib
 import json
 import tomllib
-from dataclasses import asdict, dataclass, fields
+from dataclasses import asdict, dataclass, fields, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from tightfit.budgets import parse_budget
 from tightfit.errors import UserError
-from tightfit.model.space import ACTIVATIONS, SpaceSpec, SpecError, StageSpec
+from tightfit.model.space import SpaceSpec, StageSpec
+from tightfit.recipe_tables import check_keys, dataclass_from, fail, space_from, typed
 
 if TYPE_CHECKING:
     from tightfit.model.supernet import Supernet
@@ -40,6 +42,14 @@ class DataConfig:
 
 
 @dataclass(frozen=True)
+class Target:
+    """A latency budget on one device, declared before training: the table measured there (a path) and
+    the budget in milliseconds at the table's percentile."""
+    table: str
+    budget_ms: float
+
+
+@dataclass(frozen=True)
 class TrainConfig:
     epochs: float = 3.0            # may be fractional; the cosine schedule spans them
     batch_size: int = 128          # the global batch (split over processes under torchrun)
@@ -58,18 +68,26 @@ class TrainConfig:
     # Training levers for short schedules; each default is the behaviour before they existed.
     zero_init_residual: bool = False   # last BN gamma of every skip block starts at 0 (Goyal et al. 2017)
     largest_dropout: float = 0.0   # > 0: dropout before the classifier in the largest's pass only, none in the others
-    lr_end: float = 0.0            # cosine ends at lr * lr_end, not zero (Yu et al. 2020)
+    final_lr_fraction: float = 0.0  # cosine ends at lr * final_lr_fraction, not zero (Yu et al. 2020)
     largest_only_epochs: float = 0.0   # first epochs train the largest subnet alone
     distill_loss: str = "soft_ce"  # "soft_ce" (soft-label cross-entropy) or "kl" (Hinton et al. 2015)
     distill_temperature: float = 1.0   # softens teacher and student; the loss is scaled by T^2
     random_macs_target: float = 0.0    # > 0: each random subnet is the draw nearest this MACs fraction
     random_candidates: int = 4     # draws per random subnet when random_macs_target > 0
+    distill_weight: float = 1.0    # with distill: loss = w * distillation + (1 - w) * labels, for all but the largest
+    # Targets known before training; each step also trains subnets predicted inside a target's band
+    # [target_band_bottom * budget, budget], the targets taken in turn (tightfit/train/targets.py).
+    targets: tuple[Target, ...] = ()  # [[train.targets]] tables: table = "TABLE.json", budget = "0.3ms"
+    target_subnets: int = 1        # band subnets per step (when there are targets)
+    target_band_bottom: float = 0.85  # a band spans [this * budget, budget] as the target's table predicts
+    target_candidates: int = 1     # > 1: of this many band draws, train the one with the lowest loss on the batch
 
 
 # Added after recipes, checkpoints and caches were keyed by Recipe.hash(): left out of the hash while
 # at their defaults, so every recipe that does not use them keeps its hash.
-_LEVERS = ("zero_init_residual", "largest_dropout", "lr_end", "largest_only_epochs", "distill_loss",
-           "distill_temperature", "random_macs_target", "random_candidates")
+_LEVERS = ("zero_init_residual", "largest_dropout", "final_lr_fraction", "largest_only_epochs", "distill_loss",
+           "distill_temperature", "random_macs_target", "random_candidates", "distill_weight", "targets",
+           "target_subnets", "target_band_bottom", "target_candidates")
 _LEVER_DEFAULTS = {f.name: f.default for f in fields(TrainConfig) if f.name in _LEVERS}
 
 
@@ -91,190 +109,95 @@ class Recipe:
         return hashlib.sha256(blob).hexdigest()[:16]
 
 
-def _fail(key: str, value: Any, allowed: str) -> UserError:
-    return UserError(f"recipe key '{key}' = {value!r} is invalid: {allowed}")
-
-
-def _check_keys(table: dict, cls_or_names, where: str) -> None:
-    names = {f.name for f in fields(cls_or_names)} if not isinstance(cls_or_names, (set, tuple)) else set(cls_or_names)
-    for k in table:
-        if k not in names:
-            raise UserError(f"unknown recipe key '{where}{k}'; allowed here: {', '.join(sorted(names))}")
-
-
-def _typed(table: dict, key: str, where: str, kind: type, default: Any, *, positive: bool = False) -> Any:
-    if key not in table:
-        return default
-    v = table[key]
-    ok = isinstance(v, kind) and not (kind in (int, float) and isinstance(v, bool))
-    if kind is float and isinstance(v, int) and not isinstance(v, bool):
-        v, ok = float(v), True
-    if not ok:
-        raise _fail(where + key, v, f"expected {kind.__name__}")
-    if positive and v <= 0:
-        raise _fail(where + key, v, "must be > 0")
-    return v
-
-
-def _dataclass_from(table: dict, cls, where: str, positive: tuple[str, ...] = ()):
-    _check_keys(table, cls, where)
-    kw = {}
-    for f in fields(cls):
-        kind = type(f.default)
-        kw[f.name] = _typed(table, f.name, where, kind, f.default, positive=f.name in positive)
-    return cls(**kw)
-
-
-def _choices(st: dict, key: str, where: str, kind: type) -> tuple:
-    if key not in st:
-        raise UserError(f"recipe key '{where}{key}' is missing: give a list of allowed values")
-    v = st[key]
-    if not isinstance(v, list) or not v:
-        raise _fail(where + key, v, "expected a non-empty list")
-    out = []
-    for x in v:
-        if isinstance(x, bool) or not isinstance(x, (int, float)) or (kind is int and not isinstance(x, int)):
-            raise _fail(where + key, v, f"every entry must be {'an integer' if kind is int else 'a number'}")
-        out.append(int(x) if float(x).is_integer() else float(x))
-    return tuple(sorted(out))  # duplicates are left for the spec to refuse
-
-
-def _widths(table: dict, key: str, where: str, default: int | None) -> tuple[int, tuple[int, ...]]:
-    """``channels = 40`` (fixed) or ``[24, 32, 40]`` (elastic) → (widest, choices or ()); the spec checks values."""
-    v = table.get(key, default)
-    if isinstance(v, list):
-        choices = _choices(table, key, where, int)
-        return max(choices), (choices if len(choices) > 1 else ())
-    if isinstance(v, bool) or not isinstance(v, int):
-        raise _fail(where + key, v, "must be an integer > 0, or a list of allowed widths such as [16, 24, 32]")
-    return v, ()
-
-
-# The [space] and [[space.stage]] keys (TOML names differ from SpaceSpec/StageSpec fields): key -> (default, meaning).
-SPACE_KEYS = {
-    "stem_channels": ("16", "stem conv output channels, or a list of allowed widths such as [8, 16] (elastic width)"),
-    "stem_stride": ("1", "1 or 2"),
-    "stem_activation": ('"relu6"', "activation after the stem conv: " + ", ".join(ACTIVATIONS)),
-    "head_channels": ("0", "1x1 conv before pooling; 0 = none"),
-    "head_activation": ('"relu6"', "activation after the head conv"),
-    "dropout": ("0.0", "dropout before the classifier, in [0, 1)"),
-    "smaller_kernels": ('"centre"', "how a smaller depthwise kernel is taken from the largest one's weights: "
-                                    '"centre" (its centre) or "mapped" (its centre through one learned k*k x k*k map '
-                                    "per smaller size, shared by all channels; adds parameters; Cai et al. 2020)"),
-    "stage": ("(required)", "one [[space.stage]] table per stage, input to output"),
-}
-STAGE_KEYS = {
-    "channels": ("(required)", "output channels, or a list of allowed widths such as [24, 32, 40] (the widest sizes "
-                               "the weights; a narrower choice uses the first channels)"),
-    "stride": ("1", "stride of the stage's first block: 1 or 2"),
-    "depths": ("(required)", "allowed numbers of blocks, e.g. [1, 2, 3]"),
-    "expansions": ("(required)", "allowed expansion ratios (hidden = round(input channels x ratio)); 1 = no expand conv"),
-    "kernels": ("(required)", "allowed depthwise kernel sizes, odd, e.g. [3, 5]"),
-    "activation": ('"relu6"', "activation in the stage's blocks: " + ", ".join(ACTIVATIONS)),
-    "squeeze_excite": ("false", "squeeze-excite after the depthwise conv"),
-}
-# Spec fields whose recipe key has another name (the rest share theirs).
-_KEY_OF_FIELD = {"out_channels": "channels", "widths": "channels", "stem_widths": "stem_channels", "stages": "stage"}
-
-
-def _checked(build, where: str):
-    """Build a spec; its own ValueError (the spec's invariants) becomes the one-line error naming the recipe key."""
-    try:
-        return build()
-    except SpecError as e:
-        value = list(e.value) if isinstance(e.value, tuple) else e.value
-        raise _fail(where + _KEY_OF_FIELD.get(e.field, e.field), value, e.rule) from None
-
-
-def _stage(st: Any, i: int) -> StageSpec:
-    where = f"space.stage[{i}]."
-    if not isinstance(st, dict):
-        raise UserError(f"recipe key 'space.stage[{i}]' must be a table ([[space.stage]])")
-    _check_keys(st, set(STAGE_KEYS), where)
-    if "channels" not in st:
-        raise _fail(where + "channels", None, "must be an integer > 0, or a list of allowed widths")
-    chs, widths = _widths(st, "channels", where, None)
-    stride = _typed(st, "stride", where, int, 1)
-    depths, exps = _choices(st, "depths", where, int), _choices(st, "expansions", where, float)
-    kernels = _choices(st, "kernels", where, int)
-    return _checked(lambda: StageSpec(chs, stride, depths, exps, kernels, _typed(st, "activation", where, str, "relu6"),
-                                      _typed(st, "squeeze_excite", where, bool, False), widths), where)
-
-
-def _space(sp: dict) -> SpaceSpec:
-    _check_keys(sp, set(SPACE_KEYS), "space.")
-    stem, stem_widths = _widths(sp, "stem_channels", "space.", 16)
-    stages = sp.get("stage")
-    if not isinstance(stages, list) or not stages:
-        raise UserError("recipe needs at least one [[space.stage]] table")
-    stages = tuple(_stage(s, i) for i, s in enumerate(stages))
-    return _checked(lambda: SpaceSpec(
-        stem, _typed(sp, "stem_stride", "space.", int, 1), stages, _typed(sp, "head_channels", "space.", int, 0),
-        _typed(sp, "stem_activation", "space.", str, "relu6"), _typed(sp, "head_activation", "space.", str, "relu6"),
-        _typed(sp, "dropout", "space.", float, 0.0), stem_widths,
-        _typed(sp, "smaller_kernels", "space.", str, "centre")), "space.")
-
-
 def parse_recipe(doc: dict, default_name: str = "recipe") -> Recipe:
-    _check_keys(doc, {"name", "seed", "data", "space", "train"}, "")
+    check_keys(doc, {"name", "seed", "data", "space", "train"}, "")
     for sect in ("data", "space", "train"):
         if sect in doc and not isinstance(doc[sect], dict):
             raise UserError(f"recipe key '{sect}' must be a table ([{sect}])")
     if "space" not in doc:
         raise UserError("recipe has no [space] table: add [space] and at least one [[space.stage]]")
     _refuse_moved_keys(doc, "recipe", "")
-    name = _typed(doc, "name", "", str, default_name)
-    seed = _typed(doc, "seed", "", int, 0)
+    name = typed(doc, "name", "", str, default_name)
+    seed = typed(doc, "seed", "", int, 0)
     data = _data(doc.get("data", {}))
-    train = _dataclass_from(doc.get("train", {}), TrainConfig, "train.",
-                            positive=("epochs", "batch_size", "lr", "recalibration_batches", "eval_batch_size"))
+    train_table = dict(doc.get("train", {}))
+    targets = _targets(train_table.pop("targets", []))
+    train = dataclass_from(train_table, TrainConfig, "train.",
+                            positive=("epochs", "batch_size", "lr", "recalibration_batches", "eval_batch_size",
+                                      "target_subnets", "target_candidates"))
+    train = replace(train, targets=targets)
     if train.optimizer not in OPTIMIZERS:
-        raise _fail("train.optimizer", train.optimizer, f"choose one of {', '.join(OPTIMIZERS)}")
+        raise fail("train.optimizer", train.optimizer, f"choose one of {', '.join(OPTIMIZERS)}")
     for key in ("random_subnets", "checkpoint_every", "weight_decay", "warmup_epochs", "momentum"):
         if getattr(train, key) < 0:
-            raise _fail("train." + key, getattr(train, key), "must be >= 0")
+            raise fail("train." + key, getattr(train, key), "must be >= 0")
     if not 0 <= train.label_smoothing < 1:
-        raise _fail("train.label_smoothing", train.label_smoothing, "must be in [0, 1)")
+        raise fail("train.label_smoothing", train.label_smoothing, "must be in [0, 1)")
     _check_levers(train)
-    return Recipe(name, seed, data, _space(doc["space"]), train)
+    return Recipe(name, seed, data, space_from(doc["space"]), train)
+
+
+def _targets(entries: Any) -> tuple[Target, ...]:
+    """[[train.targets]] tables: table = "path/to/table.json", budget = "0.3ms"."""
+    if not isinstance(entries, list):
+        raise UserError("recipe key 'train.targets' must be an array of tables ([[train.targets]])")
+    out = []
+    for i, t in enumerate(entries):
+        where = f"train.targets[{i}]."
+        if not isinstance(t, dict):
+            raise UserError(f"recipe key 'train.targets[{i}]' must be a table ([[train.targets]])")
+        check_keys(t, {"table", "budget"}, where)
+        for key in ("table", "budget"):
+            if not isinstance(t.get(key), str):
+                raise fail(where + key, t.get(key), 'expected a string, e.g. table = "latency/camera.json", '
+                                                       'budget = "0.3ms"')
+        out.append(Target(t["table"], parse_budget(t["budget"])))
+    return tuple(out)
 
 
 def _refuse_moved_keys(doc: dict, what: str, fix: str) -> None:
-    """train.kernel_mode moved to the space (it adds parameters): one line naming the new key."""
-    if isinstance(doc.get("train"), dict) and "kernel_mode" in doc["train"]:
+    """Keys that moved or were renamed: one line naming the new key."""
+    train = doc.get("train") if isinstance(doc.get("train"), dict) else {}
+    if "kernel_mode" in train:
         raise UserError(f"{what} has 'train.kernel_mode', which moved to [space] as smaller_kernels "
                         f'("centre" as before, "transform" is now "mapped"){fix}')
+    if "lr_end" in train:
+        raise UserError(f"{what} has 'train.lr_end', which is now called train.final_lr_fraction (same meaning){fix}")
 
 
 def _data(table: dict) -> DataConfig:
-    data = _dataclass_from(table, DataConfig, "data.", positive=("image_size", "channels", "samples"))
+    data = dataclass_from(table, DataConfig, "data.", positive=("image_size", "channels", "samples"))
     if data.source not in DATA_SOURCES:
-        raise _fail("data.source", data.source, f"choose one of {', '.join(DATA_SOURCES)}")
+        raise fail("data.source", data.source, f"choose one of {', '.join(DATA_SOURCES)}")
     if data.channels not in (1, 3):
-        raise _fail("data.channels", data.channels, "must be 1 (grey) or 3 (RGB)")
+        raise fail("data.channels", data.channels, "must be 1 (grey) or 3 (RGB)")
     if data.classes < 0 or data.classes == 1:
-        raise _fail("data.classes", data.classes, "must be 0 (count them in the data) or >= 2")
+        raise fail("data.classes", data.classes, "must be 0 (count them in the data) or >= 2")
     for key in ("val_fraction", "test_fraction"):
         if not 0 <= getattr(data, key) < 0.9:
-            raise _fail("data." + key, getattr(data, key), "must be in [0, 0.9)")
+            raise fail("data." + key, getattr(data, key), "must be in [0, 0.9)")
     for key, rule in (("max_train_images", "must be >= 0 (0 means all)"), ("shift", "must be >= 0")):
         if getattr(data, key) < 0:
-            raise _fail("data." + key, getattr(data, key), rule)
+            raise fail("data." + key, getattr(data, key), rule)
     return data
 
 
 def _check_levers(train: TrainConfig) -> None:
-    for key in ("largest_dropout", "lr_end", "random_macs_target"):
+    for key in ("largest_dropout", "final_lr_fraction", "random_macs_target"):
         if not 0 <= getattr(train, key) < 1:
-            raise _fail("train." + key, getattr(train, key), "must be in [0, 1)")
+            raise fail("train." + key, getattr(train, key), "must be in [0, 1)")
     if not 0 <= train.largest_only_epochs < train.epochs:
-        raise _fail("train.largest_only_epochs", train.largest_only_epochs, "must be >= 0 and below train.epochs")
+        raise fail("train.largest_only_epochs", train.largest_only_epochs, "must be >= 0 and below train.epochs")
     if train.distill_loss not in DISTILL_LOSSES:
-        raise _fail("train.distill_loss", train.distill_loss, f"choose one of {', '.join(DISTILL_LOSSES)}")
+        raise fail("train.distill_loss", train.distill_loss, f"choose one of {', '.join(DISTILL_LOSSES)}")
     if train.distill_temperature <= 0:
-        raise _fail("train.distill_temperature", train.distill_temperature, "must be > 0")
+        raise fail("train.distill_temperature", train.distill_temperature, "must be > 0")
     if train.random_candidates < 1:
-        raise _fail("train.random_candidates", train.random_candidates, "must be >= 1")
+        raise fail("train.random_candidates", train.random_candidates, "must be >= 1")
+    if not 0 <= train.distill_weight <= 1:
+        raise fail("train.distill_weight", train.distill_weight, "must be in [0, 1] (1: from the largest only)")
+    if not 0 < train.target_band_bottom < 1:
+        raise fail("train.target_band_bottom", train.target_band_bottom, "must be in (0, 1)")
 
 
 def load_recipe(path: str | Path) -> Recipe:
@@ -300,7 +223,9 @@ def recipe_from_dict(d: dict[str, Any]) -> Recipe:
                                       "kernels": tuple(s["kernels"]), "widths": tuple(s.get("widths", ()))})
                          for s in sp["stages"])
     sp["stem_widths"] = tuple(sp.get("stem_widths", ()))
-    return Recipe(d["name"], d["seed"], DataConfig(**d["data"]), SpaceSpec(**sp), TrainConfig(**d["train"]))
+    train = dict(d["train"])
+    train["targets"] = tuple(Target(**t) for t in train.get("targets", ()))
+    return Recipe(d["name"], d["seed"], DataConfig(**d["data"]), SpaceSpec(**sp), TrainConfig(**train))
 
 
 def build_supernet(recipe: Recipe, num_classes: int) -> Supernet:

@@ -12,7 +12,8 @@ import inspect
 import re
 from dataclasses import MISSING, fields
 
-from tightfit.recipe import SPACE_KEYS, STAGE_KEYS, DataConfig, TrainConfig
+from tightfit.recipe import DataConfig, TrainConfig
+from tightfit.recipe_tables import SPACE_KEYS, STAGE_KEYS
 
 _FIELD = re.compile(r"^\s+(\w+):[^=#]+=[^#]*#\s*(.*)$")
 _MORE = re.compile(r"^\s+#\s*(.*)$")

@@ -19,11 +19,12 @@ def _cmd_probe(args: argparse.Namespace) -> int:
 
 def _cmd_profile(args: argparse.Namespace) -> int:
     from tightfit.latency.table import profile_host
-    out = profile_host(args.run, args.name, threads=args.threads, quick=args.quick, n_subnets=args.subnets)
+    out = profile_host(args.run, args.name, threads=args.threads, quick=args.quick, n_subnets=args.subnets,
+                       out=args.out)
     print(f"latency table: {out}")
     from tightfit.latency.predict import predicted_range
-    from tightfit.rundir import load_trained
-    print(predicted_range(load_trained(args.run).recipe, out))
+    from tightfit.latency.probe import load_source
+    print(predicted_range(load_source(args.run)[0], out))
     return 0
 
 
@@ -75,9 +76,13 @@ def add_probe_parser(sub) -> None:
 def add_profile_parser(sub) -> None:
     p = sub.add_parser("profile", help="measure this machine's latency table (probe + on-device runner here)",
                        description="Write the probe bundle and measure it on this machine with the on-device "
-                                   "runner, into RUN_DIR/latency/NAME.json.")
-    p.add_argument("run", help="run directory")
+                                   "runner, into RUN_DIR/latency/NAME.json (or --out). Latency depends on the "
+                                   "architecture only: profile the recipe before training to train for the budgets "
+                                   "you need (tightfit train RECIPE --table TABLE --budget B).")
+    p.add_argument("run", help="run directory, or a recipe file (a table made before training, for "
+                               "'tightfit train RECIPE --table TABLE --budget B'; needs --out)")
     p.add_argument("--name", default=None, help="device name, the table's file stem (default: host name)")
+    p.add_argument("--out", default=None, help="table file to write (default RUN_DIR/latency/NAME.json)")
     p.add_argument("--threads", type=int, default=1, help="ONNX Runtime intra-op threads (default 1)")
     p.add_argument("--quick", action="store_true", help="smoke-test protocol: one repeat, few runs (not stable)")
     p.add_argument("--subnets", type=int, default=8, help="whole subnets for calibration (default 8)")

@@ -115,14 +115,19 @@ def run_runner(bundle: Path, out: Path, args: list[str]) -> None:
 
 
 def profile_host(run_dir: str | Path, name: str | None = None, threads: int = 1, quick: bool = False,
-                 n_subnets: int = 8, progress: bool = True) -> Path:
-    """Probe the run's space, measure the bundle on this machine, write RUN_DIR/latency/NAME.json."""
+                 n_subnets: int = 8, progress: bool = True, out: str | Path | None = None) -> Path:
+    """Probe the space of a run (or of a recipe: latency needs no trained weights, so a table can
+    exist before training), measure the bundle on this machine, write ``out`` (default
+    RUN_DIR/latency/NAME.json; a recipe needs ``out``)."""
     run_dir = Path(run_dir)
-    if not run_dir.is_dir():
-        raise UserError(f"run directory not found: {run_dir}")
+    if not (run_dir.is_dir() or run_dir.is_file()):
+        raise UserError(f"run directory or recipe not found: {run_dir}")
+    if run_dir.is_file() and out is None:
+        raise UserError(f"profiling the recipe {run_dir} needs --out TABLE.json (a run directory keeps its tables)")
     if threads < 1:
         raise UserError(f"--threads {threads} must be at least 1")
-    out = run_dir / "latency" / f"{check_device_name(name or device_name())}.json"
+    device = check_device_name(name or device_name())
+    out = Path(out) if out is not None else run_dir / "latency" / f"{device}.json"
     from tightfit.latency.probe import write_bundle  # torch: only once the arguments are known good
     with tempfile.TemporaryDirectory(prefix="tightfit-probe-") as tmp:
         bundle = write_bundle(run_dir, Path(tmp) / "probe", n_subnets=n_subnets, progress=progress)

@@ -26,6 +26,7 @@ from tightfit.recipe import Recipe, build_supernet
 from tightfit.rundir import checkpoint_path
 from tightfit.train.initialise import zero_init_residual
 from tightfit.train.sandwich import lr_at, macs_distance, make_optimizer, step_subnets, train_step
+from tightfit.train.targets import Band, band_draws, batch_loss, lowest_loss, target_bands
 
 
 class _StopFlag:
@@ -75,14 +76,16 @@ def _epoch_eval(model: Supernet, recipe: Recipe, ds: Dataset, epoch: int, step: 
 
 def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, recipe_path: str | Path | None = None,
           progress: bool = True, ds: Dataset | None = None, device: str | None = None,
-          stop_at_step: int | None = None) -> Path:
+          stop_at_step: int | None = None, extra_toml: str = "") -> Path:
     """Train (or resume) the supernet of ``recipe`` into ``run_dir``; returns the checkpoint path.
 
     Under torchrun every process calls this; rank 0 alone touches ``run_dir`` (see
     tightfit.train.distributed). ``stop_at_step`` behaves like a SIGINT arriving at that step
     (checkpoint, then Interrupted); under torchrun, like any signal, it takes effect one
-    step later, when all ranks have agreed on it."""
+    step later, when all ranks have agreed on it. ``extra_toml`` is appended to the run's copy of
+    the recipe (targets given on the command line), so that copy resumes the same training."""
     run_dir = Path(run_dir)
+    bands = target_bands(recipe)  # a target outside the space is refused before anything is written
     with joined(device) as (ranks, dev):
         local_rows(recipe.train.batch_size, ranks)  # refuse a global batch that does not split
         state = decided_on_main(ranks, lambda: _open_run(run_dir, recipe, resume), dev)
@@ -102,8 +105,8 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, recipe_p
             start, complete = int(state["step"]), bool(state.get("complete", False))
         broadcast_weights(model, ranks)  # every rank starts from rank 0's weights
         if ranks.is_main and recipe_path is not None and not (run_dir / "recipe.toml").exists():
-            write_bytes(run_dir / "recipe.toml", Path(recipe_path).read_bytes())
-        return _loop(model, opt, recipe, ds, run_dir, start, progress, dev, ranks, stop_at_step, complete)
+            write_bytes(run_dir / "recipe.toml", Path(recipe_path).read_bytes() + extra_toml.encode())
+        return _loop(model, opt, recipe, ds, run_dir, start, progress, dev, ranks, stop_at_step, complete, bands)
 
 
 def _open_run(run_dir: Path, recipe: Recipe, resume: bool) -> dict | None:
@@ -128,7 +131,8 @@ def _open_run(run_dir: Path, recipe: Recipe, resume: bool) -> dict | None:
 
 # long: one training step's bookkeeping (schedule, sync, logging, checkpoint, stop) must stay in one visible order
 def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, start: int, progress: bool,
-          dev: torch.device, ranks: Ranks = Ranks(), stop_at_step: int | None = None, complete: bool = False) -> Path:
+          dev: torch.device, ranks: Ranks = Ranks(), stop_at_step: int | None = None, complete: bool = False,
+          bands: list[Band] = ()) -> Path:
     cfg = recipe.train
     spe = steps_per_epoch(ds, cfg.batch_size)
     if spe == 0:
@@ -155,12 +159,16 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
                 x, y = x[rows].to(dev, non_blocking=True), y[rows].to(dev, non_blocking=True)
                 if cfg.channels_last:
                     x = x.contiguous(memory_format=torch.channels_last)
-                lr = lr_at(step, total, warmup, cfg.lr, cfg.lr_end)
+                lr = lr_at(step, total, warmup, cfg.lr, cfg.final_lr_fraction)
                 for g in opt.param_groups:
                     g["lr"] = lr
                 if ranks.launched:
                     torch.manual_seed(step_seed(recipe.seed, ranks.rank, step))
-                losses = train_step(model, opt, x, y, step_subnets(recipe, step, spe, distance), cfg, sync)
+                subnets = step_subnets(recipe, step, spe, distance)
+                if len(subnets) > 1:  # not in the largest-only warm-up
+                    subnets += [lowest_loss(c, lambda s: batch_loss(model, x, y, s)) for c in
+                                band_draws(bands, step, recipe.seed, cfg.target_subnets, cfg.target_candidates)]
+                losses = train_step(model, opt, x, y, subnets, cfg, sync)
                 step += 1
                 ips = seen / (time.perf_counter() - t0)
                 bar.update(1)

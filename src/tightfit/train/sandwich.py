@@ -1,7 +1,8 @@
 """One training step: the sandwich rule with in-place distillation (Yu & Huang 2019).
 
-The largest subnet learns from the labels; the smallest and N random subnets learn from the
-largest's detached soft predictions; gradients accumulate and one optimizer step follows.
+The largest subnet learns from the labels; the smallest, N random subnets and the targets' band
+subnets (targets.py) learn from the largest's detached soft predictions, the labels, or a mix
+(distill_weight); gradients accumulate and one optimizer step follows.
 """
 from __future__ import annotations
 
@@ -98,6 +99,16 @@ def distill_loss(logits: torch.Tensor, teacher_logits: torch.Tensor, kind: str =
     return per_row.mean() * t * t
 
 
+def subnet_loss(logits: torch.Tensor, y: torch.Tensor, teacher: torch.Tensor | None, cfg: TrainConfig) -> torch.Tensor:
+    """The largest (no teacher) and, without distillation, every subnet learn from the labels; with
+    it, the others learn w * distillation + (1 - w) * labels, w = distill_weight (1: teacher only)."""
+    w = cfg.distill_weight if cfg.distill and teacher is not None else 0.0
+    loss = distill_loss(logits, teacher, cfg.distill_loss, cfg.distill_temperature) if w > 0 else 0.0
+    if w < 1:
+        loss = w * loss + (1 - w) * F.cross_entropy(logits, y, label_smoothing=cfg.label_smoothing)
+    return loss
+
+
 def sandwich_backward(model: Supernet, x: torch.Tensor, y: torch.Tensor, subnets: list[Subnet],
                       cfg: TrainConfig) -> dict[str, float]:
     """Forward and backward every subnet of the sandwich, gradients summing in .grad;
@@ -111,10 +122,7 @@ def sandwich_backward(model: Supernet, x: torch.Tensor, y: torch.Tensor, subnets
         # Mixed precision on CUDA only; CPU trains in fp32 so results are exactly reproducible.
         with torch.autocast("cuda", dtype=torch.bfloat16, enabled=x.is_cuda):
             logits = model(x).float()
-        if i == 0 or not cfg.distill:
-            loss = F.cross_entropy(logits, y, label_smoothing=cfg.label_smoothing)
-        else:
-            loss = distill_loss(logits, teacher, cfg.distill_loss, cfg.distill_temperature)
+        loss = subnet_loss(logits, y, None if i == 0 else teacher, cfg)
         if i == 0:
             teacher = logits.detach()
         loss.backward()
