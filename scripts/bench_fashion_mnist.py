@@ -292,7 +292,7 @@ def write_baselines(run: Path, models: list[dict], recipe) -> Path:
 
 def protocol_for(threads: int, smoke: bool):
     from tightfit.ondevice.timing import Protocol
-    return (Protocol(threads=threads, repeats=1, timed_runs=20, timed_seconds=0.1, warmup_runs=5) if smoke
+    return (Protocol(threads=threads, repeats=1, time_runs=20, time_seconds=0.1, settle_runs=5) if smoke
             else Protocol(threads=threads))
 
 

@@ -17,7 +17,7 @@ out = run / "latency" / f"cheap{secs}.json"
 t0 = time.perf_counter()
 with tempfile.TemporaryDirectory() as tmp:
     b = write_bundle(run, Path(tmp) / "probe", n_subnets=8, progress=False)
-    run_runner(b, out, ["--threads", "1", "--layer-timed-seconds", secs])
+    run_runner(b, out, ["--threads", "1", "--layer-time-seconds", secs])
 print(f"profile with layer seconds {secs}: {time.perf_counter() - t0:.0f} s wall")
 recipe, _ = load_source(run)
 check = json.loads((run / "latency" / "checks" / "host.json").read_text())

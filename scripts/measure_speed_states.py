@@ -29,7 +29,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "src"))
 
-from tightfit.ondevice.timing import Protocol, make_session, random_input, warm_up  # noqa: E402
+from tightfit.ondevice.timing import Protocol, make_session, random_input, settle  # noqa: E402
 
 SECONDS = (0.25, 0.5, 1.0, 2.0, 4.0, 8.0)
 REPEATS = (1, 3, 5)
@@ -43,7 +43,7 @@ def child(paths: list[str], seconds: float, out: str) -> None:
     sessions = [make_session(p, protocol) for p in paths]
     feeds = [random_input(s, 1, seed=i) for i, s in enumerate(sessions)]
     for s, f in zip(sessions, feeds):
-        warm_up(s, f, protocol)
+        settle(s, f, protocol)
     traces: list[list[tuple[float, float]]] = [[] for _ in paths]
     t_start = perf_counter()
     rng = np.random.default_rng(0)

@@ -26,6 +26,7 @@ import torch
 from PIL import Image
 
 from helpers import TINY, recipe_toml
+from tightfit.ondevice.files import TABLE_VERSION
 
 SRC = Path(__file__).resolve().parents[1] / "src"
 DELETE = object()
@@ -104,7 +105,7 @@ class Shared:
                        for e in index["entries"]}
             self._table = self.root / "table.json"
             self._table.write_text(json.dumps({
-                "format": "tightfit-latency-table", "version": 1, "space_hash": index["space_hash"],
+                "format": "tightfit-latency-table", "version": TABLE_VERSION, "space_hash": index["space_hash"],
                 "hardware": {"hostname": "synthetic"}, "protocol": {"percentile": 90.0}, "entries": entries}))
             load_predictor(load_recipe(self.run / "recipe.toml"), self._table)  # control: accepted as is
         return self._table
@@ -174,7 +175,7 @@ class Env:
         return path
 
     def table(self, **fields) -> Path:
-        doc = {"format": "tightfit-latency-table", "version": 1, "space_hash": "0123456789abcdef",
+        doc = {"format": "tightfit-latency-table", "version": TABLE_VERSION, "space_hash": "0123456789abcdef",
                "hardware": {"hostname": "elsewhere"}, "protocol": {"percentile": 90.0},
                "entries": {"stem": {"kind": "layer", "meta": {}, **dict.fromkeys(
                    ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "budget_stat_ms"), 0.1)}}}
@@ -325,6 +326,9 @@ CASES = [
     Case("table-malformed-json", ("check-latency", "run", "--table", "table.json"),
          ("is not valid JSON", "re-measure it"),
          lambda env: (env.run(), (env.tmp / "table.json").write_text('{"format": "tightfit-lat'))),
+    Case("table-older-version", ("check-latency", "run", "--table", "table.json"),
+         ("written by an older version of tightfit", "measure it again"),
+         lambda env: (env.run(), env.table(version=1))),
     Case("search-budget-not-a-duration", _search("fast"), ("budget 'fast' is not a duration", "0.3ms"),
          lambda env: (env.run(), env.table())),
     Case("search-budget-zero", _search("0ms"), ("budget '0ms' must be greater than zero", "0.3ms"),
@@ -340,6 +344,9 @@ CASES = [
          lambda env: (env.export() / "manifest.json").unlink()),
     Case("verify-manifest-not-json", ("verify", "exports/host-1ms"), ("not valid JSON", "restore it"),
          lambda env: (env.export() / "manifest.json").write_text('{"format": ')),
+    Case("verify-manifest-older-version", ("verify", "exports/host-1ms"),
+         ("written by an older version of tightfit", "export the model again"),
+         lambda env: (env.export(), env.manifest(lambda m: m.update(version=2)))),
     Case("verify-manifest-missing-field", ("verify", "exports/host-1ms"), ("lacks budget.ms", "restore the manifest"),
          lambda env: (env.export(), env.manifest(lambda m: m["budget"].pop("ms")))),
     Case("verify-onnx-changed", ("verify", "exports/host-1ms"), ("changed after export", "restore the exported file"),

@@ -22,6 +22,7 @@ from tightfit.model.arithmetic import conv_out
 from tightfit.latency.table import load_table, profile_host
 from tightfit.ondevice import runner
 from tightfit.model.extract import extract_subnet
+from tightfit.ondevice.files import TABLE_VERSION
 from tightfit.ondevice.timing import Protocol
 from tightfit.model.space import space_hash
 
@@ -184,7 +185,7 @@ def synthetic_table(bundle: Path, tmp: Path, fit=lambda x: x, **overrides) -> Pa
             v = rng.randint(1, 50) / 1000 + (0.3 if e["id"].startswith("passthrough") else 0.5)
             entries[e["id"]] = {"kind": "layer", "meta": e["meta"], **dict.fromkeys(
                 ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "budget_stat_ms"), v)}
-    table = {"format": "tightfit-latency-table", "version": 1, "space_hash": index["space_hash"],
+    table = {"format": "tightfit-latency-table", "version": TABLE_VERSION, "space_hash": index["space_hash"],
              "hardware": {"hostname": "synthetic"}, "protocol": Protocol().to_dict(), "entries": entries}
     table.update(overrides)
     path = tmp / "synthetic.json"

@@ -5,6 +5,7 @@ from __future__ import annotations
 import ast
 import json
 import os
+import re
 import subprocess
 import sys
 import zipfile
@@ -17,14 +18,15 @@ from onnx import TensorProto, helper, numpy_helper
 
 from helpers import torch_shadowed_env
 from tightfit.ondevice import runner
+from tightfit.ondevice.files import TABLE_VERSION
 from tightfit.ondevice.repeats import combine_repeats, measure_repeated
 from tightfit.ondevice.timing import Protocol, make_session, measure_interleaved, random_input, summarize
 
 SRC = str(Path(__file__).resolve().parents[1] / "src")
-TINY = Protocol(warmup_runs=5, settle_window=5, warmup_limit=40, timed_runs=30, timed_seconds=0.05,
-                layer_timed_runs=10, layer_timed_seconds=0.01, repeats=1)
-TINY_FLAGS = ["--quick", "--timed-runs", "20", "--timed-seconds", "0.05", "--layer-timed-runs", "10",
-              "--layer-timed-seconds", "0.01", "--warmup-runs", "5", "--warmup-limit", "40"]
+TINY = Protocol(settle_runs=5, settle_window=5, settle_limit=40, time_runs=30, time_seconds=0.05,
+                layer_time_runs=10, layer_time_seconds=0.01, repeats=1)
+TINY_FLAGS = ["--quick", "--time-runs", "20", "--time-seconds", "0.05", "--layer-time-runs", "10",
+              "--layer-time-seconds", "0.01", "--settle-runs", "5", "--settle-limit", "40"]
 
 
 def matmul_model(path: Path, width: int, depth: int = 1) -> str:
@@ -87,7 +89,7 @@ def test_protocol_round_trip_records_session_settings():
     d = p.to_dict()
     assert Protocol.from_dict(d) == p
     assert d["graph_optimization"] == "ORT_ENABLE_ALL" and d["execution_mode"] == "ORT_SEQUENTIAL"
-    assert d["layer_timed_seconds"] == 0.05 and d["timed_runs"] == 200 and d["batch"] == 1
+    assert d["layer_time_seconds"] == 0.05 and d["time_runs"] == 200 and d["batch"] == 1
 
 
 def test_random_input_uses_batch_for_symbolic_axis(models):
@@ -97,8 +99,8 @@ def test_random_input_uses_batch_for_symbolic_axis(models):
 
 def test_one_model_warms_up_then_meets_both_minimums(models):
     r = measure_interleaved([models["fast"]], TINY)[models["fast"]]
-    assert r["runs"] >= TINY.timed_runs and r["total_s"] >= TINY.timed_seconds
-    assert r["warmup_runs"] >= max(TINY.warmup_runs, 2 * TINY.settle_window)
+    assert r["runs"] >= TINY.time_runs and r["total_s"] >= TINY.time_seconds
+    assert r["settle_runs"] >= max(TINY.settle_runs, 2 * TINY.settle_window)
 
 
 @pytest.mark.timing
@@ -108,8 +110,8 @@ def test_interleaved_returns_every_path_and_slow_model_is_slower(models):
     paths = [models["fast"], models["slow"]]
     res = measure_interleaved(paths, TINY, chunk=5, layers={models["fast"]})
     assert set(res) == set(paths)
-    assert res[models["fast"]]["runs"] >= TINY.layer_timed_runs
-    assert res[models["slow"]]["runs"] >= TINY.timed_runs
+    assert res[models["fast"]]["runs"] >= TINY.layer_time_runs
+    assert res[models["slow"]]["runs"] >= TINY.time_runs
     assert res[models["slow"]]["p50_ms"] > 3 * res[models["fast"]]["p50_ms"]
 
 
@@ -152,10 +154,10 @@ def test_combine_flags_repeats_that_disagree_and_not_those_that_agree():
 
 def check_table(path: Path) -> dict:
     table = json.loads(path.read_text())
-    assert table["format"] == "tightfit-latency-table" and table["version"] == 1
+    assert table["format"] == "tightfit-latency-table" and table["version"] == TABLE_VERSION
     assert table["space_hash"] == "abc123" and table["created"]
     assert {"cpu_model", "logical_cores", "onnxruntime", "numpy", "ort_providers"} <= set(table["hardware"])
-    assert table["protocol"]["layer_timed_seconds"] == 0.01 and table["protocol"]["threads"] == 1
+    assert table["protocol"]["layer_time_seconds"] == 0.01 and table["protocol"]["threads"] == 1
     assert set(table["entries"]) == {"fast", "slow"}
     fast, slow = table["entries"]["fast"], table["entries"]["slow"]
     assert fast["kind"] == "layer" and slow["kind"] == "subnet" and slow["meta"] == {"name": "slow"}
@@ -251,7 +253,19 @@ def test_ondevice_modules_import_only_stdlib_numpy_onnxruntime():
 
 def test_runner_help_explains_itself():
     proc = run_cli(["--help"])
-    assert proc.returncode == 0 and "tightfit-probe-bundle" in proc.stdout and "--layer-timed-seconds" in proc.stdout
+    assert proc.returncode == 0 and "tightfit-probe-bundle" in proc.stdout and "--layer-time-seconds" in proc.stdout
+
+
+def test_runner_help_states_the_defaults_it_runs_with():
+    """Each protocol flag's help names the default the runner then uses (the help once said
+    --layer-timed-seconds defaulted to 0.2 while 0.05 was used): help text read against behaviour."""
+    text = " ".join(run_cli(["--help"]).stdout.split("options:")[-1].split())
+    used = runner.protocol_from_args(runner._parser().parse_args(["bundle", "--out", "t.json"]))
+    for name in runner.FLAGS:
+        flag = f"--{name.replace('_', '-')}"
+        stated = re.search(re.escape(flag) + r" [A-Z_]+ [^(]*\(default ([0-9.]+)\)", text)
+        assert stated, f"{flag} has no stated default in --help"
+        assert float(stated.group(1)) == getattr(used, name), flag
 
 
 def test_runner_works_with_torch_unimportable(tmp_path, models):

@@ -60,8 +60,8 @@ class FakeTable:
     def __init__(self, name: str, device: dict):
         from tightfit.ondevice.timing import Protocol
         self.name, self.hardware, self.entries = name, device, {}
-        self.protocol = Protocol(warmup_runs=10, settle_window=5, warmup_limit=60, timed_runs=50,
-                                 timed_seconds=0.1).to_dict()
+        self.protocol = Protocol(settle_runs=10, settle_window=5, settle_limit=60, time_runs=50,
+                                 time_seconds=0.1).to_dict()
 
 
 class MacsPredictor:

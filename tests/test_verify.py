@@ -25,7 +25,7 @@ from tightfit.ondevice.hardware import describe_hardware
 from tightfit.ondevice.timing import Protocol
 
 SRC = str(Path(__file__).resolve().parents[1] / "src")
-TINY = Protocol(warmup_runs=5, settle_window=5, warmup_limit=40, timed_runs=30, timed_seconds=0.05, repeats=1)
+TINY = Protocol(settle_runs=5, settle_window=5, settle_limit=40, time_runs=30, time_seconds=0.05, repeats=1)
 CLASSES = ["bolt", "nut", "washer"]
 SIZE = 12
 MEAN, STD = [0.5, 0.4, 0.3], [0.25, 0.2, 0.3]

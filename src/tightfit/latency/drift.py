@@ -45,7 +45,7 @@ def write_subnet_onnx(supernet: Supernet, subnets: Sequence[Subnet], folder: Pat
 def drift_protocol(table_protocol: dict[str, Any]) -> Protocol:
     """The table's protocol, shortened: two fresh processes, a second per model per repeat."""
     p = Protocol.from_dict(table_protocol)
-    return replace(p, repeats=min(p.repeats, 2), timed_seconds=min(p.timed_seconds, 1.0), timed_runs=min(p.timed_runs, 100))
+    return replace(p, repeats=min(p.repeats, 2), time_seconds=min(p.time_seconds, 1.0), time_runs=min(p.time_runs, 100))
 
 
 def drift_ratio(now_ms: Sequence[float], then_ms: Sequence[float]) -> Optional[float]:

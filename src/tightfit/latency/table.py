@@ -19,7 +19,8 @@ from pathlib import Path
 from typing import Any
 
 from tightfit.errors import UserError
-from tightfit.ondevice.files import TABLE_FORMAT, device_name
+from tightfit.ondevice.files import TABLE_FORMAT, TABLE_VERSION, device_name, older_version
+
 STATS = ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "budget_stat_ms")
 _PACKAGE_ROOT = str(Path(__file__).resolve().parents[2])  # folder that holds tightfit/
 
@@ -72,8 +73,9 @@ def load_table(path: str | Path, expected_space_hash: str | None = None) -> Late
     if not isinstance(data, dict) or data.get("format") != TABLE_FORMAT:
         got = data.get("format") if isinstance(data, dict) else type(data).__name__
         raise _bad(path, f"has format {got!r}, not {TABLE_FORMAT!r}")
-    if data.get("version") != 1:
-        raise _bad(path, f"has version {data.get('version')!r}; this tightfit reads version 1")
+    if data.get("version") != TABLE_VERSION:
+        raise UserError(older_version(f"latency table {path}", "table", data.get("version"), TABLE_VERSION,
+                                      "measure it again with the on-device runner or 'tightfit profile'"))
     for key, kind in (("space_hash", str), ("entries", dict), ("hardware", dict), ("protocol", dict)):
         if not isinstance(data.get(key), kind):
             raise _bad(path, f"has no valid '{key}'")

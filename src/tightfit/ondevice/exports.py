@@ -10,7 +10,7 @@ from pathlib import Path
 
 import onnxruntime as ort
 
-from tightfit.ondevice.files import MANIFEST_FORMAT, MANIFEST_VERSION
+from tightfit.ondevice.files import MANIFEST_FORMAT, MANIFEST_VERSION, older_version
 from tightfit.ondevice.timing import Protocol, make_session, random_input
 
 REQUIRED = {  # section -> fields verify relies on; the rest of the manifest is informational
@@ -53,8 +53,8 @@ def read_manifest(folder: Path) -> dict:
     if not isinstance(m, dict) or m.get("format") != MANIFEST_FORMAT:
         raise VerifyError(f"{path} is not a {MANIFEST_FORMAT} file; restore it from the export")
     if m.get("version") != MANIFEST_VERSION:
-        raise VerifyError(f"{path} is manifest version {m.get('version')!r}; this verify reads version "
-                          f"{MANIFEST_VERSION}: export the model again with this tightfit ('tightfit cut' or 'tightfit search')")
+        raise VerifyError(older_version(path, "manifest", m.get("version"), MANIFEST_VERSION,
+                                        "export the model again with this tightfit ('tightfit cut' or 'tightfit search')"))
     for key in ("model_file", "sha256"):
         if not isinstance(m.get(key), str) or not m[key]:
             raise VerifyError(f"{path} lacks '{key}'; restore the manifest from the export")

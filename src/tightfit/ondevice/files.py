@@ -16,9 +16,18 @@ from typing import Any, Callable
 # The formats the tool writes; each file carries {"format": NAME, "version": N}.
 BUNDLE_FORMAT = "tightfit-probe-bundle"
 TABLE_FORMAT = "tightfit-latency-table"
+TABLE_VERSION = 2  # 2: protocol keys settle_*/time_* (were warmup_*/timed_*)
 MANIFEST_FORMAT = "tightfit-export-manifest"
-MANIFEST_VERSION = 2  # 2: layer fields spelled out, subnet keys as expansion:kernel (commit after 7a834f7)
+MANIFEST_VERSION = 3  # 2: layer fields spelled out, subnet keys as expansion:kernel; 3: protocol keys settle_*/time_*
 VERDICT_FORMAT = "tightfit-verify-verdict"
+VERDICT_VERSION = 2  # 2: protocol keys settle_*/time_*
+
+
+def older_version(path: str | os.PathLike, what: str, version: Any, reads: int, remake: str) -> str:
+    """The one line for a file of another version: which file, which versions, how to make it again."""
+    age = "an older" if isinstance(version, int) and version < reads else "another"
+    return (f"{path} was written by {age} version of tightfit ({what} version {version!r}; this one reads "
+            f"version {reads}): {remake}")
 
 
 def atomic_write(path: str | os.PathLike, write: Callable[[str], None]) -> Path:

@@ -122,7 +122,7 @@ def describe_states(times_ms: np.ndarray, percentile: float = 90.0) -> dict[str,
 def assess(combined: dict[str, Any], summaries: list[dict[str, Any]],
            protocol: Protocol) -> tuple[bool, str]:
     """Stable when a later measurement of the same kind is expected (one-sided 95 %, guard_from_spread)
-    within the protocol's tolerance of this figure, and every warm-up settled; the note says what was
+    within the protocol's tolerance of this figure, and every repeat settled; the note says what was
     seen either way. Not the range of the repeats: five processes that span 18 % still pin the pooled
     figure to a few percent, which is what QA's re-measurement meets."""
     problems, spread, bound = [], combined["repeat_spread"], combined.get("guard")
@@ -134,7 +134,7 @@ def assess(combined: dict[str, Any], summaries: list[dict[str, Any]],
                         f"{p} spread {100 * spread:.0f} %): the machine changed speed between processes; use more "
                         "repeats or a quieter device")
     if not all(s.get("settled", True) for s in summaries):
-        problems.append(f"warm-up did not settle within {protocol.warmup_limit} runs")
+        problems.append(f"the running median did not settle within {protocol.settle_limit} untimed runs")
     seen = combined["states"]["text"]
     if problems:
         return False, "; ".join(problems) + f"; {seen}"

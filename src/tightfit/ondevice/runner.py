@@ -9,7 +9,7 @@ inside its single top-level folder), holding ONNX files and index.json:
 
 Latency table (written atomically to --out):
 
-  {"format": "tightfit-latency-table", "version": 1, "space_hash": "<from bundle>",
+  {"format": "tightfit-latency-table", "version": 2, "space_hash": "<from bundle>",
    "hardware": {cpu, cores, OS, versions, ...}, "protocol": {...}, "created": "<ISO time>",
    "bundle": "<path>", "entries": {"<id>": {"kind", "file", "meta", "p50_ms", "p90_ms",
    "p99_ms", "mean_ms", "min_ms", "budget_stat_ms", "budget_percentile", "cv",
@@ -17,10 +17,11 @@ Latency table (written atomically to --out):
    "stable", "note", "repeats": [...]}}}
 
 Protocol: onnxruntime CPU provider, batch 1, 1 intra-op and 1 inter-op thread,
-sequential execution, ORT_ENABLE_ALL; warm-up until the running median settles
-(>= 50 runs); then >= 200 timed runs and >= 1 s per subnet. Single-layer probes
-(kind "layer") are many and tiny, so they get their own smaller budget
-(--layer-timed-runs, --layer-timed-seconds). All entries are timed interleaved in
+sequential execution, ORT_ENABLE_ALL; settle, then time: untimed runs until the
+running median settles (--settle-runs at least, --settle-limit at most), then
+timed runs, at least --time-runs of them and --time-seconds per subnet. Single-layer
+probes (kind "layer") are many and tiny, so they get their own smaller budget
+(--layer-time-runs, --layer-time-seconds). All entries are timed interleaved in
 round-robin chunks (layers in one session, whole subnets in another), and each
 session is repeated in fresh processes (5 by default); the figures are percentiles of
 the pooled runs of every repeat. A budget is met when the budget_percentile (p90 by
@@ -43,14 +44,27 @@ from typing import Any
 import onnxruntime as ort
 
 from tightfit.ondevice.arguments import module_parser
-from tightfit.ondevice.files import BUNDLE_FORMAT, TABLE_FORMAT, check_writable, write_json
+from tightfit.ondevice.files import BUNDLE_FORMAT, TABLE_FORMAT, TABLE_VERSION, check_writable, write_json
 from tightfit.ondevice.hardware import describe_hardware
 from tightfit.ondevice.repeats import measure_repeated
 from tightfit.ondevice.timing import Protocol, make_session, random_input, stderr_progress
 
 KINDS = ("layer", "subnet")
-QUICK = dict(repeats=1, warmup_runs=10, settle_window=5, warmup_limit=100, timed_runs=50,
-             timed_seconds=0.25, layer_timed_runs=20, layer_timed_seconds=0.05)
+QUICK = dict(repeats=1, settle_runs=10, settle_window=5, settle_limit=100, time_runs=50,
+             time_seconds=0.25, layer_time_runs=20, layer_time_seconds=0.05)
+# Protocol fields the command line sets (flag: --name-with-dashes), with help; the default is the Protocol's.
+FLAGS = {
+    "threads": "intra-op threads",
+    "repeats": "fresh-process repeats; 0 or 1: one in-process run",
+    "settle_runs": "untimed runs at least before timing, until the running median settles",
+    "settle_limit": "untimed runs at most, if the running median never settles",
+    "time_runs": "timed runs at least, per subnet per repeat",
+    "time_seconds": "timed seconds at least, per subnet per repeat",
+    "layer_time_runs": "timed runs at least, per layer probe per repeat",
+    "layer_time_seconds": "timed seconds at least, per layer probe per repeat",
+    "percentile": "percentile compared with a budget",
+}
+_AT_LEAST_ONE = ("threads", "settle_limit")
 
 
 class BundleError(Exception):
@@ -158,7 +172,7 @@ def measure_bundle(bundle: Bundle, protocol: Protocol, chunk: int, source: str) 
     """Measure every entry interleaved and assemble the latency table."""
     layers = [e.path for e in bundle.entries if e.kind == "layer"]
     n_sub = len(bundle.entries) - len(layers)
-    floor_s = max(protocol.repeats, 1) * (len(layers) * protocol.layer_timed_seconds + n_sub * protocol.timed_seconds)
+    floor_s = max(protocol.repeats, 1) * (len(layers) * protocol.layer_time_seconds + n_sub * protocol.time_seconds)
     print(f"measuring {len(bundle.entries)} entries ({len(layers)} layer, {n_sub} subnet), "
           f"{max(protocol.repeats, 1)} repeat(s), at least {floor_s:.1f} s of timed runs", file=sys.stderr)
     # Layers and whole subnets are timed in separate sessions of fresh processes: a subnet
@@ -170,7 +184,7 @@ def measure_bundle(bundle: Bundle, protocol: Protocol, chunk: int, source: str) 
     if subnets:
         results.update(measure_repeated(subnets, protocol, chunk, (), stderr_progress("measure subnets")))
     return {
-        "format": TABLE_FORMAT, "version": 1, "space_hash": bundle.space_hash,
+        "format": TABLE_FORMAT, "version": TABLE_VERSION, "space_hash": bundle.space_hash,
         "hardware": describe_hardware(), "protocol": {**protocol.to_dict(), "chunk": chunk},
         "created": datetime.now(timezone.utc).isoformat(timespec="seconds"), "bundle": source,
         "entries": {e.id: {"kind": e.kind, "file": e.file, "meta": e.meta, **results[e.path]}
@@ -184,18 +198,11 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--out", type=Path, required=True, help="latency table to write (JSON)")
     p.add_argument("--quick", action="store_true",
                    help="smoke-test settings: 1 repeat, few runs (figures are not stable); other flags override")
-    for flag, typ, help_ in [
-        ("--threads", int, "intra-op threads (default 1)"),
-        ("--repeats", int, "fresh-process repeats (default 5; 0 or 1 = one in-process run)"),
-        ("--timed-runs", int, "timed runs per subnet per repeat (default 200)"),
-        ("--timed-seconds", float, "timed seconds per subnet per repeat (default 1.0)"),
-        ("--layer-timed-runs", int, "timed runs per layer probe per repeat (default 100)"),
-        ("--layer-timed-seconds", float, "timed seconds per layer probe per repeat (default 0.2)"),
-        ("--warmup-runs", int, "least warm-up runs (default 50)"),
-        ("--warmup-limit", int, "most warm-up runs if the median never settles (default 500)"),
-        ("--percentile", float, "percentile compared with a budget (default 90)"),
-    ]:
-        p.add_argument(flag, type=typ, default=None, help=help_)
+    defaults = Protocol()
+    for name, help_ in FLAGS.items():
+        value = getattr(defaults, name)
+        p.add_argument(f"--{name.replace('_', '-')}", type=type(value), default=None,
+                       help=f"{help_} (default {value:g})")
     p.add_argument("--chunk", type=int, default=10, help="timed runs per model per round-robin turn (default 10)")
     return p
 
@@ -203,11 +210,9 @@ def _parser() -> argparse.ArgumentParser:
 def protocol_from_args(args: argparse.Namespace) -> Protocol:
     """Defaults, then --quick, then explicit flags; rejects nonsense values."""
     protocol = Protocol(**QUICK) if args.quick else Protocol()
-    names = ["threads", "repeats", "timed_runs", "timed_seconds", "layer_timed_runs", "layer_timed_seconds",
-             "warmup_runs", "warmup_limit", "percentile"]
-    overrides = {n: getattr(args, n) for n in names if getattr(args, n) is not None}
+    overrides = {n: getattr(args, n) for n in FLAGS if getattr(args, n) is not None}
     for name, value in overrides.items():
-        low = 1 if name in ("threads", "warmup_limit") else 0
+        low = 1 if name in _AT_LEAST_ONE else 0
         if value < low or (name == "percentile" and value > 100):
             raise BundleError(f"--{name.replace('_', '-')} {value} is out of range (must be >= {low}"
                               + (" and <= 100)" if name == "percentile" else ")"))

@@ -1,7 +1,10 @@
-"""Timing in one process: the protocol's settings, sessions, warm-up, interleaved timed runs, summaries.
+"""Timing in one process: the protocol's settings, sessions, then settle and time, summaries.
 
-Timings on small shared CPUs drift over minutes, so candidates are measured interleaved
-(round-robin in short chunks); repeats.py repeats this in fresh processes.
+The rule is "settle, then time": each model runs untimed until its running median settles
+(at least `settle_runs`, at most `settle_limit` runs), then is timed for at least `time_runs`
+runs and `time_seconds` seconds. Timings on small shared CPUs drift over minutes, so
+candidates are timed interleaved (round-robin in short chunks); repeats.py repeats this in
+fresh processes.
 """
 from __future__ import annotations
 
@@ -44,14 +47,14 @@ class Protocol:
     threads: int = 1
     inter_op_threads: int = 1
     batch: int = 1
-    warmup_runs: int = 50
-    warmup_limit: int = 500
+    settle_runs: int = 50  # untimed runs at least, before timing
+    settle_limit: int = 500  # untimed runs at most, when the median never settles
     settle_window: int = 20
-    settle_tolerance: float = 0.02  # warm-up ends when the window median moves less than this
-    timed_runs: int = 200
-    timed_seconds: float = 1.0  # per repeat; more repeats, not more seconds, is what reproduces (DEVELOPERS.md)
-    layer_timed_runs: int = 100  # single-layer probes are many and tiny: a smaller budget each
-    layer_timed_seconds: float = 0.05  # 0.2 cost 333 s of profile for 217 entries, 0.05 124 s, no worse (DEVELOPERS.md)
+    settle_tolerance: float = 0.02  # settled when the window median moves less than this
+    time_runs: int = 200  # timed runs at least, per repeat
+    time_seconds: float = 1.0  # per repeat; more repeats, not more seconds, is what reproduces (docs/measurements.md)
+    layer_time_runs: int = 100  # single-layer probes are many and tiny: a smaller budget each
+    layer_time_seconds: float = 0.05  # 0.2 cost 333 s of profile for 217 entries, 0.05 124 s, no worse (docs/measurements.md)
     rewarm_runs: int = 1  # untimed runs at the start of each chunk, after switching models
     repeats: int = 5  # fresh processes, pooled
     percentile: float = 90.0  # a budget is met when this percentile <= budget
@@ -136,16 +139,16 @@ def _run_chunk(session: ort.InferenceSession, feeds: dict, n: int) -> list[float
     return out
 
 
-def warm_up(session: ort.InferenceSession, feeds: dict, protocol: Protocol) -> tuple[int, bool]:
-    """Run until the median of the last window is within tolerance of the window before.
+def settle(session: ort.InferenceSession, feeds: dict, protocol: Protocol) -> tuple[int, bool]:
+    """Run untimed until the median of the last window is within tolerance of the window before.
 
     Returns (runs used, settled). The first call is several times slower than
-    steady state and the next few still settle, so a fixed tiny warm-up is not enough.
+    steady state and the next few still settle, so a fixed tiny number of runs is not enough.
     """
     w = max(protocol.settle_window, 1)
-    need = max(protocol.warmup_runs, 2 * w)
+    need = max(protocol.settle_runs, 2 * w)
     times: list[float] = []
-    while len(times) < protocol.warmup_limit:
+    while len(times) < protocol.settle_limit:
         times += _run_chunk(session, feeds, 1)
         if len(times) >= need:
             before, last = np.median(times[-2 * w:-w]), np.median(times[-w:])
@@ -157,14 +160,14 @@ def warm_up(session: ort.InferenceSession, feeds: dict, protocol: Protocol) -> t
 def _minimums(protocol: Protocol, is_layer: bool) -> tuple[int, float]:
     """(min runs, min seconds) for one entry."""
     if is_layer:
-        return protocol.layer_timed_runs, protocol.layer_timed_seconds
-    return protocol.timed_runs, protocol.timed_seconds
+        return protocol.layer_time_runs, protocol.layer_time_seconds
+    return protocol.time_runs, protocol.time_seconds
 
 
 def measure_interleaved(paths: list[str], protocol: Protocol, chunk: int = 10,
                         layers: Collection[str] = (), progress: Optional[Progress] = None,
                         ) -> dict[str, dict[str, Any]]:
-    """Load every model in one process, warm each, then time them round-robin in chunks.
+    """Load every model in one process, settle each, then time them round-robin in chunks.
 
     Interleaving makes slow drift (thermal, neighbours, frequency) hit all
     candidates alike, so their ratios stay meaningful even when absolute figures move.
@@ -174,10 +177,10 @@ def measure_interleaved(paths: list[str], protocol: Protocol, chunk: int = 10,
     paths = list(dict.fromkeys(paths))
     sessions = {p: make_session(p, protocol) for p in paths}
     feeds = {p: random_input(s, protocol.batch, seed=i) for i, (p, s) in enumerate(sessions.items())}
-    warm = {}
+    settled = {}
     for i, p in enumerate(paths):
-        warm[p] = warm_up(sessions[p], feeds[p], protocol)
-        _report(progress, "warm-up", i + 1, len(paths))
+        settled[p] = settle(sessions[p], feeds[p], protocol)
+        _report(progress, "settle", i + 1, len(paths))
     times: dict[str, list[float]] = {p: [] for p in paths}
     totals = dict.fromkeys(paths, 0.0)
     pending = list(paths)
@@ -188,12 +191,12 @@ def measure_interleaved(paths: list[str], protocol: Protocol, chunk: int = 10,
             new = _run_chunk(sessions[p], feeds[p], chunk)
             times[p] += new
             totals[p] += sum(new)
-            timed_runs, min_s = _minimums(protocol, p in layers)
-            if len(times[p]) >= timed_runs and totals[p] >= min_s:
+            min_runs, min_s = _minimums(protocol, p in layers)
+            if len(times[p]) >= min_runs and totals[p] >= min_s:
                 pending.remove(p)
-                _report(progress, "timed", len(paths) - len(pending), len(paths))
+                _report(progress, "time", len(paths) - len(pending), len(paths))
     return {p: {**summarize(np.array(times[p]), protocol.percentile),
-                "warmup_runs": warm[p][0], "settled": warm[p][1],
+                "settle_runs": settled[p][0], "settled": settled[p][1],
                 "times_ms": [round(t * 1e3, 6) for t in times[p]]} for p in paths}
 
 

@@ -21,7 +21,7 @@ from typing import Any
 
 from tightfit.ondevice.arguments import module_parser
 from tightfit.ondevice.exports import Export, VerifyError, load_export
-from tightfit.ondevice.files import VERDICT_FORMAT, check_writable, write_json
+from tightfit.ondevice.files import VERDICT_FORMAT, VERDICT_VERSION, check_writable, write_json
 from tightfit.ondevice.hardware import describe_hardware
 from tightfit.ondevice.labelled import accuracy_table, folder_accuracy
 from tightfit.ondevice.repeats import measure_repeated
@@ -61,8 +61,8 @@ def measure(exports: list[Export], protocols: list[Protocol]) -> dict[Path, dict
         groups.setdefault(p, []).append(str(e.model))
     out: dict[Path, dict] = {}
     for p, paths in groups.items():
-        print(f"measuring {len(paths)} model(s): {max(p.repeats, 1)} repeat(s), at least {p.timed_seconds:g} s "
-              f"and {p.timed_runs} runs each, {p.threads} thread(s)", file=sys.stderr)
+        print(f"measuring {len(paths)} model(s): {max(p.repeats, 1)} repeat(s), at least {p.time_seconds:g} s "
+              f"and {p.time_runs} runs each, {p.threads} thread(s)", file=sys.stderr)
         res = measure_repeated(paths, p, progress=stderr_progress("verify"))
         out.update({Path(k).resolve(): v for k, v in res.items()})
     return out
@@ -150,7 +150,7 @@ def run(args: argparse.Namespace) -> int:
     print(format_table(rows))
     if accuracy:
         print("\n" + accuracy_table(exports, accuracy))
-    verdict = {"format": VERDICT_FORMAT, "version": 1, "pass": all(r["pass"] is not False for r in rows),
+    verdict = {"format": VERDICT_FORMAT, "version": VERDICT_VERSION, "pass": all(r["pass"] is not False for r in rows),
                "quick": bool(args.quick), "hardware": hardware,
                "created": datetime.now(timezone.utc).isoformat(timespec="seconds"), "models": rows}
     try:

@@ -59,8 +59,8 @@ UNVERIFIED = "unverified: measure on the device with tightfit verify"
 def verification_protocol(table_protocol: dict[str, Any]) -> Protocol:
     """The table's protocol, with at least 2 fresh-process repeats and the full per-model timing."""
     p, full = Protocol.from_dict(table_protocol), Protocol()
-    return replace(p, repeats=max(2, p.repeats), timed_seconds=max(p.timed_seconds, full.timed_seconds),
-                   timed_runs=max(p.timed_runs, full.timed_runs))
+    return replace(p, repeats=max(2, p.repeats), time_seconds=max(p.time_seconds, full.time_seconds),
+                   time_runs=max(p.time_runs, full.time_runs))
 
 
 class _Measurer:
