@@ -101,9 +101,11 @@ def test_generous_budget_passes_and_verdict_goes_beside_exports(tmp_path, model_
         m = row["measured"]
         assert row["sha256_ok"] and row["pass"] and row["threads_override"] is None
         assert 0 < m["p50_ms"] <= m["p90_ms"] <= m["p99_ms"]
-        # margin definition from the brief: (budget - measured percentile) / budget
+        # the margin is the share of the budget left, written out by hand: (budget - measured figure) / budget;
+        # the figure is the budget's percentile (docs/contract.md, latency protocol: "A budget is met when
+        # p90 ≤ budget (percentile configurable)"), p90 here
         assert row["margin"] == pytest.approx((row["budget_ms"] - m["budget_stat_ms"]) / row["budget_ms"])
-        assert m["budget_stat_ms"] == pytest.approx(m["p90_ms"])  # budget percentile is 90 here
+        assert m["budget_stat_ms"] == pytest.approx(m["p90_ms"])
         assert row["noisy"] is True  # one repeat cannot show drift between processes
     assert out.count("PASS noisy") == 2 and "cpu-500ms" in out
 
