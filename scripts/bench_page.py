@@ -210,7 +210,8 @@ def _ranking_lines(r: dict | None) -> list[str]:
         return []
     return [f"The search ranks candidates on {r['images']:,} validation images and re-scores the best on all "
             f"{r['whole_images']:,}. Over {r['subnets']} random subnets the cheap score against the whole split: "
-            f"Kendall τ {_fmt(r['kendall_tau'], '.3f', 'undefined')}, mean |difference| {r['mean_abs_diff_points']:.2f} points; the best by "
+            f"Kendall τ {_fmt(r['kendall_tau'], '.3f', 'undefined')}, "
+            f"mean |difference| {r['mean_abs_diff_points']:.2f} points; the best by "
             f"the whole split was {'' if r['best_whole_in_cheap_top'] else 'NOT '}among the cheap score's top "
             f"re-scored; CPU-s per subnet {r['cheap_cpu_s_per_subnet']:.2f} (cheap) vs {r['whole_cpu_s_per_subnet']:.2f} "
             "(whole, with a second BN recalibration that reuses the first's cached prefix).", ""]

@@ -88,7 +88,8 @@ def compare(args: argparse.Namespace) -> list[dict]:
                "seconds": time.perf_counter() - t0, "fresh": fitness.fresh - fresh0}
         rows.append(row)
         print(f"seed {seed}: evolution {row['evolution']:.2f}  random {row['random']:.2f}  "
-              f"random x{args.factor} {row['random_x']:.2f}  random in band {row['random_band']:.2f}  (evolution's pick predicts {row['evo_ms']:.4f} ms; "
+              f"random x{args.factor} {row['random_x']:.2f}  random in band {row['random_band']:.2f}  "
+              f"(evolution's pick predicts {row['evo_ms']:.4f} ms; "
               f"{row['fresh']} new evaluations in {row['seconds']:.0f} s)", flush=True)
         if held is not None:
             h = row["held"]

@@ -80,7 +80,10 @@ def test_macs_target_draws_the_nearest_of_the_candidates():
     from tightfit.model.arithmetic import architecture_size
     recipe = tiny_recipe(random_subnets=3, random_macs_target=0.3, random_candidates=5)
     space = recipe.space
-    macs = lambda s: architecture_size(space, s, 3, 16, 12)[1]
+
+    def macs(s):
+        return architecture_size(space, s, 3, 16, 12)[1]
+
     lo, hi = macs(space.smallest()), macs(space.largest())
     distance = macs_distance(recipe, 12, 0.3)
     assert distance(space.smallest()) == pytest.approx(0.3) and distance(space.largest()) == pytest.approx(0.7)
