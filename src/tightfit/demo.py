@@ -1,7 +1,7 @@
 """`tightfit demo`: the user's whole day on the built-in dataset, in a few minutes on 2 cores.
 
-train → cut three reference subnets → profile this machine → search two budgets →
-export with manifests → verify (QA re-measurement) → report.
+profile this machine from the recipe → train for two budgets → cut three reference subnets →
+search the two budgets → export with manifests → verify (QA re-measurement) → report.
 """
 from __future__ import annotations
 
@@ -15,6 +15,7 @@ from tightfit.data.dataset import load_dataset
 from tightfit.errors import UserError
 from tightfit.recipe import load_recipe
 from tightfit.rundir import load_trained
+from tightfit.train.commands import with_command_line_targets
 from tightfit.train.loop import train
 
 
@@ -47,22 +48,23 @@ def run_demo(run_dir: str | Path | None = None, recipe_path: str | Path | None =
           f"{ds.num_classes} classes ({', '.join(ds.class_names)}); generated in {time.perf_counter() - t0:.1f} s")
     print(f"search space: {recipe.space.size():,} subnets")
 
-    _stage("1. train the supernet (sandwich rule + in-place distillation)", t0)
-    train(recipe, run_dir, recipe_path=recipe_path, ds=ds)
-    run = load_trained(run_dir)
-
-    _stage("2. cut smallest / middle / largest (BN recalibration, static net, ONNX)", t0)
-    results = export_cuts(run, ds, [(name, getattr(recipe.space, name)()) for name in ("smallest", "middle", "largest")],
-                          run_dir / "exports" / "reference")
-    print(format_table(results))
-
-    _stage("3. profile this machine (probe bundle + on-device runner)", t0)
+    _stage("1. profile this machine from the recipe (probe bundle + on-device runner; no training needed)", t0)
     from tightfit.latency.predict import load_predictor
     from tightfit.latency.table import profile_host
-    table = profile_host(run_dir, name="this-host", progress=False)
+    table = profile_host(recipe_path, progress=False, out=run_dir / "latency" / "this-host.json")
     predictor = load_predictor(recipe, str(table), target="budget_stat_ms")
     budgets = _budgets_between(predictor, recipe.space)
     print(f"latency table: {table}  (budgets chosen inside the space's range: {', '.join(budgets)})")
+
+    _stage("2. train the supernet for those budgets (sandwich rule + subnets from each budget's band)", t0)
+    recipe, targets_toml = with_command_line_targets(recipe, [str(table)], budgets)
+    train(recipe, run_dir, recipe_path=recipe_path, ds=ds, extra_toml=targets_toml)
+    run = load_trained(run_dir)
+
+    _stage("3. cut smallest / middle / largest (BN recalibration, static net, ONNX)", t0)
+    results = export_cuts(run, ds, [(name, getattr(recipe.space, name)()) for name in ("smallest", "middle", "largest")],
+                          run_dir / "exports" / "reference")
+    print(format_table(results))
 
     _stage("4. search each budget, verify the top candidates by direct measurement, export", t0)
     from tightfit.search.driver import run_search
@@ -70,7 +72,7 @@ def run_demo(run_dir: str | Path | None = None, recipe_path: str | Path | None =
     from tightfit.search.commands import format_picks
     # sized for a few minutes
     settings = SearchSettings(population=8, evaluations=24, top=2, val_images=600)
-    picks = run_search(run_dir, [str(table)], budgets, settings)
+    picks = run_search(run_dir, [str(table)], [t.budget_ms for t in recipe.train.targets], settings)
     print(format_picks(picks))
 
     _stage("5. QA: re-measure every export against its manifest (tightfit verify)", t0)
