@@ -129,7 +129,7 @@ def budgets_at_members(family_p90: dict[str, float], names: tuple[str, ...]) -> 
     return dict(sorted((round(family_p90[n] * BUDGET_ROOM, 4), n) for n in names if n in family_p90))
 
 
-FINETUNE_STEPS = 200  # per pick, from its inherited weights (DEVELOPERS.md, "Fine-tuning the picks")
+FINETUNE_STEPS = 200  # per pick, from its inherited weights (docs/measurements.md, "Fine-tuning the picks: screen")
 FINETUNE_LR = 0.1
 
 

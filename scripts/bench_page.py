@@ -242,7 +242,7 @@ def _screen_lines(path: Path) -> list[str]:
             f"{doc['protocol'].get('note', '')} Validation points against the mean of two seeds of the recipe "
             f"as written (one run's noise σ {rows[0]['sigma']:.2f}, clear beyond {rows[0]['threshold']:.2f}); an "
             "\"alone\" row is that subnet trained by itself, i.e. what weight sharing costs it; an epochs row "
-            "changes the compute, so it is no lever at equal compute. DEVELOPERS.md, \"Training levers at the benchmark's "
+            "changes the compute, so it is no lever at equal compute. docs/measurements.md, \"Training levers at the benchmark's "
             "length\", has the protocol and the CPU checks.", "",
             "| change | " + " | ".join(f"Δ {c.replace('_', ' ')}" for c in COLUMNS) + " | verdict |",
             "|---|" + "---|" * len(COLUMNS) + "---|",
