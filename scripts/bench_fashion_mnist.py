@@ -540,7 +540,8 @@ def main(argv: list[str] | None = None) -> int:
     if args.smoke:  # the wiring only: one epoch whatever the family cost
         compute["epochs"] = recipe.train.epochs
     print(f"equal compute: family {compute['family_cpu_s']:.0f} CPU-s, {100 * args.reserve:.0f} % kept for profiling "
-          f"+ search and ~{ft_estimate:.0f} for fine-tuning the picks, one supernet epoch ~{compute['epoch_cpu_s']:.0f} CPU-s: {compute['epochs']:g} epochs")
+          f"+ search and ~{ft_estimate:.0f} for fine-tuning the picks, "
+          f"one supernet epoch ~{compute['epoch_cpu_s']:.0f} CPU-s: {compute['epochs']:g} epochs")
     sn_recipe = replace(recipe, train=replace(recipe.train, epochs=compute["epochs"]))
     state.phase("train supernet", lambda: train_supernet(sn_recipe, run, args.smoke))
     tables = {d: Path(state.phase(f"profile {d}", lambda d=d, t=t: str(profile_host(

@@ -66,7 +66,10 @@ def test_each_window_and_the_pool_are_the_tables_percentile_of_their_own_runs(tm
     protocol = Protocol(repeats=4, percentile=75.0)
     ctx, table, row = _pick(tmp_path, first, protocol=protocol)
     out, = confirm_picks(ctx, table, [row], measure=lambda paths, p: {paths[0]: later})
-    runs = lambda window: np.concatenate([r["times_ms"] for r in window])
+
+    def runs(window):
+        return np.concatenate([r["times_ms"] for r in window])
+
     rec = out["confirmed"]
     assert rec["first_ms"] == pytest.approx(np.percentile(runs(first), 75), abs=1e-6)
     assert rec["later_ms"] == pytest.approx(np.percentile(runs(later), 75), abs=1e-6)

@@ -83,7 +83,7 @@ def test_one_percent_over_after_pooling_is_a_miss_and_one_percent_under_fits(tmp
         ctx, table, row, first, rng = _setup(tmp_path / str(level), [level] * 5)
         const = [{**r, "times_ms": [level] * 400, "budget_stat_ms": level} for r in first]
         ctx.pick_runs[row["export_dir"]] = PickRuns(const, 0.0)
-        out, = confirm_picks(ctx, table, [row], measure=lambda paths, protocol: {paths[0]: const})
+        out, = confirm_picks(ctx, table, [row], measure=lambda paths, protocol, const=const: {paths[0]: const})
         assert out["fits"] is fits
 
 

@@ -95,8 +95,9 @@ def build_manifest(*, space: SpaceSpec, subnet: Subnet, params: int, macs: int, 
                      **({"lead": lead.to_dict()} if lead is not None else {})},
         "latency": latency,
         "budget": {"ms": None if budget_ms is None else float(budget_ms), "percentile": float(percentile),
-                   "device": device, "use": budget_use(latency, budget_ms, percentile), "rule": f"met when latency.budget_stat_ms, the p{percentile:g} of all pooled "
-                                             "timed runs, is at most ms"},
+                   "device": device, "use": budget_use(latency, budget_ms, percentile),
+                   "rule": f"met when latency.budget_stat_ms, the p{percentile:g} of all pooled "
+                           "timed runs, is at most ms"},
         "finetune": finetune,
         "software": software_versions(),
         "recipe": {"name": recipe_name, "hash": recipe_hash},

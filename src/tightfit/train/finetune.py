@@ -72,7 +72,7 @@ def finetune(run: TrainedRun, ds: Dataset, net: nn.Module, settings: FinetuneSet
     net.train()
     step, epoch, last_loss = 0, 0, float("nan")
     while step < settings.steps:
-        for x, y in train_batches(ds, data, cfg.batch_size, run.recipe.seed + SEED_OFFSET, epoch):
+        for x, _ in train_batches(ds, data, cfg.batch_size, run.recipe.seed + SEED_OFFSET, epoch):
             if step == settings.steps:
                 break
             if cfg.channels_last:

@@ -136,7 +136,8 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
     cfg = recipe.train
     spe = steps_per_epoch(ds, cfg.batch_size)
     if spe == 0:
-        raise UserError(f"train.batch_size = {cfg.batch_size} is larger than the training split ({len(ds.train_y)} images): lower train.batch_size or add data")
+        raise UserError(f"train.batch_size = {cfg.batch_size} is larger than the training split "
+                        f"({len(ds.train_y)} images): lower train.batch_size or add data")
     total = max(1, int(round(cfg.epochs * spe)))
     warmup = int(cfg.warmup_epochs * spe)
     rows = local_rows(cfg.batch_size, ranks)
@@ -166,7 +167,7 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
                     torch.manual_seed(step_seed(recipe.seed, ranks.rank, step))
                 subnets = step_subnets(recipe, step, spe, distance)
                 if len(subnets) > 1:  # not in the largest-only warm-up
-                    subnets += [lowest_loss(c, lambda s: batch_loss(model, x, y, s)) for c in
+                    subnets += [lowest_loss(c, lambda s, x=x, y=y: batch_loss(model, x, y, s)) for c in
                                 band_draws(bands, step, recipe.seed, cfg.target_subnets, cfg.target_candidates)]
                 losses = train_step(model, opt, x, y, subnets, cfg, sync)
                 step += 1
