@@ -169,7 +169,7 @@ def search(run: Path, table: Path, budgets: list[float], smoke: bool) -> list[di
         said.setdefault(current[0], []).append(line)
     threads = torch.get_num_threads()
     torch.set_num_threads(1)  # recalibration and validation: 1 thread is the fewest CPU-seconds per candidate
-    picks = run_search(run, [str(table)], [f"{b}ms" for b in budgets], settings, progress=not smoke, say=say)
+    picks = run_search(run, [str(table)], [float(b) for b in budgets], settings, progress=not smoke, say=say)
     t[current[0]] = t.get(current[0], 0.0) + time.perf_counter() - last[0]
     torch.set_num_threads(threads)
     print(format_picks(picks))
@@ -310,10 +310,7 @@ def measure_family(members: list[dict], run: Path, threads: int, smoke: bool) ->
     from tightfit.ondevice.repeats import measure_repeated
     models = family_models(members, run)
     figures = measure_repeated([m["onnx"] for m in models], protocol_for(threads, smoke))
-    return {m["name"]: figures[m["onnx"]]["p90_ms"] for m in models}
-
-
-LATENCY_FIELDS = ("p50_ms", "p90_ms", "p99_ms", "iqr_over_median", "repeat_spread", "stable", "note")
+    return {m["name"]: figures[m["onnx"]].p90_ms for m in models}
 
 
 def measure_all(picks: list[dict], members: list[dict], run: Path, recipe, smoke: bool) -> dict:
@@ -343,7 +340,7 @@ def measure_all(picks: list[dict], members: list[dict], run: Path, recipe, smoke
         protocols[device] = proto.to_dict()
         figures = measure_repeated([m["onnx"] for m in models], proto)
         for m in models:
-            m["latency"][device] = {k: figures[m["onnx"]][k] for k in LATENCY_FIELDS}
+            m["latency"][device] = figures[m["onnx"]].to_dict()
     return {"protocols": protocols, "models": models, "test_images": len(ds.test_y)}
 
 

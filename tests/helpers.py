@@ -141,3 +141,28 @@ BUDGET = 1.25  # about the 15th percentile of this space's predicted latency
 def dominated(p, others) -> bool:
     """Pareto dominance (Deb et al. 2002, Sec. II): no worse in both objectives, better in one."""
     return any(q[1] >= p[1] and q[2] <= p[2] and (q[1] > p[1] or q[2] < p[2]) for q in others)
+
+
+def steady(figure_ms: float, guard=None, percentile: float = 90.0):
+    """A latency Measurement of steady runs (every statistic ``figure_ms``), for rules that read only the
+    figure and the guard (the choice, the budget boundary)."""
+    from tightfit.ondevice.measurement import Measurement
+    f = figure_ms
+    return Measurement(f, percentile, f, f, f, f, f, f, 0.0, 0.0, 100, guard=guard, stable=True)
+
+
+def fake_pick(export_dir, *, budget_ms: float = 1.0, measurement=None, onnx_path=None, **changes):
+    """A search pick record whose files and weights are stand-ins: for the rules that read only its
+    figures (the confirmation, the corrected search); nothing here can be written."""
+    from pathlib import Path
+    from types import SimpleNamespace
+    from tightfit.export.pick import Pick
+    from tightfit.ondevice.accuracy import Accuracy
+    from tightfit.ondevice.timing import Protocol
+    export_dir = Path(export_dir)
+    fields = dict(device="host", budget_ms=budget_ms, percentile=90.0, subnet=SimpleNamespace(to_key=lambda: "1:3"),
+                  predicted_ms=0.9, score=90.0, validation=Accuracy(90, 100, "validation"),
+                  test=Accuracy(88, 100, "test"), measurement=measurement, hardware={}, protocol=Protocol(),
+                  guard=None, fits=True, note="", cut=SimpleNamespace(onnx_path=onnx_path or export_dir / "model.onnx"),
+                  net=None, export_dir=export_dir)
+    return Pick(**{**fields, **changes})

@@ -4,13 +4,15 @@ against the budget, and the choice made again. scripts/check_mutations.py lists 
 tests must catch."""
 from __future__ import annotations
 
-import json
 import time
+from dataclasses import replace
 from types import SimpleNamespace
 
 import numpy as np
 import pytest
 
+from helpers import fake_pick, steady
+from tightfit.export.pick import latency_of
 from tightfit.ondevice.timing import Protocol, summarize
 from tightfit.search.choose import PickRuns, verification_protocol
 from tightfit.search.confirm import confirm_picks, guard_floor_of
@@ -30,15 +32,11 @@ def _steady(level_ms: float, repeats: int = 5) -> list[dict]:
 def _pick(tmp_path, first: list[dict], *, at: float = 0.0, settings=SearchSettings(), protocol=Protocol(repeats=5),
           name: str = "host-1ms", verified: bool = True, chosen_here: bool = True):
     export = tmp_path / "exports" / name
-    export.mkdir(parents=True)
-    (export / "model.onnx").write_bytes(b"graph")
-    (export / "manifest.json").write_text(json.dumps({"budget": {"ms": 1.0, "percentile": protocol.percentile},
-                                                      "latency": {"predicted_ms": 0.9}}))
     runs = {str(export): PickRuns(first, at)} if chosen_here else {}
     ctx = SimpleNamespace(settings=settings, say=lambda line: None, pick_runs=runs)
     table = SimpleNamespace(name="host", protocol=protocol.to_dict())
-    row = {"device": "host", "budget_ms": 1.0, "verified": verified, "fits": True, "export_dir": str(export), "note": ""}
-    return ctx, table, row
+    pick = fake_pick(export, measurement=steady(0.9) if verified else None, percentile=protocol.percentile)
+    return ctx, table, pick
 
 
 @pytest.mark.parametrize("level, keeps, fits", [(0.94, True, True), (0.96, False, True), (1.01, False, False)])
@@ -50,11 +48,11 @@ def test_a_pick_keeps_its_guard_under_budget_less_guard_and_fits_under_the_budge
     first = _steady(level)
     ctx, table, row = _pick(tmp_path, first, settings=SearchSettings(guard=0.05))
     out, = confirm_picks(ctx, table, [row], measure=lambda paths, protocol: {paths[0]: _steady(level)})
-    assert out["measured"]["budget_stat_ms"] == pytest.approx(level)
-    assert out["confirmed"]["keeps_guard"] is keeps and out["fits"] is fits
-    assert out["guard"]["share"] == 0.05
+    assert out.measurement.figure_ms == pytest.approx(level)
+    assert out.confirmation.keeps_guard is keeps and out.fits is fits
+    assert out.guard.share == 0.05
     assert guard_floor_of(out) == (None if keeps else 0.05)
-    assert ("over its budget" in out["note"]) is (not fits)
+    assert ("over its budget" in out.note) is (not fits)
 
 
 def test_each_window_and_the_pool_are_the_tables_percentile_of_their_own_runs(tmp_path):
@@ -69,15 +67,15 @@ def test_each_window_and_the_pool_are_the_tables_percentile_of_their_own_runs(tm
 
     def runs(window):
         return np.concatenate([r["times_ms"] for r in window])
-
-    rec = out["confirmed"]
-    assert rec["first_ms"] == pytest.approx(np.percentile(runs(first), 75), abs=1e-6)
-    assert rec["later_ms"] == pytest.approx(np.percentile(runs(later), 75), abs=1e-6)
-    assert rec["pooled_ms"] == pytest.approx(np.percentile(runs(first + later), 75), abs=1e-6)
-    assert out["measured"]["budget_stat_ms"] == pytest.approx(np.percentile(runs(first + later), 75))
-    assert rec["repeats"] == 9
-    manifest = json.loads((tmp_path / "exports" / "host-1ms" / "manifest.json").read_text())
-    assert manifest["latency"]["confirmation"] == rec and manifest["latency"]["predicted_ms"] == 0.9
+    rec = out.confirmation
+    assert rec.first_ms == pytest.approx(np.percentile(runs(first), 75), abs=1e-6)
+    assert rec.later_ms == pytest.approx(np.percentile(runs(later), 75), abs=1e-6)
+    assert rec.pooled_ms == pytest.approx(np.percentile(runs(first + later), 75), abs=1e-6)
+    assert out.measurement.figure_ms == pytest.approx(np.percentile(runs(first + later), 75))
+    assert rec.repeats == 9
+    latency = latency_of(out)  # the manifest's latency section, from the record
+    assert latency["confirmation"] == rec.to_dict() and latency["predicted_ms"] == 0.9
+    assert latency["budget_stat_ms"] == out.measurement.figure_ms
 
 
 def test_the_time_between_the_windows_is_wall_clock_time_since_the_choice(tmp_path):
@@ -88,7 +86,7 @@ def test_the_time_between_the_windows_is_wall_clock_time_since_the_choice(tmp_pa
     before = time.time()
     out, = confirm_picks(ctx, table, [row], measure=lambda paths, p: {paths[0]: _steady(0.9)})
     after = time.time()
-    assert before - at - 0.1 <= out["confirmed"]["after_s"] <= after - at + 0.1
+    assert before - at - 0.1 <= out.confirmation.after_s <= after - at + 0.1
 
 
 def test_only_verified_picks_chosen_here_are_measured_again_with_the_protocol_they_were_chosen_on(tmp_path):
@@ -99,7 +97,7 @@ def test_only_verified_picks_chosen_here_are_measured_again_with_the_protocol_th
     ctx, table, row = _pick(tmp_path / "a", _steady(0.9), protocol=protocol)
     _, _, unverified = _pick(tmp_path / "b", _steady(0.9), protocol=protocol, verified=False)
     _, _, elsewhere = _pick(tmp_path / "c", _steady(0.9), protocol=protocol, chosen_here=False)
-    ctx.pick_runs[unverified["export_dir"]] = PickRuns(_steady(0.9), 0.0)  # repeats at hand, but not verified
+    ctx.pick_runs[str(unverified.export_dir)] = PickRuns(_steady(0.9), 0.0)  # repeats at hand, but not verified
     asked = []
 
     def measure(paths, p):
@@ -109,17 +107,19 @@ def test_only_verified_picks_chosen_here_are_measured_again_with_the_protocol_th
     (paths, used), = asked
     assert paths == [str(tmp_path / "a" / "exports" / "host-1ms" / "model.onnx")]
     assert used == verification_protocol(table.protocol) and used.repeats == 2
-    assert out[1] is unverified and out[2] is elsewhere and "confirmed" in out[0]
+    assert out[1] is unverified and out[2] is elsewhere and out[0].confirmation is not None
 
 
-def test_a_pick_chosen_again_after_a_lost_guard_is_fine_tuned_like_the_first(monkeypatch):
+def test_a_pick_chosen_again_after_a_lost_guard_is_fine_tuned_like_the_first(tmp_path, monkeypatch):
     # This project's rule (search/driver.py _confirm): the new pick of a budget goes through every step the
     # first one did, the fine-tune included when it is asked for.
     import tightfit.search.driver as driver
-    lost = {"budget_ms": 1.0, "confirmed": {"keeps_guard": False, "pooled_ms": 0.99}, "guard": {"share": 0.07}}
+    from tightfit.export.pick import Confirmation, Guard
+    lost = fake_pick(tmp_path / "a", measurement=steady(0.99), guard=Guard(0.07, "spread"),
+                     confirmation=Confirmation(0.9, 1.05, 0.99, 10, 60.0, keeps_guard=False))
     monkeypatch.setattr(driver, "confirm_picks", lambda ctx, table, picks: [lost])
-    monkeypatch.setattr(driver, "choose_and_export", lambda *args, **kwargs: {"budget_ms": 1.0, "fits": True})
-    monkeypatch.setattr(driver, "finetune_pick", lambda ctx, row: {**row, "finetune": "done"})
+    monkeypatch.setattr(driver, "choose_pick", lambda *args, **kwargs: fake_pick(tmp_path / "b", measurement=steady(0.8)))
+    monkeypatch.setattr(driver, "finetune_pick", lambda ctx, pick: replace(pick, finetune={"steps": 5}))
     ctx = SimpleNamespace(settings=SearchSettings(finetune_steps=5), say=lambda line: None)
     out, = driver._confirm(ctx, SimpleNamespace(name="host"), [], {1.0: []}, None)
-    assert out["finetune"] == "done" and out["chosen_again"] == lost["confirmed"]
+    assert out.finetune == {"steps": 5} and out.chosen_again == lost.confirmation

@@ -12,6 +12,7 @@ import torch
 
 from tightfit.export.manifest import Accuracy, build_manifest, latency_section, write_export
 from tightfit.ondevice.accuracy import paired_comparison
+from tightfit.ondevice.measurement import Measurement
 
 
 REQUIRED = {
@@ -42,8 +43,9 @@ def test_manifest_fields_and_sha256(tmp_path):
     sn.set_subnet(subnet)
     net = extract_subnet(sn, subnet)
     data = onnx_bytes(net, 3, 16)
-    measured = {"p50_ms": 0.1, "p90_ms": 0.12, "p99_ms": 0.2, "mean_ms": 0.11, "cv": 0.05, "iqr_over_median": 0.02,
-                "repeat_spread": 0.01, "stable": True, "note": "ok", "budget_stat_ms": 0.12}
+    measured = Measurement(figure_ms=0.12, percentile=90.0, p50_ms=0.1, p90_ms=0.12, p99_ms=0.2, mean_ms=0.11,
+                           min_ms=0.09, max_ms=0.3, cv=0.05, iqr_over_median=0.02, runs=1000, repeat_spread=0.01,
+                           stable=True, note="ok")
     lat = latency_section(measured, describe_hardware(), Protocol().to_dict(), 0.115)
     m = build_manifest(space=space, subnet=subnet, params=count_params(net), macs=count_macs(net, 3, 16),
                        onnx_data=data, channels=3, image_size=16, class_names=("a", "b", "c", "d"),
@@ -63,6 +65,8 @@ def test_manifest_fields_and_sha256(tmp_path):
     assert written["architecture"]["params"] == sum(p.numel() for p in net.parameters())
     assert {k: written["budget"][k] for k in ("ms", "percentile", "device")} == {"ms": 0.15, "percentile": 90.0, "device": "this-host"}
     assert "p90" in written["budget"]["rule"]
+    # the measurement as the runner's tables and the verdicts hold it: the record reads back unchanged
+    assert Measurement.from_dict(written["latency"]) == measured
     # Each accuracy carries its count and 95 % interval: statsmodels' proportion_confint(method="wilson") of the
     # same counts (Wilson 1927); the pick's lead over the runner-up (17 images only it gets right, none the other
     # way) is McNemar's exact test, p = 2 / 2^17 (the binomial formula by hand).
@@ -94,8 +98,9 @@ def test_manifest_unverified_latency_says_so():
     hardware, protocol = {"cpu_model": "elsewhere"}, {"threads": 1}
     lat = latency_section(None, hardware, protocol, 0.42)
     assert lat["measured"] is False and lat["stable"] is False and lat["note"] == "not measured"
-    assert all(lat[k] is None for k in ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "cv", "iqr_over_median"))
+    assert all(lat.get(k) is None for k in ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "cv", "iqr_over_median",
+                                            "budget_stat_ms"))
     assert lat["hardware"] == hardware and lat["protocol"] == protocol and math.isclose(lat["predicted_ms"], 0.42)
-    measured = latency_section({"p50_ms": 0.3, "p90_ms": 0.35, "stable": True, "note": "ok"}, hardware, protocol,
-                               0.42, "the search note")
+    figures = Measurement(0.35, 90.0, 0.3, 0.35, 0.4, 0.31, 0.29, 0.5, 0.05, 0.02, 400, stable=True, note="")
+    measured = latency_section(figures, hardware, protocol, 0.42, "the search note")
     assert measured["measured"] is True and measured["p90_ms"] == 0.35 and measured["note"] == "the search note"

@@ -3,9 +3,8 @@ the student moves toward its teacher, the export folder is rewritten consistentl
 measured latency) is unchanged, and a second request reuses the first fine-tune."""
 from __future__ import annotations
 
-import hashlib
-import json
 import shutil
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -15,8 +14,8 @@ import torch.nn.functional as F
 from helpers import perturb
 from tightfit.data.dataset import calibration_batches, eval_batches, load_dataset
 from tightfit.errors import UserError
-from tightfit.export.by_hand import cut_subnets
-from tightfit.export.finetuned import finetune_export, graph_signature
+from tightfit.export.cut import cut_one
+from tightfit.export.finetuned import finetuned_cut, graph_signature
 from tightfit.model.onnx import ort_outputs
 from tightfit.model.extract import extract_subnet
 from tightfit.train.finetune import FinetuneSettings, finetune, inherited_net, teacher_of
@@ -80,36 +79,26 @@ def test_zero_steps_leave_the_weights_as_inherited(run_copy):
     assert all(torch.allclose(net.state_dict()[k].float(), before[k].float(), atol=1e-6) for k in before)
 
 
-def test_a_fine_tuned_export_keeps_its_graph_and_latency_claim_and_records_both_accuracies(run_copy):
-    exports = run_copy / "exports"
-    cut_subnets(run_copy, ["middle"], exports, budget_ms=1000.0)
-    folder = exports / "middle"
-    old = json.loads((folder / "manifest.json").read_text())
-    old_onnx = (folder / "model.onnx").read_bytes()
+def test_a_fine_tuned_cut_keeps_its_graph_and_changes_only_its_weights(run_copy):
     run = load_trained(run_copy)
     ds = load_dataset(run.recipe.data, run.recipe.seed)
+    inherited, _ = cut_one(run, ds, "middle", run.recipe.space.middle(), run_copy / "staging", validate=False)
+    old_onnx = Path(inherited.onnx_path).read_bytes()
     settings = FinetuneSettings(steps=12, lr=0.05)
-    new = finetune_export(run, run_copy, ds, folder, settings)
-    data = (folder / "model.onnx").read_bytes()
+    cut, net, record = finetuned_cut(run, run_copy, ds, run.recipe.space.middle(), inherited, settings)
+    data = Path(cut.onnx_path).read_bytes()
     assert data != old_onnx and graph_signature(data) == graph_signature(old_onnx)
-    assert new == json.loads((folder / "manifest.json").read_text())
-    assert new["sha256"] == hashlib.sha256(data).hexdigest()
-    assert new["latency"] == old["latency"] and new["budget"] == old["budget"]
-    assert new["architecture"] == old["architecture"]
-    ft = new["finetune"]
-    assert ft["inherited_accuracy"] == old["accuracy"] and ft["steps"] == 12 and ft["lr"] == 0.05 and not ft["reused"]
-    assert old["finetune"] is None
-    # the shipped file computes what its state_dict computes (onnxruntime vs torch, reference libraries)
-    static = extract_subnet(run.supernet, run.recipe.space.middle())
-    static.load_state_dict(torch.load(folder / "state_dict.pt", weights_only=True))
+    assert Path(inherited.onnx_path).read_bytes() == old_onnx          # the inherited file is left as it was
+    assert (cut.key, cut.params, cut.macs) == (inherited.key, inherited.params, inherited.macs)
+    assert record["steps"] == 12 and record["lr"] == 0.05 and not record["reused"] and "graph" in record["latency"]
+    # the shipped file computes what the fine-tuned network computes (onnxruntime vs torch, reference libraries)
     x = next(iter(eval_batches(ds.val_x, ds.val_y, ds, 7)))[0]
     with torch.no_grad():
-        ref = static.eval()(x).numpy()
+        ref = net.eval()(x).numpy()
     assert np.abs(ort_outputs(data, x.numpy()) - ref).max() < 1e-4
     # the same subnet and settings again (another budget, another device): reused, the same weights
-    again = finetune_export(run, run_copy, ds, folder, settings)
-    assert again["finetune"]["reused"] and again["sha256"] == new["sha256"]
-    assert again["accuracy"] == new["accuracy"]
+    again, _, record_again = finetuned_cut(run, run_copy, ds, run.recipe.space.middle(), inherited, settings)
+    assert record_again["reused"] and Path(again.onnx_path).read_bytes() == data
 
 
 def test_the_graph_signature_tells_different_subnets_apart(run_copy):

@@ -12,11 +12,10 @@ import pytest
 import torch
 import torch.nn.functional as F
 
-from helpers import perturb, tiny_recipe
+from helpers import perturb, steady, tiny_recipe
 from tightfit.data.dataset import normalize
 from tightfit.model.elastic import ElasticBatchNorm, ElasticConv
 from tightfit.recipe import build_supernet
-from tightfit.ondevice.timing import fits_budget
 from tightfit.search.choice_rule import Tried, measure_and_choose
 from tightfit.search.evolution import Candidate
 from tightfit.train.sandwich import sandwich, sandwich_backward
@@ -162,8 +161,8 @@ def test_normalize_subtracts_the_mean_then_divides_by_the_std():
 
 @pytest.mark.parametrize("ratio, fits", [(0.99, True), (1.0, True), (1.01, False)])
 def test_budget_boundary(ratio, fits):
-    # The contract: a budget is met when the percentile is at or under it.
-    assert fits_budget({"budget_stat_ms": 0.5 * ratio}, 0.5) is fits
+    # The contract: a budget is met when the percentile is at or under it (Measurement.fits, guard 0: the verdict).
+    assert steady(0.5 * ratio).fits(0.5) is fits
 
 
 def test_choice_never_calls_a_candidate_1_percent_over_the_budget_fitting():
@@ -172,7 +171,7 @@ def test_choice_never_calls_a_candidate_1_percent_over_the_budget_fitting():
     measured = {"over": 1.01, "under": 0.99}
 
     def measure(cs, start):
-        return [Tried(c, None, None, {"budget_stat_ms": measured[c.key]}) for c in cs]
+        return [Tried(c, None, None, steady(measured[c.key])) for c in cs]
     choice = measure_and_choose(cands, 1.0, measure, 2, lambda: cands[-1], lambda line: None, guard=0.0)
     assert choice.pick.cand.key == "under" and choice.fits
     alone = measure_and_choose(cands[:1], 1.0, measure, 1, lambda: cands[0], lambda line: None, guard=0.0)

@@ -118,7 +118,7 @@ def test_interleaved_returns_every_path_and_slow_model_is_slower(models):
 def test_repeated_measurement_in_fresh_processes(models):
     protocol = Protocol.from_dict({**TINY.to_dict(), "repeats": 2})
     res = measure_repeated([models["fast"], models["slow"]], protocol, chunk=5)
-    for entry in res.values():
+    for entry in (m.to_dict() for m in res.values()):  # as a table entry holds it
         reps = entry["repeats"]
         assert len(reps) == 2 and entry["runs"] == sum(r["runs"] for r in reps)
         assert not any("times_ms" in r for r in reps)          # raw runs are pooled, not stored
@@ -128,7 +128,7 @@ def test_repeated_measurement_in_fresh_processes(models):
         lo, hi = min(entry["repeat_figures_ms"]), max(entry["repeat_figures_ms"])
         assert lo * 0.99 <= entry["p90_ms"] <= hi * 1.01
         assert entry["guard"] >= 0.01 and entry["note"]
-    assert res[models["slow"]]["p90_ms"] > res[models["fast"]]["p90_ms"]
+    assert res[models["slow"]].p90_ms > res[models["fast"]].p90_ms
 
 
 def _summary(ms: np.ndarray) -> dict:
@@ -138,18 +138,18 @@ def _summary(ms: np.ndarray) -> dict:
 def test_combine_flags_repeats_that_disagree_and_not_those_that_agree():
     base, slow = _summary(np.full(50, 1.0)), _summary(np.full(50, 2.0))
     out = combine_repeats([base, slow, base], Protocol())
-    assert out["p50_ms"] == pytest.approx(1.0) and out["repeat_spread"] == pytest.approx(1.0 / out["p90_ms"])
-    assert out["stable"] is False and "spread 50 %" in out["note"]
+    assert out.p50_ms == pytest.approx(1.0) and out.repeat_spread == pytest.approx(1.0 / out.p90_ms)
+    assert out.stable is False and "spread 50 %" in out.note
     # This project's rule (ondevice/repeats.py assess): stable when the 95 % bound on a later pooled figure's
     # difference (guard_from_spread) is within 10 %, not when the repeats' range is. Five repeats spanning 18 %
     # pin the pooled figure to ~8 %: stable (a range rule would flag it); two that agree to 4 % cannot show it.
     five = combine_repeats([_summary(np.full(50, v)) for v in (1.0, 1.2, 1.1, 1.1, 1.1)], Protocol())
-    assert five["repeat_spread"] > 0.15 and five["guard"] < 0.10
-    assert five["stable"] is True and five["note"].startswith("p90 reproduces within 8 % (95 % bound from 5 repeats")
+    assert five.repeat_spread > 0.15 and five.guard < 0.10
+    assert five.stable is True and five.note.startswith("p90 reproduces within 8 % (95 % bound from 5 repeats")
     two = combine_repeats([base, _summary(np.full(50, 1.04))], Protocol())
-    assert two["stable"] is False and "may differ by up to" in two["note"]
+    assert two.stable is False and "may differ by up to" in two.note
     edge = combine_repeats([_summary(np.full(50, v)) for v in (1.0, 1.3, 1.15, 1.15, 1.15)], Protocol())
-    assert 0.10 < edge["guard"] < 0.12 and edge["stable"] is False
+    assert 0.10 < edge.guard < 0.12 and edge.stable is False
 
 
 def check_table(path: Path) -> dict:

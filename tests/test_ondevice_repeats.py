@@ -36,10 +36,10 @@ def test_pooled_figure_keeps_a_state_that_only_some_repeats_caught():
     truth = float(np.percentile(np.concatenate(reps), 90))
     assert truth == pytest.approx(SLOW, rel=0.05)
     out = combine_repeats([repeat(r) for r in reps], Protocol(repeats=5))
-    assert out["p90_ms"] == pytest.approx(truth, rel=0.02)
+    assert out.p90_ms == pytest.approx(truth, rel=0.02)
     naive = float(np.median([np.percentile(r, 90) for r in reps]))
     assert naive < 0.7 * truth                      # the estimator this test exists to rule out
-    assert out["stable"] is False and "spread" in out["note"]   # the repeats disagree: flagged, and said why
+    assert out.stable is False and "spread" in out.note   # the repeats disagree: flagged, and said why
 
 
 def test_pooled_figure_reproduces_a_markov_two_state_machine_better_than_the_median_of_repeats():
@@ -62,7 +62,7 @@ def test_pooled_figure_reproduces_a_markov_two_state_machine_better_than_the_med
     pooled_ok = naive_ok = 0
     for _ in range(40):
         reps = [chain(1500) for _ in range(5)]
-        pooled = combine_repeats([repeat(r) for r in reps], Protocol(repeats=5))["p90_ms"]
+        pooled = combine_repeats([repeat(r) for r in reps], Protocol(repeats=5)).p90_ms
         naive = float(np.median([np.percentile(r, 90) for r in reps]))
         pooled_ok += abs(pooled / truth - 1) <= 0.10
         naive_ok += abs(naive / truth - 1) <= 0.10
@@ -105,8 +105,8 @@ def test_guard_of_ten_repeats_against_a_later_five_still_covers_95_percent():
 def test_states_are_described_in_words():
     rng = np.random.default_rng(3)
     two = describe_states(two_state_runs(5000, 0.38, rng))
-    assert two["two_states"] and two["slow_share"] == pytest.approx(0.38, abs=0.01)
-    assert two["text"] == "two speed states: 38 % of runs in the slower one (1.8 x the faster); p90 covers both"
+    assert two.two_states and two.slow_share == pytest.approx(0.38, abs=0.01)
+    assert two.text == "two speed states: 38 % of runs in the slower one (1.8 x the faster); p90 covers both"
     rare = describe_states(two_state_runs(5000, 0.07, rng))
-    assert rare["text"].endswith("p90 sits in the faster one")
-    assert describe_states(FAST * (1 + 0.03 * rng.standard_normal(5000)))["text"] == "one speed state"
+    assert rare.text.endswith("p90 sits in the faster one")
+    assert describe_states(FAST * (1 + 0.03 * rng.standard_normal(5000))).text == "one speed state"

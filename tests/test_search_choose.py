@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import pytest
 
+from helpers import steady
 from tightfit.search.choice_rule import Choice, Tried, measure_and_choose
 from tightfit.search.evolution import Candidate
 
@@ -11,7 +12,7 @@ def test_choice_ratio_is_the_median_over_measured_candidates():
 
     def tried(key, predicted, measured):
         return Tried(Candidate(key, None, 90.0, predicted, 0), None, None,
-                     None if measured is None else {"budget_stat_ms": measured})
+                     None if measured is None else steady(measured))
     measured = [tried("a", 1.0, 1.1), tried("b", 2.0, 2.2), tried("c", 1.0, 3.0)]   # ratios 1.1, 1.1, 3.0
     assert Choice(measured[0], True, "", measured).ratio() == pytest.approx(1.1)     # the mean would be 1.73
     unmeasured = [tried("d", 1.0, None)]                                             # another device
@@ -27,7 +28,7 @@ def test_pick_leaves_the_guard_margin_when_a_candidate_can():
     cands = [Candidate(k, None, acc, 0.9, 0) for k, acc in (("a", 90.0), ("b", 89.0), ("c", 85.0))]
 
     def measure(cs, start):
-        return [Tried(c, None, None, {"budget_stat_ms": measured[c.key]}) for c in cs]
+        return [Tried(c, None, None, steady(measured[c.key])) for c in cs]
 
     def choose(ranked, guard, top=3):
         choice = measure_and_choose(ranked, 1.0, measure, top, lambda: ranked[-1], lambda line: None, guard=guard)
@@ -40,7 +41,7 @@ def test_pick_leaves_the_guard_margin_when_a_candidate_can():
 
 def _measured_as(figures):
     def measure(cs, start):
-        return [Tried(c, None, None, {"budget_stat_ms": figures[c.key]}) for c in cs]
+        return [Tried(c, None, None, steady(figures[c.key])) for c in cs]
     return measure
 
 
@@ -84,7 +85,7 @@ def test_each_candidate_keeps_its_own_measured_guard():
     figures = {"steady": (0.97, 0.01), "jumpy": (0.93, 0.09), "slow-ok": (0.80, 0.03)}
 
     def measure(cs, start):
-        return [Tried(c, None, None, {"budget_stat_ms": figures[c.key][0], "guard": figures[c.key][1]}) for c in cs]
+        return [Tried(c, None, None, steady(figures[c.key][0], figures[c.key][1])) for c in cs]
 
     def pick(order, guard=None):
         ranked = [c for k in order for c in cands if c.key == k]
@@ -114,13 +115,12 @@ def test_a_candidate_within_budget_but_not_its_guard_is_measured_again_before_fa
 
     def measure(cs, start):
         seen.extend(c.key for c in cs)
-        return [Tried(c, None, None, {"budget_stat_ms": 0.92 if c.key == "close" else 0.5, "guard": guards[c.key][0]})
-                for c in cs]
+        return [Tried(c, None, None, steady(0.92 if c.key == "close" else 0.5, guards[c.key][0])) for c in cs]
 
     def remeasure(ts):
         for t in ts:
             seen.append("again " + t.cand.key)
-            t.measured = {"budget_stat_ms": 0.92, "guard": guards[t.cand.key][1]}
+            t.measured = steady(0.92, guards[t.cand.key][1])
             t.remeasured = True
 
     choice = measure_and_choose(cands, 1.0, measure, 1, lambda: cands[-1], lambda line: None, remeasure=remeasure)

@@ -7,12 +7,14 @@ back-to-back fresh processes all see the fast state while QA, minutes later, see
 """
 from __future__ import annotations
 
-import json
+from dataclasses import replace
 from types import SimpleNamespace
 
 import numpy as np
 import pytest
 
+from helpers import fake_pick, steady
+from tightfit.export.pick import latency_of
 from tightfit.ondevice.timing import Protocol, summarize
 from tightfit.search.choice_rule import Tried
 from tightfit.search.choose import PickRuns, _Measurer
@@ -32,15 +34,11 @@ def repeat(level_ms: float, rng: np.random.Generator, n: int = 400) -> dict:
 def _setup(tmp_path, first_levels, settings=SearchSettings()):
     rng = np.random.default_rng(0)
     export = tmp_path / "exports" / "host-1ms"
-    export.mkdir(parents=True)
-    (export / "model.onnx").write_bytes(b"graph")
-    (export / "manifest.json").write_text(json.dumps({"latency": {"predicted_ms": 0.9, "budget_stat_ms": 0.0},
-                                                     "budget": {"ms": 1.0, "percentile": 90.0}}))
     runs = [repeat(level, rng) for level in first_levels]
     ctx = SimpleNamespace(settings=settings, say=lambda line: None, pick_runs={str(export): PickRuns(runs, 0.0)})
     table = SimpleNamespace(name="host", protocol=PROTOCOL.to_dict())
-    row = {"device": "host", "budget_ms": 1.0, "verified": True, "fits": True, "export_dir": str(export), "note": ""}
-    return ctx, table, row, runs, rng
+    pick = fake_pick(export, measurement=steady(first_levels[0]))
+    return ctx, table, pick, runs, rng
 
 
 def test_a_pick_that_fit_in_a_fast_window_is_over_budget_when_the_machine_slowed_and_is_said_so(tmp_path):
@@ -51,29 +49,29 @@ def test_a_pick_that_fit_in_a_fast_window_is_over_budget_when_the_machine_slowed
     out, = confirm_picks(ctx, table, [row], measure=lambda paths, protocol: {paths[0]: later})
     # reference: numpy's percentile of every run of both windows (the pooled sustained-load figure)
     pooled = float(np.percentile(np.concatenate([r["times_ms"] for r in first + later]), 90))
-    assert out["measured"]["budget_stat_ms"] == pytest.approx(pooled)
-    assert out["confirmed"]["first_ms"] < 1.0 < out["confirmed"]["pooled_ms"]
-    assert out["confirmed"]["repeats"] == 10 and not out["confirmed"]["keeps_guard"]
-    assert out["fits"] is False and "over its budget" in out["note"]
-    manifest = json.loads((tmp_path / "exports" / "host-1ms" / "manifest.json").read_text())
-    assert manifest["latency"]["p90_ms"] == pytest.approx(pooled)
-    assert manifest["latency"]["predicted_ms"] == 0.9 and manifest["latency"]["confirmation"]["keeps_guard"] is False
-    assert manifest["budget"]["use"] == pytest.approx(pooled / 1.0, abs=1e-4) == out["budget_use"]  # p90 over the budget
+    assert out.measurement.figure_ms == pytest.approx(pooled)
+    assert out.confirmation.first_ms < 1.0 < out.confirmation.pooled_ms
+    assert out.confirmation.repeats == 10 and not out.confirmation.keeps_guard
+    assert out.fits is False and "over its budget" in out.note
+    latency = latency_of(out)  # the manifest's latency section, from the record
+    assert latency["p90_ms"] == pytest.approx(pooled)
+    assert latency["predicted_ms"] == 0.9 and latency["confirmation"]["keeps_guard"] is False
+    assert out.use() == pytest.approx(pooled / 1.0, abs=1e-4)  # p90 over the budget
     # the guard over both windows is far wider than the first window's own
     assert guard_floor_of(out) > 0.05 > combine_first_guard(first)
 
 
 def combine_first_guard(first):
     from tightfit.ondevice.repeats import combine_repeats
-    return combine_repeats(first, PROTOCOL)["guard"]
+    return combine_repeats(first, PROTOCOL).guard
 
 
 def test_a_pick_that_reproduces_keeps_its_guard_and_gets_the_figure_of_both_windows(tmp_path):
     ctx, table, row, first, rng = _setup(tmp_path, [0.90] * 5)
     later = [repeat(0.91, rng) for _ in range(5)]
     out, = confirm_picks(ctx, table, [row], measure=lambda paths, protocol: {paths[0]: later})
-    assert out["fits"] and out["confirmed"]["keeps_guard"] and guard_floor_of(out) is None
-    assert out["measured"]["repeat_figures_ms"] == pytest.approx([r["budget_stat_ms"] for r in first + later], rel=1e-5)
+    assert out.fits and out.confirmation.keeps_guard and guard_floor_of(out) is None
+    assert out.measurement.repeat_figures_ms == pytest.approx([r["budget_stat_ms"] for r in first + later], rel=1e-5)
 
 
 def test_one_percent_over_after_pooling_is_a_miss_and_one_percent_under_fits(tmp_path):
@@ -82,14 +80,14 @@ def test_one_percent_over_after_pooling_is_a_miss_and_one_percent_under_fits(tmp
     for level, fits in ((1.01, False), (0.99, True)):
         ctx, table, row, first, rng = _setup(tmp_path / str(level), [level] * 5)
         const = [{**r, "times_ms": [level] * 400, "budget_stat_ms": level} for r in first]
-        ctx.pick_runs[row["export_dir"]] = PickRuns(const, 0.0)
+        ctx.pick_runs[str(row.export_dir)] = PickRuns(const, 0.0)
         out, = confirm_picks(ctx, table, [row], measure=lambda paths, protocol, const=const: {paths[0]: const})
-        assert out["fits"] is fits
+        assert out.fits is fits
 
 
 def test_unverified_rows_are_left_alone(tmp_path):
     ctx, table, row, first, rng = _setup(tmp_path, [0.9] * 5)
-    other = {**row, "verified": False, "export_dir": str(tmp_path / "elsewhere")}
+    other = replace(row, measurement=None, export_dir=tmp_path / "elsewhere")
     asked = []
     out = confirm_picks(ctx, table, [other], measure=lambda paths, protocol: asked.append(paths) or {})
     assert out == [other] and asked == []
@@ -105,29 +103,32 @@ def test_a_guard_floor_widens_every_candidates_guard_but_never_narrows_one(monke
     sub = SimpleNamespace(to_key=lambda: "k")
     batch = [Tried(Candidate(name, sub, 90.0, 0.9, 0), SimpleNamespace(onnx_path=name), None) for name in ("a", "b")]
     _Measurer(None, None, PROTOCOL)._measure(batch)
-    own = {t.cand.key: t.measured["guard"] for t in batch}
+    own = {t.cand.key: t.measured.guard for t in batch}
     assert own["a"] > 0.04 > own["b"]
     _Measurer(None, None, PROTOCOL, guard_floor=0.04)._measure(batch)
-    assert batch[0].measured["guard"] == pytest.approx(own["a"]) and batch[1].measured["guard"] == 0.04
+    assert batch[0].measured.guard == pytest.approx(own["a"]) and batch[1].measured.guard == 0.04
 
 
 def test_the_device_chooses_again_only_where_the_confirmed_pick_lost_its_guard(tmp_path, monkeypatch):
     # this project's rule (search/driver.py _confirm): only a lost guard, and only a guard from the spread, re-chooses
     import tightfit.search.driver as driver
-    lost = {"budget_ms": 1.0, "confirmed": {"keeps_guard": False, "pooled_ms": 0.99}, "guard": {"share": 0.07}}
-    kept = {"budget_ms": 2.0, "confirmed": {"keeps_guard": True, "pooled_ms": 1.5}, "guard": {"share": 0.02}}
+    from tightfit.export.pick import Confirmation, Guard
+    lost = fake_pick(tmp_path / "a", budget_ms=1.0, measurement=steady(0.99), guard=Guard(0.07, "spread"),
+                     confirmation=Confirmation(0.9, 1.05, 0.99, 10, 60.0, keeps_guard=False))
+    kept = fake_pick(tmp_path / "b", budget_ms=2.0, measurement=steady(1.5), guard=Guard(0.02, "spread"),
+                     confirmation=Confirmation(1.5, 1.5, 1.5, 10, 60.0, keeps_guard=True))
     monkeypatch.setattr(driver, "confirm_picks", lambda ctx, table, picks: [lost, kept])
     asked = []
 
     def choose(ctx, table, ranked, budget_ms, latency, verifiable, guard_floor=0.0):
         asked.append((budget_ms, ranked, guard_floor))
-        return {"budget_ms": budget_ms, "fits": True}
+        return fake_pick(tmp_path / "again", budget_ms=budget_ms, measurement=steady(0.8))
 
-    monkeypatch.setattr(driver, "choose_and_export", choose)
+    monkeypatch.setattr(driver, "choose_pick", choose)
     ctx = SimpleNamespace(settings=SearchSettings(), say=lambda line: None)
     out = driver._confirm(ctx, SimpleNamespace(name="host"), [], {1.0: ["order-1"], 2.0: ["order-2"]}, None)
     assert asked == [(1.0, ["order-1"], 0.07)]
-    assert out[0]["chosen_again"] == lost["confirmed"] and out[1] is kept
+    assert out[0].chosen_again == lost.confirmation and out[1] is kept
     asked.clear()
     ctx = SimpleNamespace(settings=SearchSettings(guard=0.05), say=lambda line: None)  # a fixed --guard does not widen
     driver._confirm(ctx, SimpleNamespace(name="host"), [], {1.0: ["order-1"], 2.0: ["order-2"]}, None)

@@ -24,11 +24,12 @@ def export_cuts(run: TrainedRun, ds: Dataset, picked: list[tuple[str, Subnet]], 
     figures = measure_latency([c for c, _ in cuts], protocol)
     hardware = describe_hardware()
     for (name, subnet), (cut, net) in zip(picked, cuts):
+        measured = figures[str(cut.onnx_path)]
         export_pick(run, ds, subnet=subnet, cut=cut, net=net, export_dir=out_dir / name,
-                    latency=latency_section(figures[str(cut.onnx_path)], hardware, protocol.to_dict(), None,
+                    latency=latency_section(measured, hardware, protocol.to_dict(), None,
                                             "cut by hand: measured on this machine"),
                     budget_ms=budget_ms, percentile=protocol.percentile,
-                    device=None if budget_ms is None else "this-host")
+                    device=None if budget_ms is None else "this-host", use=measured.use(budget_ms))
     return [c for c, _ in cuts]
 
 

@@ -17,6 +17,7 @@ from tightfit.model.extract import StaticNet, count_macs, count_params, extract_
 from tightfit.model.recalibrate import accuracy, preserved_bn_stats, recalibrate_bn
 from tightfit.rundir import TrainedRun
 from tightfit.model.space import Subnet
+from tightfit.ondevice.measurement import Measurement
 from tightfit.ondevice.repeats import measure_repeated
 from tightfit.ondevice.timing import Protocol
 
@@ -70,12 +71,12 @@ def cut_one(run: TrainedRun, ds: Dataset, name: str, subnet: Subnet, out_dir: Pa
     return result, net
 
 
-def measure_latency(results: list[CutResult], protocol: Optional[Protocol] = None) -> dict[str, dict]:
+def measure_latency(results: list[CutResult], protocol: Optional[Protocol] = None) -> dict[str, Measurement]:
     """Batch-1 ONNX Runtime latency of every cut, interleaved, under the on-device protocol (its
-    defaults unless given); returns the figures by ONNX path and fills p50/p90 in."""
+    defaults unless given); returns the measurements by ONNX path and fills p50/p90 in."""
     figures = measure_repeated([str(r.onnx_path) for r in results], protocol or Protocol())
     for r in results:
-        r.p50_ms, r.p90_ms = figures[str(r.onnx_path)]["p50_ms"], figures[str(r.onnx_path)]["p90_ms"]
+        r.p50_ms, r.p90_ms = figures[str(r.onnx_path)].p50_ms, figures[str(r.onnx_path)].p90_ms
     return figures
 
 

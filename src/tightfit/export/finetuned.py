@@ -1,15 +1,16 @@
-"""Fine-tune an exported pick from its inherited weights and rewrite its folder.
+"""Fine-tune a pick from its inherited weights, before it is exported.
 
 The fine-tune (tightfit.train.finetune) changes weights, not the graph, so the latency the pick
 was measured at still describes the new file; this is checked (same operators, same initialiser
-shapes) rather than assumed. The manifest keeps the inherited accuracy beside the new one and
-what the fine-tune cost. The same subnet fine-tuned with the same settings is computed once per
-run (RUN/search/finetuned/): two devices that pick one subnet pay for one fine-tune.
+shapes) rather than assumed. The pick keeps the inherited accuracy beside the new one and what
+the fine-tune cost (export/pick.py writes both). The same subnet fine-tuned with the same settings is
+computed once per run (RUN/search/finetuned/): two devices that pick one subnet pay for one fine-tune.
 """
 from __future__ import annotations
 
 import hashlib
 import json
+from dataclasses import replace
 from pathlib import Path
 from typing import Any, Callable, Optional
 
@@ -18,7 +19,7 @@ import torch
 
 from tightfit.data.dataset import Dataset, calibration_batches
 from tightfit.export.cut import PARITY_TOL, CutResult
-from tightfit.export.manifest import export_pick, state_dict_bytes
+from tightfit.export.manifest import state_dict_bytes
 from tightfit.model.onnx import export_onnx, max_parity_error
 from tightfit.model.space import Subnet
 from tightfit.ondevice.files import write_bytes, write_json
@@ -55,30 +56,19 @@ def finetuned_net(run: TrainedRun, run_dir: Path, ds: Dataset, subnet: Subnet, s
     return net, {**record, "reused": False}
 
 
-def finetune_export(run: TrainedRun, run_dir: Path, ds: Dataset, export_dir: Path, settings: FinetuneSettings,
-                    on_step: Optional[Callable[[int], None]] = None) -> dict[str, Any]:
-    """Rewrite ``export_dir`` (a pick's folder) with the fine-tuned weights; returns the new manifest."""
-    old = json.loads((export_dir / "manifest.json").read_text())
-    subnet = run.recipe.space.parse_key(old["architecture"]["key"])
-    before = old["accuracy"]
-    inherited_data = (export_dir / "model.onnx").read_bytes()
+def finetuned_cut(run: TrainedRun, run_dir: Path, ds: Dataset, subnet: Subnet, inherited: CutResult,
+                  settings: FinetuneSettings, on_step: Optional[Callable[[int], None]] = None,
+                  ) -> tuple[CutResult, torch.nn.Module, dict[str, Any]]:
+    """The fine-tuned cut of a pick (its ONNX file beside the inherited one), its network and the
+    fine-tune's record; the graph is checked unchanged, so the pick's measured latency still holds."""
     net, record = finetuned_net(run, run_dir, ds, subnet, settings, on_step)
-    staging = run_dir / "search" / "finetuned" / "staging.onnx"
-    data = export_onnx(net, staging, run.recipe.data.channels, run.recipe.data.image_size)
+    path = Path(inherited.onnx_path).parent / "finetuned.onnx"
+    data = export_onnx(net, path, run.recipe.data.channels, run.recipe.data.image_size)
     parity = max_parity_error(net, data, run.recipe.data.channels, run.recipe.data.image_size)
     if parity > PARITY_TOL:
         raise RuntimeError(f"ONNX Runtime output differs from torch by {parity:.2e} for the fine-tuned {subnet.to_key()}")
-    if graph_signature(data) != graph_signature(inherited_data):
+    if graph_signature(data) != graph_signature(Path(inherited.onnx_path).read_bytes()):
         raise RuntimeError(f"fine-tuning changed the graph of {subnet.to_key()}: its measured latency would not hold")
-    cut = CutResult(export_dir.name, subnet.to_key(), old["architecture"]["params"], old["architecture"]["macs"],
-                    None, staging, parity)
-    record = {**record, "inherited_accuracy": before,
-              "latency": "measured on the inherited weights: the fine-tune changed weights, not the graph "
-                         "(same operators and initialiser shapes, checked)"}
-    budget = old["budget"]
-    manifest = export_pick(run, ds, subnet=subnet, cut=cut, net=net, export_dir=export_dir,
-                           latency=old["latency"], budget_ms=budget["ms"], percentile=budget["percentile"],
-                           device=budget["device"], finetune=record)
-    staging.unlink(missing_ok=True)
-    return manifest
-
+    cut = replace(inherited, onnx_path=path, parity=parity, val_acc=None)
+    return cut, net, {**record, "latency": "measured on the inherited weights: the fine-tune changed weights, not "
+                                           "the graph (same operators and initialiser shapes, checked)"}

@@ -25,10 +25,9 @@ from tightfit.model.onnx import ort_hits, ort_session
 from tightfit.model.arithmetic import describe_architecture
 from tightfit.model.space import SpaceSpec, Subnet
 from tightfit.ondevice.accuracy import Accuracy, PairedComparison  # accuracy records: count, interval, pairs
+from tightfit.ondevice.measurement import Measurement
 from tightfit.ondevice.files import MANIFEST_FORMAT, MANIFEST_VERSION, write_bytes, write_json
 from tightfit.rundir import TrainedRun
-LATENCY_KEYS = ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "cv", "iqr_over_median", "repeat_figures_ms", "repeat_spread",
-                "states", "stable", "note")
 
 
 def sha256_hex(data: bytes) -> str:
@@ -46,28 +45,22 @@ def software_versions() -> dict[str, str]:
             "python": platform.python_version()}
 
 
-def latency_section(summary: Optional[dict[str, Any]], hardware: dict[str, Any], protocol: dict[str, Any],
+def latency_section(measured: Optional[Measurement], hardware: dict[str, Any], protocol: dict[str, Any],
                     predicted_ms: Optional[float], note: str = "", guard: Optional[dict[str, Any]] = None
                     ) -> dict[str, Any]:
     """Measured figures (pooled over repeats) with how and where, and the guard the pick was chosen
-    with; None figures when not measured."""
-    out: dict[str, Any] = {"hardware": hardware, "protocol": protocol, "guard": guard}
-    for k in LATENCY_KEYS:
-        out[k] = summary.get(k) if summary else None
-    if summary is None:
+    with (it takes the place of the measurement's own guard); no figures at all when not measured,
+    so a prediction is never read as a measurement."""
+    out: dict[str, Any] = {**(measured.to_dict() if measured else {}), "hardware": hardware, "protocol": protocol,
+                           "guard": guard}
+    if measured is None:
         out["stable"] = False
         out["note"] = note or "not measured"
     elif note:
-        out["note"] = f"{out['note']}; {note}" if out.get("note") not in (None, "", "ok") else note
+        out["note"] = "; ".join(filter(None, [measured.note, note]))
     out["predicted_ms"] = None if predicted_ms is None else round(predicted_ms, 4)
-    out["measured"] = summary is not None
+    out["measured"] = measured is not None
     return out
-
-
-def budget_use(latency: dict[str, Any], budget_ms: Optional[float], percentile: float) -> Optional[float]:
-    """The measured percentile over the budget: how much of its budget a pick uses (None unmeasured)."""
-    figure = latency.get(f"p{percentile:g}_ms")
-    return None if figure is None or not budget_ms else round(figure / budget_ms, 4)
 
 
 def build_manifest(*, space: SpaceSpec, subnet: Subnet, params: int, macs: int, onnx_data: bytes,
@@ -75,11 +68,12 @@ def build_manifest(*, space: SpaceSpec, subnet: Subnet, params: int, macs: int, 
                    std: tuple[float, ...], validation: Accuracy, test: Accuracy, latency: dict[str, Any],
                    budget_ms: Optional[float], percentile: float, device: Optional[str], recipe_name: str,
                    recipe_hash: str, finetune: Optional[dict[str, Any]] = None,
-                   lead: Optional[PairedComparison] = None) -> dict[str, Any]:
+                   lead: Optional[PairedComparison] = None, use: Optional[float] = None) -> dict[str, Any]:
     """The manifest dict (see the project contract for the fields); budget.ms is None for a model cut
     by hand without a budget (verify then reports its figures and judges nothing); ``finetune`` is None
     for inherited weights, else what the fine-tune did, cost and started from; ``lead`` is the paired
-    comparison of the pick (first) with the runner-up (second) on the validation images, when one was made."""
+    comparison of the pick (first) with the runner-up (second) on the validation images, when one was made;
+    ``use`` the measured figure over the budget (Measurement.use)."""
     return {
         "format": MANIFEST_FORMAT, "version": MANIFEST_VERSION, "model_file": "model.onnx",
         "sha256": sha256_hex(onnx_data),
@@ -95,9 +89,8 @@ def build_manifest(*, space: SpaceSpec, subnet: Subnet, params: int, macs: int, 
                      **({"lead": lead.to_dict()} if lead is not None else {})},
         "latency": latency,
         "budget": {"ms": None if budget_ms is None else float(budget_ms), "percentile": float(percentile),
-                   "device": device, "use": budget_use(latency, budget_ms, percentile),
-                   "rule": f"met when latency.budget_stat_ms, the p{percentile:g} of all pooled "
-                           "timed runs, is at most ms"},
+                   "device": device, "use": use, "rule": f"met when latency.budget_stat_ms, the p{percentile:g} of all pooled "
+                                             "timed runs, is at most ms"},
         "finetune": finetune,
         "software": software_versions(),
         "recipe": {"name": recipe_name, "hash": recipe_hash},
@@ -138,8 +131,7 @@ def shipped_accuracy(onnx_data: bytes, ds: Dataset, split: str, batch_size: int 
 
 def export_pick(run: TrainedRun, ds: Dataset, *, subnet: Subnet, cut: CutResult, net: nn.Module, export_dir: str | Path,
                 latency: dict[str, Any], budget_ms: Optional[float], percentile: float,
-                device: Optional[str], finetune: Optional[dict[str, Any]] = None,
-                lead: Optional[PairedComparison] = None) -> dict[str, Any]:
+                device: Optional[str], use: Optional[float] = None) -> dict[str, Any]:
     """Score the exported file on the whole validation and test splits (for the manifest only:
     nothing is chosen on them here), then write the export folder.
     ``cut`` is the candidate's cut (its ONNX file)."""
@@ -150,7 +142,6 @@ def export_pick(run: TrainedRun, ds: Dataset, *, subnet: Subnet, cut: CutResult,
         channels=cfg.data.channels, image_size=cfg.data.image_size, class_names=run.class_names,
         mean=run.mean, std=run.std, validation=shipped_accuracy(data, ds, "val"),
         test=shipped_accuracy(data, ds, "test"), latency=latency, budget_ms=budget_ms,
-        percentile=percentile, device=device, recipe_name=cfg.name, recipe_hash=cfg.hash(), finetune=finetune,
-        lead=lead)
+        percentile=percentile, device=device, recipe_name=cfg.name, recipe_hash=cfg.hash(), use=use)
     write_export(export_dir, data, net, manifest)
     return manifest

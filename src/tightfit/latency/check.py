@@ -10,6 +10,7 @@ import os
 import random
 import tempfile
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -20,6 +21,7 @@ from tightfit.latency.probe import load_source
 from tightfit.model.space import SpaceSpec, Subnet
 from tightfit.ondevice.files import write_json
 from tightfit.ondevice.hardware import describe_hardware, same_host
+from tightfit.ondevice.measurement import Measurement
 from tightfit.ondevice.repeats import measure_repeated
 from tightfit.ondevice.timing import Protocol, stderr_progress
 
@@ -74,10 +76,10 @@ def check_predictor(run_dir, table_path, n: int = 30, seed: int = 1, protocol=No
     with tempfile.TemporaryDirectory(prefix="tightfit-check-") as tmp:
         todo = subnets + [Subnet.from_key(k) for k in refs]
         paths = write_subnet_onnx(supernet, todo, Path(tmp), chs, size, progress)
-        measured = measure_repeated(paths, protocol, int(table.protocol.get("chunk", 10)),
-                                    progress=stderr_progress("check") if progress else None)
-        again = measure_repeated(paths[:len(subnets)], protocol, int(table.protocol.get("chunk", 10)),
-                                 progress=stderr_progress("check again") if progress else None) if twice else None
+        measured = _as_dicts(measure_repeated(paths, protocol, int(table.protocol.get("chunk", 10)),
+                                              progress=stderr_progress("check") if progress else None))
+        again = _as_dicts(measure_repeated(paths[:len(subnets)], protocol, int(table.protocol.get("chunk", 10)),
+                                           progress=stderr_progress("check again") if progress else None)) if twice else None
     rows = []
     for s, path in zip(subnets, paths):
         m = measured[path]
@@ -107,3 +109,8 @@ def check_predictor(run_dir, table_path, n: int = 30, seed: int = 1, protocol=No
     }
     write_json(Path(run_dir) / "latency" / "checks" / f"{table.name}.json", result)
     return result
+
+
+def _as_dicts(measured: dict[str, Measurement]) -> dict[str, dict[str, Any]]:
+    """The measurements as the table's entries hold them (Measurement.to_dict), keyed like the table."""
+    return {path: m.to_dict() for path, m in measured.items()}

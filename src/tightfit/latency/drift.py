@@ -63,7 +63,7 @@ def measure_drift(supernet: Supernet, table: LatencyTable, keys: Sequence[str], 
         paths = write_subnet_onnx(supernet, [Subnet.from_key(k) for k in keys], Path(tmp), in_channels, image_size)
         measured = measure_repeated(paths, protocol, int(table.protocol.get("chunk", 10)))
     entries = table.subnet_entries()
-    return drift_ratio([measured[p][STAT] for p in paths], [float(entries[k][STAT]) for k in keys])
+    return drift_ratio([getattr(measured[p], STAT) for p in paths], [float(entries[k][STAT]) for k in keys])
 
 
 def drifted_limit(limit_ms: float, drift: Optional[float]) -> float:

@@ -18,6 +18,7 @@ from typing import Any, Collection, Optional, Sequence
 
 import numpy as np
 
+from tightfit.ondevice.measurement import FIGURE_KEY, Measurement, SpeedStates
 from tightfit.ondevice.timing import Progress, Protocol, measure_interleaved, stderr_progress, summarize
 from tightfit.ondevice.worker import run_in_fresh_process
 
@@ -30,7 +31,7 @@ _T95 = (6.314, 2.920, 2.353, 2.132, 2.015, 1.943, 1.895, 1.860, 1.833, 1.812)
 
 def measure_repeated(paths: list[str], protocol: Protocol, chunk: int = 10,
                      layers: Collection[str] = (), progress: Optional[Progress] = None,
-                     ) -> dict[str, dict[str, Any]]:
+                     ) -> dict[str, Measurement]:
     """Repeat the interleaved measurement in `protocol.repeats` fresh processes and pool the runs.
 
     A process's median can sit several percent (sometimes tens of percent) away
@@ -60,19 +61,20 @@ def repeat_summaries(paths: list[str], protocol: Protocol, chunk: int = 10,
     return {p: [r[a] for r in runs] for p, a in absolute.items()}
 
 
-def combine_repeats(summaries: list[dict[str, Any]], protocol: Protocol) -> dict[str, Any]:
+def combine_repeats(summaries: list[dict[str, Any]], protocol: Protocol) -> Measurement:
     """Statistics of the pooled runs, the repeats' figures and spread, the guard, and a verdict."""
     pooled_ms = np.concatenate([np.asarray(s["times_ms"], dtype=np.float64) for s in summaries])
-    out: dict[str, Any] = summarize(pooled_ms / 1e3, protocol.percentile)
-    del out["drift"], out["total_s"]
-    figures = [float(s["budget_stat_ms"]) for s in summaries]
-    out["repeat_figures_ms"] = [round(f, 6) for f in figures]
-    out["repeat_spread"] = float((max(figures) - min(figures)) / out["budget_stat_ms"]) if len(figures) > 1 else None
-    out["guard"] = guard_from_spread(figures, out["budget_stat_ms"], later=max(1, protocol.repeats))
-    out["states"] = describe_states(pooled_ms, protocol.percentile)
-    out["stable"], out["note"] = assess(out, summaries, protocol)
-    out["repeats"] = [{k: v for k, v in s.items() if k != "times_ms"} for s in summaries]
-    return out
+    pooled = summarize(pooled_ms / 1e3, protocol.percentile)
+    figure = pooled[FIGURE_KEY]
+    figures = [float(s[FIGURE_KEY]) for s in summaries]
+    spread = float((max(figures) - min(figures)) / figure) if len(figures) > 1 else None
+    guard = guard_from_spread(figures, figure, later=max(1, protocol.repeats))
+    states = describe_states(pooled_ms, protocol.percentile)
+    stable, note = assess(spread, guard, states, summaries, protocol)
+    return Measurement(figure, protocol.percentile, pooled["p50_ms"], pooled["p90_ms"], pooled["p99_ms"],
+                       pooled["mean_ms"], pooled["min_ms"], pooled["max_ms"], pooled["cv"], pooled["iqr_over_median"],
+                       pooled["runs"], tuple(round(f, 6) for f in figures), spread, guard, states, stable, note,
+                       tuple({k: v for k, v in s.items() if k != "times_ms"} for s in summaries))
 
 
 def guard_from_spread(figures: Sequence[float], figure: float, later: Optional[int] = None) -> Optional[float]:
@@ -92,14 +94,14 @@ def guard_from_spread(figures: Sequence[float], figure: float, later: Optional[i
     return max(MIN_GUARD, t * s * math.sqrt(1.0 / n + 1.0 / m) / figure)
 
 
-def describe_states(times_ms: np.ndarray, percentile: float = 90.0) -> dict[str, Any]:
+def describe_states(times_ms: np.ndarray, percentile: float = 90.0) -> SpeedStates:
     """Whether the runs fall into a faster and a slower speed state, in words a QA engineer can act on.
 
     The split is the threshold on log-duration that best separates two groups (Otsu 1979: largest
     between-group variance); two states are reported when the groups' medians are at least
     STATE_RATIO apart and the smaller holds at least STATE_SHARE of the runs."""
     ms = np.sort(np.asarray(times_ms, dtype=np.float64))
-    one = {"two_states": False, "slow_share": 0.0, "slow_over_fast": 1.0, "text": "one speed state"}
+    one = SpeedStates()
     if ms.size < 20:
         return one
     logs = np.log(ms)
@@ -116,16 +118,16 @@ def describe_states(times_ms: np.ndarray, percentile: float = 90.0) -> dict[str,
     covers = share > 1 - percentile / 100
     text = (f"two speed states: {100 * share:.0f} % of runs in the slower one ({slow / fast:.1f} x the faster); "
             + (f"p{percentile:g} covers both" if covers else f"p{percentile:g} sits in the faster one"))
-    return {"two_states": True, "slow_share": round(share, 4), "slow_over_fast": round(slow / fast, 3), "text": text}
+    return SpeedStates(True, round(share, 4), round(slow / fast, 3), text)
 
 
-def assess(combined: dict[str, Any], summaries: list[dict[str, Any]],
+def assess(spread: Optional[float], bound: Optional[float], states: SpeedStates, summaries: list[dict[str, Any]],
            protocol: Protocol) -> tuple[bool, str]:
     """Stable when a later measurement of the same kind is expected (one-sided 95 %, guard_from_spread)
     within the protocol's tolerance of this figure, and every repeat settled; the note says what was
     seen either way. Not the range of the repeats: five processes that span 18 % still pin the pooled
     figure to a few percent, which is what QA's re-measurement meets."""
-    problems, spread, bound = [], combined["repeat_spread"], combined.get("guard")
+    problems: list[str] = []
     p, n, tol = f"p{protocol.percentile:g}", len(summaries), 100 * protocol.reproduce_tolerance
     if spread is None or bound is None:
         problems.append("one repeat: reproducibility not measured (use repeats >= 2)")
@@ -135,7 +137,7 @@ def assess(combined: dict[str, Any], summaries: list[dict[str, Any]],
                         "repeats or a quieter device")
     if not all(s.get("settled", True) for s in summaries):
         problems.append(f"the running median did not settle within {protocol.settle_limit} untimed runs")
-    seen = combined["states"]["text"]
+    seen = states.text
     if problems:
         return False, "; ".join(problems) + f"; {seen}"
     return True, (f"{p} reproduces within {100 * bound:.0f} % (95 % bound from {n} repeats, which spread "

@@ -23,16 +23,15 @@ from typing import Any
 from tightfit.ondevice.arguments import module_parser
 from tightfit.ondevice.exports import Export, VerifyError, load_export
 from tightfit.ondevice.files import check_writable, write_json
+from tightfit.ondevice.measurement import Measurement, figure_of
 
 _PACKAGE_ROOT = str(Path(__file__).resolve().parents[2])  # folder that holds tightfit/
 REPRODUCE_FORMAT = "tightfit-reproducibility"
 
 
 def export_figure(e: Export) -> float | None:
-    """The budget percentile the manifest recorded at export (p90_ms for the default p90)."""
-    lat, pct = e.manifest["latency"], float(e.manifest["budget"]["percentile"])
-    value = lat.get(f"p{pct:g}_ms")
-    return None if value is None else float(value)
+    """The figure the manifest recorded at export (its budget percentile); None when not measured there."""
+    return figure_of(e.manifest["latency"])
 
 
 def one_run(folders: list[str], extra: list[str], out: Path) -> tuple[int, dict[str, Any] | None, str]:
@@ -57,7 +56,7 @@ def summarize_runs(exports: list[Export], verdicts: list[dict[str, Any] | None],
             if m is None:
                 figures.append(None)
                 continue
-            figures.append(float(m["measured"]["budget_stat_ms"]))
+            figures.append(Measurement.from_dict(m["measured"]).figure_ms)
             passes += m["pass"] is not False
         seen = [f for f in figures if f is not None]
         within = sum(ref is not None and abs(f / ref - 1) <= tolerance for f in seen)
@@ -108,7 +107,8 @@ def run(args: argparse.Namespace) -> int:
                     print(tail, file=sys.stderr)
                     return 2
                 verdicts.append(verdict)
-                shown = ", ".join(f"{r['measured']['budget_stat_ms']:.4f}" for r in (verdict or {}).get("models", []))
+                shown = ", ".join(f"{Measurement.from_dict(r['measured']).figure_ms:.4f}"
+                                  for r in (verdict or {}).get("models", []))
                 print(f"run {k + 1}/{args.runs}: {'PASS' if code == 0 else 'MISS' if verdict else 'FAILED'}"
                       + (f" ({shown} ms)" if shown else f" ({tail})"), file=sys.stderr, flush=True)
     except KeyboardInterrupt:

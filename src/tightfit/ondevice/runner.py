@@ -187,7 +187,7 @@ def measure_bundle(bundle: Bundle, protocol: Protocol, chunk: int, source: str) 
         "format": TABLE_FORMAT, "version": TABLE_VERSION, "space_hash": bundle.space_hash,
         "hardware": describe_hardware(), "protocol": {**protocol.to_dict(), "chunk": chunk},
         "created": datetime.now(timezone.utc).isoformat(timespec="seconds"), "bundle": source,
-        "entries": {e.id: {"kind": e.kind, "file": e.file, "meta": e.meta, **results[e.path]}
+        "entries": {e.id: {"kind": e.kind, "file": e.file, "meta": e.meta, **results[e.path].to_dict()}
                     for e in bundle.entries},
     }
 

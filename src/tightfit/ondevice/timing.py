@@ -18,6 +18,8 @@ from typing import Any, Callable, Collection, Optional, TextIO
 import numpy as np
 import onnxruntime as ort
 
+from tightfit.ondevice.measurement import FIGURE_KEY, PERCENTILE_KEY
+
 Progress = Callable[[str, int, int], None]
 """Progress callback: (stage, done, total)."""
 
@@ -122,7 +124,7 @@ def summarize(times_s: np.ndarray, percentile: float = 90.0) -> dict[str, float]
     return {
         "p50_ms": float(p50), "p90_ms": float(p90), "p99_ms": float(p99),
         "mean_ms": mean, "min_ms": float(ms.min()), "max_ms": float(ms.max()),
-        "budget_stat_ms": float(pb), "budget_percentile": float(percentile),
+        FIGURE_KEY: float(pb), PERCENTILE_KEY: float(percentile),
         "cv": float(ms.std(ddof=1) / mean) if ms.size > 1 else 0.0,
         "iqr_over_median": float((p75 - p25) / p50), "drift": float(drift),
         "runs": int(ms.size), "total_s": float(ms.sum() / 1e3),
@@ -203,8 +205,3 @@ def measure_interleaved(paths: list[str], protocol: Protocol, chunk: int = 10,
 def _report(progress: Optional[Progress], stage: str, done: int, total: int) -> None:
     if progress is not None:
         progress(stage, done, total)
-
-
-def fits_budget(entry: dict[str, Any], budget_ms: float) -> bool:
-    """A budget is met when the protocol percentile (p90 by default) is at or under it."""
-    return entry["budget_stat_ms"] <= budget_ms

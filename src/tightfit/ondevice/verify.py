@@ -26,7 +26,8 @@ from tightfit.ondevice.hardware import describe_hardware
 from tightfit.ondevice.labelled import accuracy_table, folder_accuracy
 from tightfit.ondevice.repeats import measure_repeated
 from tightfit.ondevice.runner import QUICK
-from tightfit.ondevice.timing import Protocol, fits_budget, stderr_progress
+from tightfit.ondevice.measurement import Measurement
+from tightfit.ondevice.timing import Protocol, stderr_progress
 
 
 def protocol_for(e: Export, threads: int | None, repeats: int | None, quick: bool) -> Protocol:
@@ -54,12 +55,12 @@ def environment_warnings(e: Export, hardware: dict, protocol: Protocol) -> list[
     return out
 
 
-def measure(exports: list[Export], protocols: list[Protocol]) -> dict[Path, dict]:
+def measure(exports: list[Export], protocols: list[Protocol]) -> dict[Path, Measurement]:
     """Interleave all models that share a protocol (usually all of them) and return summaries."""
     groups: dict[Protocol, list[str]] = {}
     for e, p in zip(exports, protocols):
         groups.setdefault(p, []).append(str(e.model))
-    out: dict[Path, dict] = {}
+    out: dict[Path, Measurement] = {}
     for p, paths in groups.items():
         print(f"measuring {len(paths)} model(s): {max(p.repeats, 1)} repeat(s), at least {p.time_seconds:g} s "
               f"and {p.time_runs} runs each, {p.threads} thread(s)", file=sys.stderr)
@@ -68,21 +69,19 @@ def measure(exports: list[Export], protocols: list[Protocol]) -> dict[Path, dict
     return out
 
 
-def judge(e: Export, s: dict, protocol: Protocol, warnings: list[str], threads: int | None) -> dict:
-    """One model's verdict record."""
+def judge(e: Export, m: Measurement, protocol: Protocol, warnings: list[str], threads: int | None) -> dict:
+    """One model's verdict record: the budget is met when the measurement fits it (Measurement.fits)."""
     budget = None if e.manifest["budget"]["ms"] is None else float(e.manifest["budget"]["ms"])
-    keep = ("p50_ms", "p90_ms", "p99_ms", "mean_ms", "budget_stat_ms", "cv", "iqr_over_median",
-            "repeat_figures_ms", "repeat_spread", "guard", "states", "stable", "note", "runs", "repeats")
     lat = e.manifest["latency"]
     return {
         "name": e.name, "export_dir": str(e.folder), "model_file": e.manifest["model_file"],
         "sha256": e.manifest["sha256"], "sha256_ok": True,
         "budget_ms": budget, "percentile": protocol.percentile,
         "budget_device": e.manifest["budget"].get("device"),
-        "measured": {k: s[k] for k in keep if k in s},
+        "measured": m.to_dict(),
         "at_export": {k: lat[k] for k in ("p50_ms", "p90_ms", "p99_ms") if k in lat},
-        "margin": None if budget is None else (budget - s["budget_stat_ms"]) / budget,
-        "pass": None if budget is None else fits_budget(s, budget), "noisy": not s["stable"],
+        "margin": None if budget is None else (budget - m.figure_ms) / budget,
+        "pass": None if budget is None else m.fits(budget), "noisy": not m.stable,
         "warnings": warnings, "threads_override": threads, "protocol": protocol.to_dict(),
     }
 

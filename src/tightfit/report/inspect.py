@@ -15,6 +15,7 @@ from tightfit.latency.predict import load_predictor, predicted_range
 from tightfit.latency.probe import class_count
 from tightfit.model.arithmetic import architecture_size
 from tightfit.ondevice.files import read_jsonl
+from tightfit.ondevice.measurement import figure_of
 from tightfit.recipe import Recipe, load_recipe
 from tightfit.report.data import _read_json, accuracy_text, export_folder, manifest_claim
 
@@ -59,8 +60,8 @@ def search_lines(run_dir: Path, front: bool) -> list[str]:
     picks = run_dir / "search" / "picks.json"
     if picks.is_file():
         for p in json.loads(picks.read_text("utf-8")):
-            got = p.get("measured") or {}
-            meas = f"measured {got['budget_stat_ms']:.3f} ms" if got.get("budget_stat_ms") else "not measured here"
+            got = figure_of(p.get("measured"))
+            meas = f"measured {got:.3f} ms" if got else "not measured here"
             manifest = _read_json(Path(export_folder(p, run_dir)) / "manifest.json", [])
             lines.append(f"pick {p['device']} {p['budget_ms']:g} ms: {p['key']}  validation "
                          f"{accuracy_text(manifest_claim(manifest, 'validation'), p['val_acc'])}, {meas}, "

@@ -15,6 +15,7 @@ from typing import TYPE_CHECKING, Any
 
 from tightfit.errors import UserError
 from tightfit.ondevice.files import write_bytes, write_text
+from tightfit.ondevice.measurement import figure_of
 from tightfit.report.data import RunData, _devices, _number, accuracy_text, export_folder, load_run, manifest_claim
 from tightfit.report.plots import _repeat_figures, plot_accuracy_latency, plot_pick_latency, plot_training
 
@@ -55,11 +56,11 @@ def _picks_table(data: RunData) -> str:
             "Predicted ms", "Measured ms", "Fits", "QA verify", "Note"]
     rows = []
     for p in data.picks:
-        measured = (p.get("measured") or {}).get("budget_stat_ms")
+        measured = figure_of(p.get("measured"))
         folder = export_folder(p, data.run_dir)
         manifest, qa = data.manifests.get(folder), data.qa.get(folder)
         qa_text = "-" if not qa else f"{'PASS' if qa.get('pass') else 'MISS'} " \
-                                     f"{_fmt((qa.get('measured') or {}).get('budget_stat_ms'), '.3g')} ms"
+                                     f"{_fmt(figure_of(qa.get('measured')), '.3g')} ms"
         if qa and qa.get("accuracy"):  # verify --data: top-1 on QA's own labelled images
             qa_text += f"; top-1 {accuracy_text(qa['accuracy'])}"
         cells = [p.get("device"), _fmt(p.get("budget_ms"), "g"), p.get("key"),

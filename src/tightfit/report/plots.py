@@ -7,6 +7,7 @@ from __future__ import annotations
 import statistics
 from typing import TYPE_CHECKING, Any, Optional
 
+from tightfit.ondevice.measurement import figure_of
 from tightfit.report.data import RunData, _devices, _number, export_folder, front_points
 
 if TYPE_CHECKING:
@@ -66,10 +67,10 @@ def _draw_picks(ax: Any, picks: list[dict], qa: list[Optional[dict]], colour: st
     """A star at the predicted latency, an arrow to the measured percentile (QA's when only QA measured)."""
     for n, (p, check) in enumerate(zip(picks, qa)):
         x0, acc = p["predicted_ms"], p["val_acc"]
-        measured = (p.get("measured") or {}).get("budget_stat_ms")
+        measured = figure_of(p.get("measured"))
         source, fits = "", p.get("fits")
         if measured is None and check:
-            measured, source, fits = (check.get("measured") or {}).get("budget_stat_ms"), "QA ", check.get("pass")
+            measured, source, fits = figure_of(check.get("measured")), "QA ", check.get("pass")
         ax.scatter([x0], [acc], marker="*", s=160, color=colour, edgecolor="black", zorder=5,
                    label=_once(ax, "pick at predicted latency"))
         if measured is None:

@@ -7,12 +7,13 @@ smallest subnet only as the last resort. choose.py measures and exports; this fi
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Callable, Optional
+from typing import Callable, Optional
 
 import numpy as np
 
 from tightfit.export.cut import CutResult
 from tightfit.model.extract import StaticNet
+from tightfit.ondevice.measurement import Measurement
 from tightfit.search.evolution import Candidate
 
 
@@ -21,7 +22,7 @@ class Tried:
     cand: Candidate
     cut: Optional[CutResult]
     net: Optional[StaticNet]
-    measured: Optional[dict[str, Any]] = None
+    measured: Optional[Measurement] = None
     remeasured: bool = False  # measured a second time, its repeats pooled with the first ones
 
 
@@ -44,23 +45,23 @@ Remeasure = Callable[[list[Tried]], None]
 
 def measured_ratio(tried: list[Tried]) -> Optional[float]:
     """Median measured/predicted over every candidate measured: how far off the predictor is now."""
-    r = [t.measured["budget_stat_ms"] / t.cand.latency_ms for t in tried if t.measured and t.cand.latency_ms > 0]
+    r = [t.measured.figure_ms / t.cand.latency_ms for t in tried if t.measured and t.cand.latency_ms > 0]
     return float(np.median(r)) if r else None
 
 
 def _most_accurate(tried: list[Tried]) -> Tried:
-    return max(tried, key=lambda t: (t.cand.fitness, -t.measured["budget_stat_ms"]))
+    return max(tried, key=lambda t: (t.cand.fitness, -t.measured.figure_ms))
 
 
 DEFAULT_GUARD = 0.05  # when a candidate's spread is unknown (one repeat) and no --guard is given
 
 
-def guard_share(measured: dict[str, Any], fixed: Optional[float]) -> float:
+def guard_share(measured: Measurement, fixed: Optional[float]) -> float:
     """Share of the budget a measured figure must leave free: ``fixed`` (--guard) when given, else the
     figure's own guard from the spread of its repeats (ondevice/repeats.py guard_from_spread)."""
     if fixed is not None:
         return fixed
-    own = measured.get("guard")
+    own = measured.guard
     return DEFAULT_GUARD if own is None else float(own)
 
 
@@ -69,7 +70,7 @@ def guard_of(t: Tried, fixed: Optional[float]) -> float:
 
 
 def keeps_guard(t: Tried, budget_ms: float, fixed: Optional[float]) -> bool:
-    return t.measured["budget_stat_ms"] <= budget_ms * (1.0 - guard_of(t, fixed))
+    return t.measured.fits(budget_ms, guard_of(t, fixed))
 
 
 RUNG_BOTTOM = 0.9  # the lowest rung: this share of the usable budget (budget less the expected guard)
@@ -131,10 +132,10 @@ def measure_and_choose(ranked: list[Candidate], budget_ms: float, measure: Measu
         vs = "" if ratio is None else f"; measured = {ratio:.2f} x predicted"  # None: no positive prediction
         say(f"  none of {len(tried)} measured candidates fits the budget less its guard "
             f"({_guards_text(tried, guard)}{vs}): trying faster ones")
-    within = [t for t in tried if t.measured["budget_stat_ms"] <= budget_ms]
+    within = [t for t in tried if t.measured.fits(budget_ms)]
     if within:
         return Choice(_most_accurate(within), True, "no candidate kept its guard; this one fits the budget", tried)
-    return Choice(min(tried, key=lambda t: t.measured["budget_stat_ms"]), False,
+    return Choice(min(tried, key=lambda t: t.measured.figure_ms), False,
                   "no candidate measured within the budget: this is the fastest one tried", tried)
 
 
@@ -145,9 +146,9 @@ def _fall_note(attempt: int, pick: Tried, tried: list[Tried], last_resort: bool,
         return ""
     if not last_resort:
         return "the most accurate candidates measured over budget less their guard: fell back to a lower rung"
-    others = sorted((t for t in tried if t is not pick), key=lambda t: t.measured["budget_stat_ms"])[:2]
-    near = "; ".join(f"{t.cand.key} measured {t.measured['budget_stat_ms']:.4g} ms "
-                     f"({100 * t.measured['budget_stat_ms'] / budget_ms:.0f} % of the budget)" for t in others)
+    others = sorted((t for t in tried if t is not pick), key=lambda t: t.measured.figure_ms)[:2]
+    near = "; ".join(f"{t.cand.key} measured {t.measured.figure_ms:.4g} ms "
+                     f"({100 * t.measured.use(budget_ms):.0f} % of the budget)" for t in others)
     return f"every ranked candidate measured over the budget less its guard, the fastest of them: {near}; fell back to the smallest subnet"
 
 
@@ -157,8 +158,8 @@ def _remeasure_close(tried: list[Tried], budget_ms: float, remeasure: Remeasure,
     those that keep it now. Only for guards from the spread (a fixed --guard does not narrow)."""
     if guard is not None:
         return []
-    close = [t for t in tried if not t.remeasured and t.measured["budget_stat_ms"] <= budget_ms]
-    close = sorted(close, key=lambda t: (-t.cand.fitness, t.measured["budget_stat_ms"]))[:top]
+    close = [t for t in tried if not t.remeasured and t.measured.fits(budget_ms)]
+    close = sorted(close, key=lambda t: (-t.cand.fitness, t.measured.figure_ms))[:top]
     if not close:
         return []
     say(f"  {len(close)} candidate(s) fit the budget but not their guard ({_guards_text(close, None)}): "

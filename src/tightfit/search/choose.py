@@ -1,7 +1,8 @@
-"""The last step of a search: measure the top candidates directly, choose the pick, export it.
+"""The last step of a search: measure the top candidates directly and choose the pick.
 
 Predictions only rank candidates; on the machine a table describes, the measured percentile
-decides. The pick is exported with its manifest to RUN_DIR/exports/<device>-<budget>ms/.
+decides. The pick is a record held in memory (export/pick.py) until the search writes it, once, to
+RUN_DIR/exports/<device>-<budget>ms/; its files wait in RUN_DIR/search/staging/ until then.
 """
 from __future__ import annotations
 
@@ -11,25 +12,29 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Callable, Optional
 
+import numpy as np
 
+from tightfit.budgets import budget_label
 from tightfit.data.dataset import Dataset
 from tightfit.export.cut import cut_one
-from tightfit.export.finetuned import finetune_export
-from tightfit.export.manifest import export_pick, latency_section
+from tightfit.export.finetuned import finetuned_cut
+from tightfit.export.manifest import shipped_hits
+from tightfit.export.pick import Guard, Pick
 from tightfit.latency.table import LatencyTable
+from tightfit.ondevice.accuracy import Accuracy, format_accuracy, paired_comparison
 from tightfit.ondevice.files import device_name
 from tightfit.ondevice.hardware import describe_hardware
 from tightfit.ondevice.repeats import combine_repeats, repeat_summaries
 from tightfit.ondevice.timing import Protocol
-from tightfit.budgets import budget_label
 from tightfit.progress import bar as progress_bar
+from tightfit.rundir import TrainedRun
 from tightfit.search.cache import CachedAccuracy, CachedLatency
 from tightfit.search.choice_rule import Tried, guard_of, guard_share, measure_and_choose
 from tightfit.search.evolution import Candidate
 from tightfit.search.fitness import RunAccuracy
+from tightfit.search.lead import contenders, runner_up, too_small_line, too_small_to_separate
 from tightfit.search.settings import SearchSettings
 from tightfit.train.finetune import FinetuneSettings
-from tightfit.rundir import TrainedRun
 
 @dataclass
 class SearchContext:
@@ -76,7 +81,7 @@ class _Measurer:
         t0 = time.perf_counter()
         out = [Tried(c, *cut_one(self.ctx.run, self.ctx.ds, f"candidate{start + i}", c.subnet, self.staging,
                                  validate=False)) for i, c in enumerate(cands)]
-        self.clock["cut"] = self.clock.get("cut", 0.0) + time.perf_counter() - t0
+        self._tick("cut", t0)
         return out
 
     def __call__(self, cands: list[Candidate], start: int) -> list[Tried]:
@@ -92,61 +97,74 @@ class _Measurer:
     def _measure(self, batch: list[Tried]) -> None:
         t0 = time.perf_counter()
         runs = repeat_summaries([str(t.cut.onnx_path) for t in batch], self.protocol)
-        self.clock["measure"] = self.clock.get("measure", 0.0) + time.perf_counter() - t0
+        self._tick("measure", t0)
         for t in batch:
             path = str(t.cut.onnx_path)
             self.runs[path] = self.runs.get(path, []) + runs[path]
             t.measured = combine_repeats(self.runs[path], self.protocol)
             if self.guard_floor > 0:
-                t.measured["guard"] = max(self.guard_floor, guard_share(t.measured, None))
+                t.measured = replace(t.measured, guard=max(self.guard_floor, guard_share(t.measured, None)))
+
+    def hits(self, t: Tried, split: str) -> np.ndarray:
+        """Right/wrong per image of the candidate's ONNX file on a whole split ("val" or "test")."""
+        t0 = time.perf_counter()
+        out = shipped_hits(Path(t.cut.onnx_path).read_bytes(), self.ctx.ds, split)
+        self._tick("score", t0)
+        return out
+
+    def _tick(self, phase: str, t0: float) -> None:
+        self.clock[phase] = self.clock.get(phase, 0.0) + time.perf_counter() - t0
 
 
-def choose_and_export(ctx: SearchContext, table: LatencyTable, ranked: list[Candidate], budget_ms: float,
-                      latency: CachedLatency, verifiable: bool, guard_floor: float = 0.0) -> dict[str, Any]:
-    """Verify (when the table is for this host), export the pick, and return its picks.json row.
+def staging_dir(ctx: SearchContext, device: str, budget_ms: float) -> Path:
+    """Where a budget's candidates are cut; the pick's files stay there until it is written."""
+    return ctx.run_dir / "search" / "staging" / f"{device_name(device)}-{budget_label(budget_ms)}"
+
+
+def choose_pick(ctx: SearchContext, table: LatencyTable, ranked: list[Candidate], budget_ms: float,
+                latency: CachedLatency, verifiable: bool, guard_floor: float = 0.0) -> Pick:
+    """Measure (when the table is for this host) and choose the pick, score it and compare it with the
+    runner-up; returns the record, nothing written but its staged files.
     ``ranked``: the order in which candidates are measured (tightfit.search.driver.measuring_order);
     ``guard_floor``: the narrowest guard any candidate gets (a choice made again by confirm.py)."""
-    label = f"{device_name(table.name)}-{budget_label(budget_ms)}"
-    staging = ctx.run_dir / "search" / "staging" / label
+    staging = staging_dir(ctx, table.name, budget_ms)
     shutil.rmtree(staging, ignore_errors=True)
     protocol = verification_protocol(table.protocol)
     measurer = _Measurer(ctx, staging, protocol, guard_floor)
-    smallest = ctx.run.recipe.space.smallest()
 
     def fallback() -> Candidate:
+        smallest = ctx.run.recipe.space.smallest()
         return Candidate(smallest.to_key(), smallest, ctx.fitness(smallest), latency(smallest), -1)
 
+    fixed, guard = ctx.settings.guard, None
     if verifiable:
         top = ctx.settings.top
         ctx.say(f"  measuring the top {min(top, len(ranked))} candidates directly ({protocol.repeats} repeats)")
-        choice = measure_and_choose(ranked, budget_ms, measurer, top, fallback, ctx.say,
-                                    guard=ctx.settings.guard, remeasure=measurer.remeasure)
-        pick, fits, note, ratio, hardware = choice.pick, choice.fits, choice.note, choice.ratio(), describe_hardware()
-        guard = {"share": round(guard_of(pick, ctx.settings.guard), 4), "rule": guard_rule(ctx.settings.guard, guard_floor)}
-    else:
-        within = [c for c in ranked if c.latency_ms <= budget_ms] or [fallback()]
-        pick, fits, note, ratio, hardware = measurer.cut(within[:1], 0)[0], True, UNVERIFIED, None, table.hardware
-        guard = None
-    export_dir = ctx.run_dir / "exports" / label
-    t0 = time.perf_counter()
-    manifest = export_pick(ctx.run, ctx.ds, subnet=pick.cand.subnet, cut=pick.cut, net=pick.net, export_dir=export_dir,
-                           latency=latency_section(pick.measured, hardware, protocol.to_dict(), pick.cand.latency_ms,
-                                                   note, guard),
-                           budget_ms=budget_ms, percentile=protocol.percentile, device=table.name)
-    measurer.clock["score and export the pick"] = time.perf_counter() - t0
-    if pick.measured is not None:
-        ctx.pick_runs[str(export_dir)] = PickRuns(measurer.runs[str(pick.cut.onnx_path)], time.time())
+        choice = measure_and_choose(ranked, budget_ms, measurer, top, fallback, ctx.say, guard=fixed,
+                                    remeasure=measurer.remeasure)
+        chosen, rival, hardware = choice.pick, runner_up(choice, budget_ms, fixed), describe_hardware()
+        rivals, fits, note, ratio = contenders(choice, budget_ms, fixed), choice.fits, choice.note, choice.ratio()
+        guard = Guard(guard_of(chosen, fixed), guard_rule(fixed, guard_floor))
+    else:  # another device: by prediction; the next candidate within the budget is the runner-up
+        rivals = measurer.cut(([c for c in ranked if c.latency_ms <= budget_ms] or [fallback()])[:2], 0)
+        chosen, rival, hardware = rivals[0], (rivals[1:] or [None])[0], table.hardware
+        fits, note, ratio = True, UNVERIFIED, None
+    export_dir = ctx.run_dir / "exports" / staging.name
+    val_hits = measurer.hits(chosen, "val")
+    validation, test = Accuracy.of(val_hits, "validation"), Accuracy.of(measurer.hits(chosen, "test"), "test")
+    lead = None if rival is None else paired_comparison(val_hits, measurer.hits(rival, "val"), against=rival.cand.key)
+    if chosen.measured is not None:
+        ctx.pick_runs[str(export_dir)] = PickRuns(measurer.runs[str(chosen.cut.onnx_path)], time.time())
     ctx.say("  after the search: " + ", ".join(f"{k} {v:.1f} s" for k, v in measurer.clock.items()))
-    _remove_staging(staging)
+    scores = [t.cand.fitness for t in rivals]
+    if too_small_to_separate(lead, validation, scores):
+        ctx.say(too_small_line(lead, validation, scores, budget_label(budget_ms)))
     if note:
         ctx.say(f"  {note}")
-    return {"device": table.name, "budget_ms": budget_ms, "percentile": protocol.percentile, "key": pick.cand.key,
-            "val_acc": pick.cand.fitness, "predicted_ms": round(pick.cand.latency_ms, 5), "measured": pick.measured,
-            "export_dir": str(export_dir), "fits": fits, "verified": pick.measured is not None, "note": note,
-            "guard": guard,
-            "measured_over_predicted": None if ratio is None else round(ratio, 4),
-            "budget_use": None if pick.measured is None else round(pick.measured["budget_stat_ms"] / budget_ms, 4),
-            "test_acc": manifest["accuracy"]["test"]["top1"]}
+    return Pick(table.name, budget_ms, protocol.percentile, chosen.cand.subnet, chosen.cand.latency_ms,
+                chosen.cand.fitness, validation, test, chosen.measured, hardware, protocol, guard, fits, note,
+                chosen.cut, chosen.net, export_dir, ratio, lead,
+                timings={k: round(v, 2) for k, v in measurer.clock.items()})
 
 
 def guard_rule(fixed: Optional[float], floor: float = 0.0) -> str:
@@ -154,28 +172,30 @@ def guard_rule(fixed: Optional[float], floor: float = 0.0) -> str:
         f", at least {100 * floor:.1f} % (the spread its device's picks showed when measured again)" if floor > 0 else "")
 
 
-def finetune_pick(ctx: SearchContext, row: dict[str, Any]) -> dict[str, Any]:
-    """Fine-tune the pick of ``row`` from its inherited weights (its export folder rewritten, the
-    measured latency kept: the graph is unchanged) and return the row with the new accuracy."""
+def finetune_pick(ctx: SearchContext, pick: Pick) -> Pick:
+    """The pick fine-tuned from its inherited weights (the graph, and so its measured latency, kept),
+    scored again; the inherited accuracies stay in its fine-tune record."""
     s = ctx.settings
     bar = progress_bar(total=s.finetune_steps, desc="fine-tune", unit="step", disable=not ctx.progress)
-    manifest = finetune_export(ctx.run, ctx.run_dir, ctx.ds, Path(row["export_dir"]),
-                               FinetuneSettings(steps=s.finetune_steps, lr=s.finetune_lr), on_step=lambda _: bar.update(1))
+    cut, net, record = finetuned_cut(ctx.run, ctx.run_dir, ctx.ds, pick.subnet, pick.cut,
+                                     FinetuneSettings(steps=s.finetune_steps, lr=s.finetune_lr),
+                                     on_step=lambda _: bar.update(1))
     bar.close()
-    ft, acc = manifest["finetune"], manifest["accuracy"]
-    before = ft["inherited_accuracy"]["validation"]["top1"]
-    ctx.say(f"  fine-tuned the pick {ft['steps']} steps (lr {ft['lr']:g}"
-            + (", reused from an earlier budget" if ft["reused"] else f", {ft['cpu_s']:.0f} CPU-s")
-            + f"): validation {before:.2f} -> {acc['validation']['top1']:.2f} %")
-    return {**row, "test_acc": acc["test"]["top1"],
-            "finetune": {"steps": ft["steps"], "lr": ft["lr"], "cpu_s": ft["cpu_s"], "reused": ft["reused"],
-                         "val_acc_before": before, "val_acc_after": acc["validation"]["top1"],
-                         "test_acc_before": ft["inherited_accuracy"]["test"]["top1"]}}
+    data = Path(cut.onnx_path).read_bytes()
+    validation = Accuracy.of(shipped_hits(data, ctx.ds, "val"), "validation")
+    test = Accuracy.of(shipped_hits(data, ctx.ds, "test"), "test")
+    record = {**record, "inherited_accuracy": {"validation": pick.validation.to_dict(), "test": pick.test.to_dict()}}
+    ctx.say(f"  fine-tuned the pick {record['steps']} steps (lr {record['lr']:g}"
+            + (", reused from an earlier budget" if record["reused"] else f", {record['cpu_s']:.0f} CPU-s")
+            + f"): validation {format_accuracy(pick.validation)} -> {format_accuracy(validation)}")
+    return replace(pick, cut=cut, net=net, validation=validation, test=test, finetune=record)
 
 
-def _remove_staging(staging: Path) -> None:
+def remove_staging(ctx: SearchContext, pick: Pick) -> None:
+    """Once the pick is written its budget's staged cuts go, and the staging folder once no budget uses it."""
+    staging = staging_dir(ctx, pick.device, pick.budget_ms)
     shutil.rmtree(staging, ignore_errors=True)
     try:
-        staging.parent.rmdir()  # the staging folder goes once no budget uses it
+        staging.parent.rmdir()
     except OSError:
         pass

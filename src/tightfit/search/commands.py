@@ -8,22 +8,29 @@ from typing import Any, Optional
 
 from tightfit.errors import UserError
 from tightfit.budgets import parse_budget
+from tightfit.ondevice.accuracy import Accuracy, format_accuracy
+from tightfit.ondevice.measurement import figure_of
 from tightfit.search.settings import SearchSettings
 
 
 def format_picks(rows: list[dict[str, Any]]) -> str:
-    head = (f"{'device':<16} {'budget':>8} {'val %':>6} {'test %':>6} {'pred ms':>8} {'meas ms':>8} "
+    """The table of picks: accuracies with their interval and image count (format_accuracy), latency
+    measured (or predicted where unverified) against the budget."""
+    head = (f"{'device':<16} {'budget':>8} {'validation':>26} {'test':>26} {'pred ms':>8} {'meas ms':>8} "
             f"{'margin':>7} {'use':>6}  key")
     lines = [head, "-" * len(head)]
     for r in rows:
-        m = r["measured"]["budget_stat_ms"] if r["measured"] else None
+        m = figure_of(r["measured"])
         used = m if m is not None else r["predicted_ms"]
-        lines.append(f"{r['device'][:16]:<16} {r['budget_ms']:>6.4g}ms {r['val_acc']:>6.2f} {r['test_acc']:>6.2f} "
+        acc = r.get("accuracy") or {}
+        val, test = (format_accuracy(Accuracy.from_dict(acc.get(split))) for split in ("validation", "test"))
+        lines.append(f"{r['device'][:16]:<16} {r['budget_ms']:>6.4g}ms {val:>26} {test:>26} "
                      f"{r['predicted_ms']:>8.4f} {m if m is not None else float('nan'):>8.4f} "
                      f"{100 * (r['budget_ms'] - used) / r['budget_ms']:>6.1f}% {100 * used / r['budget_ms']:>5.1f}%  "
                      f"{r['key']}{'' if r['fits'] else '  (DOES NOT FIT)'}{'' if r['verified'] else '  (unverified)'}")
     pct = rows[0]["percentile"] if rows else 90.0
-    lines.append(f"meas ms = measured p{pct:g} (pooled over fresh-process repeats); margin and use are against the budget "
+    lines.append(f"validation and test: top-1 (95 % interval, images) of the exported file; meas ms = measured "
+                 f"p{pct:g} (pooled over fresh-process repeats); margin and use are against the budget "
                  "(predicted where unverified)")
     return "\n".join(lines)
 
@@ -58,8 +65,7 @@ def _cmd_search(args: Any) -> int:
     if args.threads:
         import torch
         torch.set_num_threads(args.threads)
-    for b in args.budget:
-        parse_budget(b)
+    budgets = [parse_budget(b) for b in args.budget]
     settings = SearchSettings(population=_positive("population", args.population, 2),
                               evaluations=_positive("evaluations", args.evaluations), seed=args.seed,
                               top=_positive("top", args.top), val_images=_positive("val-images", args.val_images, 0),
@@ -70,7 +76,7 @@ def _cmd_search(args: Any) -> int:
                               finetune_lr=_learning_rate(args.finetune_lr))
     from tightfit.search.driver import run_search  # torch: only once the arguments are known good
     quiet = args.quiet or args.json
-    rows = run_search(args.run, args.table, args.budget, settings, progress=not quiet,
+    rows = run_search(args.run, args.table, budgets, settings, progress=not quiet,
                       say=(lambda line: print(line, file=sys.stderr)) if args.json else print)
     if args.json:
         print(json.dumps(rows, indent=1))

@@ -24,12 +24,13 @@ from tightfit.latency.table import LatencyTable
 from tightfit.model.space import SpaceSpec
 from tightfit.ondevice.files import append_jsonl, device_name, read_jsonl, write_json, write_text
 from tightfit.recipe import Recipe
-from tightfit.budgets import budget_label, parse_budget
+from tightfit.budgets import budget_label
 from tightfit.progress import bar
 from tightfit.search.cache import AccuracyCache, CachedAccuracy, CachedLatency
 from tightfit.ondevice.hardware import same_host
 from tightfit.search.choice_rule import DEFAULT_GUARD
-from tightfit.search.choose import SearchContext, choose_and_export, finetune_pick
+from tightfit.export.pick import Pick, write_picks
+from tightfit.search.choose import SearchContext, choose_pick, finetune_pick, remove_staging
 from tightfit.search.confirm import confirm_picks, guard_floor_of
 from tightfit.search.evolution import Candidate, fastest_check, front_first, pareto_front, regularized_evolution
 from tightfit.search.fitness import RunAccuracy
@@ -164,10 +165,10 @@ def load_predictors(paths: list[str], recipe: Recipe) -> list[tuple[LatencyTable
     return out
 
 
-def run_search(run_dir: str | Path, table_paths: list[str], budgets: list[str], settings: SearchSettings,
+def run_search(run_dir: str | Path, table_paths: list[str], budget_ms: list[float], settings: SearchSettings,
                progress: bool = True, say: Callable[[str], None] = print) -> list[dict[str, Any]]:
-    """Search, verify and export every (device, budget); returns the rows of picks.json written."""
-    budget_ms = [parse_budget(b) for b in budgets]
+    """Search, verify and export every (device, budget) (budgets in ms, parsed by the caller: a command
+    checks them before anything loads); returns the rows of picks.json written."""
     run_dir = Path(run_dir)
     run = load_trained(run_dir)
     cfg = run.recipe
@@ -195,7 +196,8 @@ def run_search(run_dir: str | Path, table_paths: list[str], budgets: list[str], 
 
 
 def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPredictor, budgets: list[float]) -> list[dict[str, Any]]:
-    """Every budget for one device: search, then verify and export the pick."""
+    """Every budget for one device: search, choose (and fine-tune) the pick; then confirm the device's
+    picks and write each once (export folder and picks.json row, export/pick.py write_pick)."""
     out, compute, say = ctx.run_dir / "search", ctx.compute, ctx.say
     latency, seen, picks = CachedLatency(predictor), [], []
     verifiable = same_host(table.hardware)
@@ -224,42 +226,42 @@ def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPr
             seen += result.candidates
             write_front(out / f"front-{device_name(table.name)}.json", table.name, out / "candidates.jsonl")
             orders[b] = measuring_order(ctx, ranked_within(seen, limit))
-            row = choose_and_export(ctx, table, orders[b], b, latency, verifiable)
-            row["session_drift"] = drift
-            again = corrected_limit(row, base, limit) if attempt == 0 else None
+            pick = replace(choose_pick(ctx, table, orders[b], b, latency, verifiable), session_drift=drift)
+            again = corrected_limit(pick, base, limit) if attempt == 0 else None
             if again is None:
                 break
-            say(f"  the pick uses {row_use(row):.0%} of the budget and the measured candidates ran "
-                f"{row['measured_over_predicted']:.2f} x their predictions: searching again up to {again:.4g} ms predicted")
+            say(f"  the pick uses {pick.use():.0%} of the budget and the measured candidates ran "
+                f"{pick.measured_over_predicted:.2f} x their predictions: searching again up to {again:.4g} ms predicted")
             limit = again
             # a correction, not a new search: half the evaluations (the budget's time bar holds on a noisy host)
             settings = replace(settings, evaluations=max(settings.population, settings.evaluations // 2))
         if ctx.settings.finetune_steps > 0:
-            row = finetune_pick(ctx, row)
-        picks.append(row)
-        merge_picks(out / "picks.json", picks)
+            pick = finetune_pick(ctx, pick)
+        picks.append(pick)
     if verifiable and ctx.settings.confirm:
         picks = _confirm(ctx, table, picks, orders, latency)
-        merge_picks(out / "picks.json", picks)
-    return picks
+    rows = write_picks(ctx.run, picks, out / "picks.json")
+    for p in picks:
+        remove_staging(ctx, p)
+    return rows
 
 
-def _confirm(ctx: SearchContext, table: LatencyTable, picks: list[dict[str, Any]], orders: dict[float, list[Candidate]],
-             latency: CachedLatency) -> list[dict[str, Any]]:
+def _confirm(ctx: SearchContext, table: LatencyTable, picks: list[Pick], orders: dict[float, list[Candidate]],
+             latency: CachedLatency) -> list[Pick]:
     """Measure the device's picks again (confirm.py); where one no longer keeps its guard and the guard
     comes from the spread, choose that budget again with every candidate's guard at least as wide."""
     picks = confirm_picks(ctx, table, picks)
     out = []
-    for row in picks:
-        floor = guard_floor_of(row) if ctx.settings.guard is None else None
+    for pick in picks:
+        floor = guard_floor_of(pick) if ctx.settings.guard is None else None
         if floor is not None:
-            ctx.say(f"  {budget_label(row['budget_ms'])}: the pick measured {row['confirmed']['pooled_ms']:.4g} ms over both "
+            ctx.say(f"  {budget_label(pick.budget_ms)}: the pick measured {pick.confirmation.pooled_ms:.4g} ms over both "
                     f"windows and no longer keeps its {100 * floor:.1f} % guard: choosing again with guards of at least that")
-            again = choose_and_export(ctx, table, orders[row["budget_ms"]], row["budget_ms"], latency, True, guard_floor=floor)
-            row = {**again, "session_drift": row.get("session_drift"), "chosen_again": row["confirmed"]}
+            again = choose_pick(ctx, table, orders[pick.budget_ms], pick.budget_ms, latency, True, guard_floor=floor)
+            pick = replace(again, session_drift=pick.session_drift, chosen_again=pick.confirmation)
             if ctx.settings.finetune_steps > 0:
-                row = finetune_pick(ctx, row)
-        out.append(row)
+                pick = finetune_pick(ctx, pick)
+        out.append(pick)
     return out
 
 
@@ -277,33 +279,15 @@ def _drift(ctx: SearchContext, table: LatencyTable, predictor: LatencyPredictor)
 UNDER_USE = 0.85  # a verified pick below this share of its budget triggers one corrected search
 
 
-def row_use(row: dict[str, Any]) -> float:
-    return row["measured"]["budget_stat_ms"] / row["budget_ms"]
-
-
-def corrected_limit(row: dict[str, Any], base_ms: float, limit_ms: float) -> Optional[float]:
+def corrected_limit(pick: Pick, base_ms: float, limit_ms: float) -> Optional[float]:
     """Where a verified pick uses less than UNDER_USE of its budget, the uncorrected limit
     `base_ms` divided by measured/predicted over the measured candidates, if that differs from
     the `limit_ms` searched by more than 3 % (else None). Below 1 the predictor overestimated:
     a wider search brings in faster-than-predicted, more accurate subnets. Above 1 every top
     candidate measured over and the pick fell back far below them (the search's candidates all
     sit in a band just under its limit): a narrower search looks where subnets now fit."""
-    ratio = row.get("measured_over_predicted")
-    if not (row.get("measured") and row.get("fits") and ratio) or row_use(row) >= UNDER_USE:
+    ratio = pick.measured_over_predicted
+    if not (pick.measurement and pick.fits and ratio) or pick.use() >= UNDER_USE:
         return None
     new = base_ms / ratio
     return new if abs(new / limit_ms - 1) > 0.03 else None
-
-
-def merge_picks(path: Path, rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
-    """picks.json keeps earlier (device, budget) picks and replaces the ones searched again."""
-    new = {(r["device"], r["budget_ms"]) for r in rows}
-    old = []
-    if path.is_file():
-        try:
-            old = [r for r in json.loads(path.read_text("utf-8")) if (r.get("device"), r.get("budget_ms")) not in new]
-        except (json.JSONDecodeError, AttributeError, TypeError):
-            old = []
-    merged = old + rows
-    write_json(path, merged)
-    return merged
