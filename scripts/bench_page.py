@@ -1,6 +1,7 @@
 """The human page of the Fashion-MNIST benchmark: docs/benchmarks.md and its plot.
 
-Kept apart from bench_fashion_mnist.py so the page can be rewritten from the JSON alone:
+Kept apart from benchmarks/fashion_mnist.py so the page can be rewritten from the JSON alone (results
+written before budgets had a placement read as placed above a member):
     .venv/bin/python scripts/bench_page.py benchmarks/results/fashion-mnist.json
 """
 from __future__ import annotations
@@ -8,6 +9,9 @@ from __future__ import annotations
 import json
 import sys
 from pathlib import Path
+
+from bench_page_lines import (fmt, finetune_text, kept_text, placement_gains, ranking_lines, ratio_lines, sampled_text,
+                              search_cost, search_wall, targets_text, pick_timing, timing_heading, use_lines)
 
 
 def _end_commit(result: dict) -> str:
@@ -22,6 +26,9 @@ def _devices(result: dict) -> list[str]:
 
 def _on(m: dict, device: str) -> dict:
     return {**m, **m["latency"][device]}
+
+
+BUDGET_STYLE = {"above a member": ("tab:red", ":"), "between members": ("tab:purple", "-.")}  # colour, line style
 
 
 def plot(result: dict, path: Path) -> Path:
@@ -42,9 +49,11 @@ def plot(result: dict, path: Path) -> Path:
         ax.plot([m["p90_ms"] for m in picks], [m["test_acc"] for m in picks], "o", color="tab:blue", ms=8,
                 label="tightfit picks (one supernet)")
         for r in (r for r in result["budgets"] if r["device"] == device):
-            ax.axvline(r["budget_ms"], color="tab:red", lw=0.8, ls=":")
-            ax.annotate(f"budget {r['budget_ms']:g} ms", (r["budget_ms"], 1.0), xycoords=("data", "axes fraction"),
-                        rotation=90, fontsize=7, color="tab:red", xytext=(-9, -4), textcoords="offset points", va="top")
+            colour, style = BUDGET_STYLE[r.get("placement", "above a member")]
+            ax.axvline(r["budget_ms"], color=colour, lw=0.8, ls=style)
+            ax.annotate(f"budget {r['budget_ms']:g} ms, {_placement(r)}", (r["budget_ms"], 1.0),
+                        xycoords=("data", "axes fraction"), rotation=90, fontsize=7, color=colour, xytext=(-9, -4),
+                        textcoords="offset points", va="top")
         threads = result["protocols"][device]["threads"]
         ax.set_xlabel(f"measured p90 latency, ms (ONNX Runtime, batch 1, {threads} thread{'s' * (threads > 1)})")
         ax.set_ylabel("test accuracy, % (Fashion-MNIST test split)")
@@ -58,38 +67,58 @@ def plot(result: dict, path: Path) -> Path:
     return path
 
 
+def _script(result: dict) -> str:
+    """The script that wrote the result, as its command names it."""
+    words = result.get("command", "").split()
+    return words[1] if len(words) > 1 else "benchmarks/fashion_mnist.py"
+
+
+def _placement(r: dict) -> str:
+    """How the budget was placed: just above a member, or between two adjacent members."""
+    members = r.get("members") or [r.get("placed_above")]
+    if r.get("placement", "above a member") == "between members":
+        return f"between {members[0]} and {members[1]}"
+    return f"above {members[0]}"
+
+
 def _row(r: dict) -> str:
     p, b = r["pick"], r["baseline"]
     base = (f"{b['name']} | {b['test_acc']:.2f} | {b['p90_ms']:.3f} | {b['params']:,} | {b['macs'] / 1e6:.2f}"
             if b else "none fits | | | |")
     gain = f"{r['gain_points']:+.2f}" if r["gain_points"] is not None else "n/a"
-    inherited = _fmt(p.get("test_acc_inherited"), ".2f", "-")
-    gain_inherited = _fmt(r.get("gain_points_inherited"), "+.2f", "-")
-    return (f"| {r['budget_ms']:g} | `{p['key']}` | {inherited} | {p['test_acc']:.2f} | {p['p90_ms']:.3f} | {p['params']:,} | "
-            f"{p['macs'] / 1e6:.2f} | {base} | {gain_inherited} | {gain} |")
+    inherited = fmt(p.get("test_acc_inherited"), ".2f", "-")
+    gain_inherited = fmt(r.get("gain_points_inherited"), "+.2f", "-")
+    use = fmt(r.get("budget_use", p["p90_ms"] / r["budget_ms"]), ".2f")
+    return (f"| {r['budget_ms']:g} | {_placement(r)} | `{p['key']}` | {inherited} | {p['test_acc']:.2f} | {p['p90_ms']:.3f} | "
+            f"{use} | {p['params']:,} | {p['macs'] / 1e6:.2f} | {base} | {gain_inherited} | {gain} |")
 
 
 def _device_section(result: dict, device: str) -> list[str]:
     threads = result["protocols"][device]["threads"]
     rows = [r for r in result["budgets"] if r["device"] == device]
-    notes = [*(_placed_note(r) for r in rows if r.get("placed_above_fits") is False),
+    notes = [*(_placed_note(r) for r in rows if r.get("placement_holds", r.get("placed_above_fits")) is False),
+             *(f"- The supernet did not train for the {r['budget_ms']:g} ms budget: {r['not_trained_because']}"
+               for r in rows if r.get("trained_for") is False),
              *(f"- The {r['budget_ms']:g} ms pick measured {r['pick']['p90_ms']:.3f} ms in the final session: over "
                "its budget there, though its search measured it inside." for r in rows if r.get("pick_fits") is False)]
     return [f"### {device} ({threads} intra-op thread{'s' * (threads > 1)})", "",
-            "| budget ms (p90) | pick | test %, inherited weights | test %, fine-tuned | p90 ms | params | MMACs | "
-            "best fitting family member | test % | p90 ms | params | MMACs | gain, inherited (points) | gain (points) |",
-            "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|",
+            "| budget ms (p90) | placed | pick | test %, inherited weights | test %, fine-tuned | p90 ms | budget use | "
+            "params | MMACs | best fitting family member | test % | p90 ms | params | MMACs | gain, inherited (points) | "
+            "gain (points) |",
+            "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|",
             *[_row(r) for r in rows], "", *notes, *([""] if notes else [])]
 
 
 def _placed_note(r: dict) -> str:
-    head = f"- The {r['budget_ms']:g} ms budget was placed above {r['placed_above']}, which measured over it in the final session: "
+    """A placement that did not hold in the final session, and what that does to the comparison."""
+    members = r.get("members") or [r.get("placed_above")]
+    if r.get("placement") == "between members":
+        return (f"- The {r['budget_ms']:g} ms budget was placed between {members[0]} and {members[1]}, which no longer "
+                "held in the final session: the comparison is with " + (f"{r['baseline']['name']}." if r["baseline"]
+                                                                        else "no member (none fits), so no gain is counted."))
+    head = f"- The {r['budget_ms']:g} ms budget was placed above {members[0]}, which measured over it in the final session: "
     return head + ("the comparison is with a smaller member, which flatters the pick." if r["baseline"]
                    else "no member fits, so no gain is counted.")
-
-
-def _fmt(v, spec: str, none: str = "none") -> str:
-    return none if v is None else format(v, spec)
 
 
 def page_text(result: dict, plot_name: str) -> str:
@@ -99,7 +128,7 @@ def page_text(result: dict, plot_name: str) -> str:
     lines = [
         "# Benchmark: one supernet vs a hand-scaled family (Fashion-MNIST, CPU)",
         "",
-        "Written by `scripts/bench_fashion_mnist.py` from one run"
+        f"Written by `{_script(result)}` from one run"
         f" (started at commit `{result['commit']}`{_end_commit(result)}"
         f"{', SMOKE setting: not a result' if result['smoke'] else ''}).",
         f"Reproduce: `{result['command']}` (figures: `benchmarks/results/fashion-mnist.json`).",
@@ -111,9 +140,9 @@ def page_text(result: dict, plot_name: str) -> str:
         "",
         f"Budgets: {result['budget_rule']} (the family measured before the supernet was trained). Equal compute: "
         f"the family cost {eq['family_cpu_s']:.0f} CPU-s (training at {eq['family_epochs']:g} epochs each, plus "
-        f"measuring every member on each device); {100 * eq['reserve_share']:.0f} % of that was kept for profiling "
-        f"and search{_finetune_reserve(eq)} and the rest bought the supernet {eq['epochs']:g} epochs at "
-        f"~{eq['epoch_cpu_s']:.0f} CPU-s each (sampled from real sandwich steps).{_finetune_text(result)}",
+        f"measuring every member on each device); {kept_text(eq)} and the rest bought the supernet {eq['epochs']:g} "
+        f"epochs at ~{eq['epoch_cpu_s']:.0f} CPU-s each ({sampled_text(eq)}).{targets_text(result)}"
+        f"{finetune_text(result)}",
         "",
         *[line for d in devices for line in _device_section(result, d)],
         f"![accuracy vs latency]({plot_name})",
@@ -125,9 +154,11 @@ def page_text(result: dict, plot_name: str) -> str:
         "## Targets",
         "",
         f"- gain at every (device, budget) >= +{t['gain_target']} points: "
-        f"{'yes' if t['gain_at_every_budget'] else 'NO'} (smallest gain {_fmt(t['min_gain_points'], '+.2f')})",
+        f"{'yes' if t['gain_at_every_budget'] else 'NO'} (smallest gain {fmt(t['min_gain_points'], '+.2f')}"
+        f"{placement_gains(t)})",
+        *use_lines(t),
         f"- best pick test accuracy {t['best_pick_test_acc']:.2f} % (target {t['best_pick_target']} %)",
-        f"- best pick under 100K parameters: {_fmt(t['best_small_pick_test_acc'], '.2f')} % (target {t['small_pick_target']} %)",
+        f"- best pick under 100K parameters: {fmt(t['best_small_pick_test_acc'], '.2f')} % (target {t['small_pick_target']} %)",
         f"- CPU time (supernet + profiling + search) / family: {t['cpu_ratio_supernet_search_over_family']:.2f} (target <= 1)",
         f"- profiling + search / supernet training: {t['search_share_of_training']:.2f} (aim <= {t['search_share_aim']})",
         "",
@@ -142,13 +173,12 @@ def page_text(result: dict, plot_name: str) -> str:
         "",
         "## Cost",
         "",
-        f"- CPU-seconds, supernet training: {c['supernet_training']:.0f}; profiling + search of every device and "
-        f"budget: {c['search']:.0f}; together {c['supernet_plus_search']:.0f}.",
+        f"- CPU-seconds, supernet training: {c['supernet_training']:.0f}; {search_cost(c)}; together "
+        f"{c['supernet_plus_search']:.0f}.",
         f"- CPU-seconds, the {len(result['family'])}-member family: training {c['family_training']:.0f}, measuring "
         f"on each device {c['family_measuring']:.0f}; together {c['family']:.0f}.",
         f"- Ratio (supernet side) / family: {c['supernet_plus_search'] / max(c['family'], 1e-9):.2f}.",
-        "- Search time per (device, budget) (wall, s): "
-        + ", ".join(f"{k} ms: {v:.0f}" for k, v in result["picks_search_s"].items()),
+        search_wall(result),
         "- Per phase (wall s / CPU-s): " + "; ".join(f"{k} {v['wall_s']:.0f} / {v['cpu_s']:.0f}"
                                                    for k, v in result["phases"].items() if v["wall_s"] >= 1),
         "",
@@ -171,12 +201,12 @@ def page_text(result: dict, plot_name: str) -> str:
         "",
         *[f"- {e['op']}: {100 * e['share']:.1f} %" for e in mach["profile_largest_step"]],
         "",
-        *_ranking_lines(result.get("ranking_check")),
-        "Search timing per (device, budget) (from `tightfit search`):",
+        *ranking_lines(result.get("ranking_check")),
+        timing_heading(result["search_timing"]),
         "",
-        *[f"- {k} ms: {'; '.join(v)}" for k, v in result["search_timing"].items()],
+        *[f"- {k} ms: {pick_timing(v)}" for k, v in result["search_timing"].items()],
         "",
-        *_ratio_lines(result.get("measured_over_predicted") or {}),
+        *ratio_lines(result.get("measured_over_predicted") or {}),
         *_screen_lines(SCREEN),
         "## Machine and software",
         "",
@@ -187,43 +217,6 @@ def page_text(result: dict, plot_name: str) -> str:
         "",
     ]
     return "\n".join(lines)
-
-
-def _finetune_reserve(eq: dict) -> str:
-    est = eq.get("finetune_cpu_s_estimate")
-    return f", {est:.0f} CPU-s for fine-tuning the picks (estimated from sampled steps)," if est else ","
-
-
-def _finetune_text(result: dict) -> str:
-    s = result.get("search_settings") or {}
-    if not s.get("finetune_steps"):
-        return ""
-    return (f" Each pick was fine-tuned {s['finetune_steps']} steps (lr {s['finetune_lr']:g}, cosine to zero) from its "
-            "inherited weights, distilling from the supernet's largest subnet; a subnet picked for two budgets was "
-            f"fine-tuned once. The fine-tunes cost {result.get('finetune_cpu_s', 0):.0f} CPU-s, counted in the search "
-            "phases. Both the inherited and the fine-tuned accuracy are shown; the gain is the fine-tuned pick's.")
-
-
-def _ranking_lines(r: dict | None) -> list[str]:
-    """The search's cheap score against the whole validation split, over random subnets."""
-    if not r:
-        return []
-    return [f"The search ranks candidates on {r['images']:,} validation images and re-scores the best on all "
-            f"{r['whole_images']:,}. Over {r['subnets']} random subnets the cheap score against the whole split: "
-            f"Kendall τ {_fmt(r['kendall_tau'], '.3f', 'undefined')}, "
-            f"mean |difference| {r['mean_abs_diff_points']:.2f} points; the best by "
-            f"the whole split was {'' if r['best_whole_in_cheap_top'] else 'NOT '}among the cheap score's top "
-            f"re-scored; CPU-s per subnet {r['cheap_cpu_s_per_subnet']:.2f} (cheap) vs {r['whole_cpu_s_per_subnet']:.2f} "
-            "(whole, with a second BN recalibration that reuses the first's cached prefix).", ""]
-
-
-def _ratio_lines(ratio: dict) -> list[str]:
-    """How far the machine had moved from its latency table: what the measured top candidates showed."""
-    if not any(v is not None for v in ratio.values()):
-        return []
-    shown = ", ".join(f"{k} ms {'-' if v is None else f'{v:.3f} x'}" for k, v in ratio.items())
-    return [f"The measured top candidates against their predictions (median measured / predicted p90, "
-            f"last search of each budget): {shown}.", ""]
 
 
 NOTES = Path(__file__).resolve().parents[1] / "benchmarks" / "fashion-mnist-notes.md"
