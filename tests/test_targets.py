@@ -159,3 +159,96 @@ def test_training_with_targets_trains_a_band_draw_in_every_sandwich_step(tmp_pat
     assert seen
     for subnets in seen:
         assert len(subnets) == 4 and subnets[-1] in band
+
+
+# ---- teachers: alpha-divergence, distillation only when the teacher is ahead, the mean teacher ----
+
+def _dists(seed=0):
+    g = torch.Generator().manual_seed(seed)
+    a, b = torch.randn(5, 7, generator=g), torch.randn(5, 7, generator=g)
+    return F.log_softmax(a, 1), F.log_softmax(b, 1)
+
+
+def test_alpha_divergence_matches_its_closed_forms():
+    # Amari's alpha family D_a(p||q) = (sum p^a q^(1-a) - 1) / (a (a - 1)) (Cichocki & Amari 2010, from memory):
+    # a = 1 is KL(p||q) (checked against scipy.stats.entropy), a = 0 is KL(q||p), a = 2 is half Pearson's
+    # chi-square sum (p - q)^2 / q, a = 0.5 is 4 (1 - sum sqrt(p q)) (the Hellinger form).
+    from scipy.stats import entropy
+    from tightfit.train.sandwich import alpha_divergence
+    log_p, log_q = _dists()
+    p, q = log_p.exp().double().numpy(), log_q.exp().double().numpy()
+    kl = torch.tensor([entropy(p[i], q[i]) for i in range(5)], dtype=torch.float32)
+    assert torch.allclose(alpha_divergence(log_p, log_q, 1.0), kl, atol=1e-5)
+    assert torch.allclose(alpha_divergence(log_p, log_q, 0.0), alpha_divergence(log_q, log_p, 1.0), atol=1e-6)
+    chi = torch.tensor(((p - q) ** 2 / q).sum(1) / 2, dtype=torch.float32)
+    assert torch.allclose(alpha_divergence(log_p, log_q, 2.0), chi, atol=1e-4)
+    hel = torch.tensor(4 * (1 - ((p * q) ** 0.5).sum(1)), dtype=torch.float32)
+    assert torch.allclose(alpha_divergence(log_p, log_q, 0.5), hel, atol=1e-5)
+    assert torch.allclose(alpha_divergence(log_p, log_q, 0.999), kl, atol=1e-2)  # continuous at the limit
+
+
+def test_alpha_distillation_takes_the_larger_of_its_two_divergences():
+    from tightfit.train.sandwich import alpha_divergence, distill_loss
+    log_p, log_q = _dists(1)
+    low, high = alpha_divergence(log_p, log_q, -1.0).mean(), alpha_divergence(log_p, log_q, 1.0).mean()
+    got = distill_loss(log_q, log_p, "alpha", 1.0, (-1.0, 1.0))
+    assert torch.allclose(got, torch.maximum(low, high)) and not torch.allclose(low, high)
+
+
+def test_a_teacher_not_ahead_on_the_batch_teaches_nothing():
+    # distill_when = "ahead": the teacher's label loss on the batch must be below the student's.
+    y = torch.tensor([0, 1, 2, 0])
+    good = F.one_hot(y, 3).float() * 6       # confident and right
+    bad = torch.roll(good, 1, 1)             # confident and wrong
+    cfg = dataclasses.replace(tiny_recipe().train, distill=True, distill_weight=1.0, distill_when="ahead",
+                              label_smoothing=0.1)
+    student = torch.tensor([[1.0, 0.2, -0.5], [0.1, 0.9, 0.0], [-0.3, 0.0, 0.4], [0.5, 0.5, -1.0]])  # a uniform one scores alike
+    labels = F.cross_entropy(student, y, label_smoothing=0.1)
+    assert torch.allclose(subnet_loss(student, y, bad, cfg), labels)
+    from tightfit.train.sandwich import distill_loss
+    assert torch.allclose(subnet_loss(student, y, good, cfg), distill_loss(student, good))
+
+
+def test_mean_teacher_averages_weights_by_the_rule_and_copies_batchnorm_statistics():
+    # Tarvainen & Valpola 2017: theta'_t = d theta'_(t-1) + (1 - d) theta_t.
+    from tightfit.recipe import build_supernet
+    from tightfit.train.teacher import MeanTeacher
+    recipe = tiny_recipe()
+    torch.manual_seed(0)
+    model = build_supernet(recipe, 4)
+    avg = MeanTeacher(model, 0.9)
+    before = [p.detach().clone() for p in avg.model.parameters()]
+    with torch.no_grad():
+        for p in model.parameters():
+            p.add_(1.0)
+        for b in model.buffers():
+            if b.dtype.is_floating_point:
+                b.add_(2.0)
+    avg.update(model)
+    for a, p, old in zip(avg.model.parameters(), model.parameters(), before):
+        assert torch.allclose(a, 0.9 * old + 0.1 * p)
+    assert all(torch.equal(a, b) for a, b in zip(avg.model.buffers(), model.buffers()))
+    assert not any(p.requires_grad for p in avg.model.parameters())
+
+
+@pytest.mark.parametrize("teacher", ["mean", "largest"])
+def test_resume_with_targets_and_teachers_is_bit_identical(tmp_path, monkeypatch, teacher):
+    from tightfit.checkpoint import load_checkpoint
+    from tightfit.data.dataset import load_dataset
+    from tightfit.errors import Interrupted
+    from tightfit.train import loop
+    recipe = tiny_recipe(epochs=2, checkpoint_every=5, teacher=teacher, distill_weight=0.5, target_candidates=2)
+    pred = FakePredictor(recipe.space)
+    mid = (pred.predict_ms(recipe.space.smallest()) + pred.predict_ms(recipe.space.largest())) / 2
+    band = Band("fake", 0.0, mid, band_members(recipe.space, pred.predict_ms, 0.8 * mid, mid, recipe.seed, 300))
+    monkeypatch.setattr(loop, "target_bands", lambda r: [band])
+    ds = load_dataset(recipe.data, recipe.seed)
+    loop.train(recipe, tmp_path / "straight", progress=False, ds=ds)
+    with pytest.raises(Interrupted):
+        loop.train(recipe, tmp_path / "split", progress=False, ds=ds, stop_at_step=7)
+    loop.train(recipe, tmp_path / "split", resume=True, progress=False, ds=ds)
+    a, b = (load_checkpoint(tmp_path / r / "checkpoint.pt") for r in ("straight", "split"))
+    assert all(torch.equal(a["model"][k], b["model"][k]) for k in a["model"])
+    assert ("mean_teacher" in a) == (teacher == "mean")
+    if teacher == "mean":
+        assert all(torch.equal(a["mean_teacher"][k], b["mean_teacher"][k]) for k in a["mean_teacher"])

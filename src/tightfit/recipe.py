@@ -22,7 +22,9 @@ if TYPE_CHECKING:
 
 DATA_SOURCES = ("builtin", "folder", "fashion-mnist")
 OPTIMIZERS = ("sgd", "adamw")
-DISTILL_LOSSES = ("soft_ce", "kl")
+DISTILL_LOSSES = ("soft_ce", "kl", "alpha")
+TEACHERS = ("largest", "mean")
+DISTILL_WHEN = ("always", "ahead")
 
 
 @dataclass(frozen=True)
@@ -75,6 +77,11 @@ class TrainConfig:
     random_macs_target: float = 0.0    # > 0: each random subnet is the draw nearest this MACs fraction
     random_candidates: int = 4     # draws per random subnet when random_macs_target > 0
     distill_weight: float = 1.0    # with distill: loss = w * distillation + (1 - w) * labels, for all but the largest
+    distill_when: str = "always"   # "ahead": distil only on batches where the teacher's label loss is below the student's
+    distill_alpha_low: float = -1.0    # distill_loss = "alpha": the larger of D_low and D_high (Wang et al. 2021)
+    distill_alpha_high: float = 1.0    # (1: KL(teacher || student); 0: KL(student || teacher))
+    teacher: str = "largest"       # "largest" (this step's largest subnet) or "mean" (moving average of the weights)
+    teacher_decay: float = 0.99    # teacher = "mean": avg = decay * avg + (1 - decay) * weights, every step (~100-step window)
     # Targets known before training; each step also trains subnets predicted inside a target's band
     # [target_band_bottom * budget, budget], the targets taken in turn (tightfit/train/targets.py).
     targets: tuple[Target, ...] = ()  # [[train.targets]] tables: table = "TABLE.json", budget = "0.3ms"
@@ -87,7 +94,8 @@ class TrainConfig:
 # at their defaults, so every recipe that does not use them keeps its hash.
 _LEVERS = ("zero_init_residual", "largest_dropout", "final_lr_fraction", "largest_only_epochs", "distill_loss",
            "distill_temperature", "random_macs_target", "random_candidates", "distill_weight", "targets",
-           "target_subnets", "target_band_bottom", "target_candidates")
+           "target_subnets", "target_band_bottom", "target_candidates", "distill_when", "distill_alpha_low",
+           "distill_alpha_high", "teacher", "teacher_decay")
 _LEVER_DEFAULTS = {f.name: f.default for f in fields(TrainConfig) if f.name in _LEVERS}
 
 
@@ -196,6 +204,12 @@ def _check_levers(train: TrainConfig) -> None:
         raise fail("train.random_candidates", train.random_candidates, "must be >= 1")
     if not 0 <= train.distill_weight <= 1:
         raise fail("train.distill_weight", train.distill_weight, "must be in [0, 1] (1: from the largest only)")
+    if train.teacher not in TEACHERS:
+        raise fail("train.teacher", train.teacher, f"choose one of {', '.join(TEACHERS)}")
+    if train.distill_when not in DISTILL_WHEN:
+        raise fail("train.distill_when", train.distill_when, f"choose one of {', '.join(DISTILL_WHEN)}")
+    if not 0 < train.teacher_decay < 1:
+        raise fail("train.teacher_decay", train.teacher_decay, "must be in (0, 1)")
     if not 0 < train.target_band_bottom < 1:
         raise fail("train.target_band_bottom", train.target_band_bottom, "must be in (0, 1)")
 

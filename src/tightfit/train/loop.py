@@ -26,6 +26,7 @@ from tightfit.recipe import Recipe, build_supernet
 from tightfit.rundir import checkpoint_path
 from tightfit.train.initialise import zero_init_residual
 from tightfit.train.sandwich import lr_at, macs_distance, make_optimizer, step_subnets, train_step
+from tightfit.train.teacher import MeanTeacher
 from tightfit.train.targets import Band, band_draws, batch_loss, lowest_loss, target_bands
 
 
@@ -49,10 +50,13 @@ class _StopFlag:
             signal.signal(s, h)
 
 
-def _state(model, opt, step, recipe, ds: Dataset, complete: bool) -> dict:
-    return {"model": model.state_dict(), "optimizer": opt.state_dict(), "step": step,
-            "rng": torch.get_rng_state(), "recipe": recipe.to_dict(), "recipe_hash": recipe.hash(),
-            "class_names": list(ds.class_names), "mean": list(ds.mean), "std": list(ds.std), "complete": complete}
+def _state(model, opt, step, recipe, ds: Dataset, complete: bool, averaged: MeanTeacher | None = None) -> dict:
+    state = {"model": model.state_dict(), "optimizer": opt.state_dict(), "step": step,
+             "rng": torch.get_rng_state(), "recipe": recipe.to_dict(), "recipe_hash": recipe.hash(),
+             "class_names": list(ds.class_names), "mean": list(ds.mean), "std": list(ds.std), "complete": complete}
+    if averaged is not None:
+        state["mean_teacher"] = averaged.state_dict()
+    return state
 
 
 def _trim_log(path: Path, step: int) -> None:
@@ -104,9 +108,12 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, recipe_p
             torch.set_rng_state(state["rng"])
             start, complete = int(state["step"]), bool(state.get("complete", False))
         broadcast_weights(model, ranks)  # every rank starts from rank 0's weights
+        averaged = MeanTeacher(model, recipe.train.teacher_decay) if recipe.train.teacher == "mean" else None
+        if averaged is not None and state is not None:
+            averaged.load_state_dict(state["mean_teacher"])
         if ranks.is_main and recipe_path is not None and not (run_dir / "recipe.toml").exists():
             write_bytes(run_dir / "recipe.toml", Path(recipe_path).read_bytes() + extra_toml.encode())
-        return _loop(model, opt, recipe, ds, run_dir, start, progress, dev, ranks, stop_at_step, complete, bands)
+        return _loop(model, opt, recipe, ds, run_dir, start, progress, dev, ranks, stop_at_step, complete, bands, averaged)
 
 
 def _open_run(run_dir: Path, recipe: Recipe, resume: bool) -> dict | None:
@@ -132,7 +139,7 @@ def _open_run(run_dir: Path, recipe: Recipe, resume: bool) -> dict | None:
 # long: one training step's bookkeeping (schedule, sync, logging, checkpoint, stop) must stay in one visible order
 def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, start: int, progress: bool,
           dev: torch.device, ranks: Ranks = Ranks(), stop_at_step: int | None = None, complete: bool = False,
-          bands: list[Band] = ()) -> Path:
+          bands: list[Band] = (), averaged: MeanTeacher | None = None) -> Path:
     cfg = recipe.train
     spe = steps_per_epoch(ds, cfg.batch_size)
     if spe == 0:
@@ -169,7 +176,10 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
                 if len(subnets) > 1:  # not in the largest-only warm-up
                     subnets += [lowest_loss(c, lambda s, x=x, y=y: batch_loss(model, x, y, s)) for c in
                                 band_draws(bands, step, recipe.seed, cfg.target_subnets, cfg.target_candidates)]
-                losses = train_step(model, opt, x, y, subnets, cfg, sync)
+                teacher = averaged.logits(x) if averaged is not None and len(subnets) > 1 else None
+                losses = train_step(model, opt, x, y, subnets, cfg, sync, teacher)
+                if averaged is not None:
+                    averaged.update(model)
                 step += 1
                 ips = seen / (time.perf_counter() - t0)
                 bar.update(1)
@@ -184,7 +194,7 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
                     append_jsonl(metrics, _epoch_eval(model, recipe, ds, epoch + 1, step))
                 if end_of_epoch or (cfg.checkpoint_every and step % cfg.checkpoint_every == 0) or stopping:
                     if main:
-                        save_checkpoint(ckpt, _state(model, opt, step, recipe, ds, step == total))
+                        save_checkpoint(ckpt, _state(model, opt, step, recipe, ds, step == total, averaged))
                     barrier(ranks)  # nobody leaves (or is stopped by torchrun) before the file is whole
                 if stopping:
                     bar.close()
@@ -195,12 +205,12 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
                     break
     bar.close()
     if start >= total and not complete:
-        _finish(model, opt, recipe, ds, run_dir, total, spe, ranks)
+        _finish(model, opt, recipe, ds, run_dir, total, spe, ranks, averaged)
     return ckpt
 
 
 def _finish(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, total: int, spe: int,
-            ranks: Ranks) -> None:
+            ranks: Ranks, averaged: MeanTeacher | None = None) -> None:
     """Resume of a run stopped after its last step's checkpoint but before the one marked
     complete (only older checkpoints, or a kill between the two writes, leave that state): run the
     final evaluation again and write the complete checkpoint, as the uninterrupted run does."""
@@ -209,5 +219,5 @@ def _finish(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, to
         keep = [r for r in read_jsonl(metrics)[0] if not (r.get("step") == total and "val_acc_largest" in r)]
         write_text(metrics, "".join(json.dumps(r) + "\n" for r in keep))
         append_jsonl(metrics, _epoch_eval(model, recipe, ds, (total - 1) // spe + 1, total))
-        save_checkpoint(checkpoint_path(run_dir), _state(model, opt, total, recipe, ds, True))
+        save_checkpoint(checkpoint_path(run_dir), _state(model, opt, total, recipe, ds, True, averaged))
     barrier(ranks)

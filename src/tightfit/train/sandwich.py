@@ -86,35 +86,55 @@ def lr_at(step: int, total: int, warmup: int, base: float, end: float = 0.0) -> 
 
 
 def distill_loss(logits: torch.Tensor, teacher_logits: torch.Tensor, kind: str = "soft_ce",
-                 temperature: float = 1.0) -> torch.Tensor:
-    """In-place distillation against the teacher's (detached) logits, both divided by T and the loss
+                 temperature: float = 1.0, alphas: tuple[float, float] = (-1.0, 1.0)) -> torch.Tensor:
+    """Distillation against the teacher's (detached) logits, both divided by T and the loss
     scaled by T^2 (Hinton et al. 2015). "soft_ce": cross-entropy against the teacher's probabilities;
-    "kl": KL(teacher || student), the same minus the teacher's entropy (same gradient at T = 1)."""
+    "kl": KL(teacher || student), the same minus the teacher's entropy (same gradient at T = 1);
+    "alpha": the larger of two alpha-divergences D_a(teacher || student), a in ``alphas`` (Wang et al. 2021)."""
     t = temperature
     log_q = F.log_softmax(logits / t, 1)
-    p = F.softmax(teacher_logits / t, 1)
+    log_p = F.log_softmax(teacher_logits / t, 1)
+    if kind == "alpha":
+        return torch.maximum(*(alpha_divergence(log_p, log_q, a).mean() for a in alphas)) * t * t
+    p = log_p.exp()
     per_row = -(p * log_q).sum(1)
     if kind == "kl":
-        per_row = per_row + (p * F.log_softmax(teacher_logits / t, 1)).sum(1)
+        per_row = per_row + (p * log_p).sum(1)
     return per_row.mean() * t * t
+
+
+def alpha_divergence(log_p: torch.Tensor, log_q: torch.Tensor, a: float) -> torch.Tensor:
+    """Per row, D_a(p || q) = (sum p^a q^(1-a) - 1) / (a (a - 1)) (Amari's alpha family); the limits
+    a -> 1 and a -> 0 are KL(p || q) and KL(q || p)."""
+    if abs(a - 1) < 1e-6:
+        return (log_p.exp() * (log_p - log_q)).sum(1)
+    if abs(a) < 1e-6:
+        return (log_q.exp() * (log_q - log_p)).sum(1)
+    return (torch.logsumexp(a * log_p + (1 - a) * log_q, 1).exp() - 1) / (a * (a - 1))
 
 
 def subnet_loss(logits: torch.Tensor, y: torch.Tensor, teacher: torch.Tensor | None, cfg: TrainConfig) -> torch.Tensor:
     """The largest (no teacher) and, without distillation, every subnet learn from the labels; with
-    it, the others learn w * distillation + (1 - w) * labels, w = distill_weight (1: teacher only)."""
+    it, the others learn w * distillation + (1 - w) * labels, w = distill_weight (1: teacher only).
+    With distill_when = "ahead", a subnet distils only on a batch where the teacher's label loss is
+    below its own (a teacher not yet ahead teaches nothing the labels do not)."""
     w = cfg.distill_weight if cfg.distill and teacher is not None else 0.0
-    loss = distill_loss(logits, teacher, cfg.distill_loss, cfg.distill_temperature) if w > 0 else 0.0
+    if w > 0 and cfg.distill_when == "ahead" and F.cross_entropy(teacher, y) >= F.cross_entropy(logits.detach(), y):
+        w = 0.0
+    loss = distill_loss(logits, teacher, cfg.distill_loss, cfg.distill_temperature,
+                        (cfg.distill_alpha_low, cfg.distill_alpha_high)) if w > 0 else 0.0
     if w < 1:
         loss = w * loss + (1 - w) * F.cross_entropy(logits, y, label_smoothing=cfg.label_smoothing)
     return loss
 
 
 def sandwich_backward(model: Supernet, x: torch.Tensor, y: torch.Tensor, subnets: list[Subnet],
-                      cfg: TrainConfig) -> dict[str, float]:
+                      cfg: TrainConfig, teacher: torch.Tensor | None = None) -> dict[str, float]:
     """Forward and backward every subnet of the sandwich, gradients summing in .grad;
-    returns the largest's and smallest's losses."""
+    returns the largest's and smallest's losses. ``teacher``: logits of a teacher other than this
+    step's largest subnet (a mean teacher), for every subnet after the first."""
     losses = {}
-    teacher = None
+    given = teacher
     for i, subnet in enumerate(subnets):
         model.set_subnet(subnet)
         if cfg.largest_dropout > 0:  # regularise the largest only (Yu et al. 2020)
@@ -123,7 +143,7 @@ def sandwich_backward(model: Supernet, x: torch.Tensor, y: torch.Tensor, subnets
         with torch.autocast("cuda", dtype=torch.bfloat16, enabled=x.is_cuda):
             logits = model(x).float()
         loss = subnet_loss(logits, y, None if i == 0 else teacher, cfg)
-        if i == 0:
+        if i == 0 and given is None:
             teacher = logits.detach()
         loss.backward()
         if i < 2:
@@ -135,11 +155,12 @@ def sandwich_backward(model: Supernet, x: torch.Tensor, y: torch.Tensor, subnets
 
 def train_step(model: Supernet, opt: torch.optim.Optimizer, x: torch.Tensor, y: torch.Tensor,
                subnets: list[Subnet], cfg: TrainConfig,
-               sync: Callable[[dict[str, float]], dict[str, float]] | None = None) -> dict[str, float]:
+               sync: Callable[[dict[str, float]], dict[str, float]] | None = None,
+               teacher: torch.Tensor | None = None) -> dict[str, float]:
     """One sandwich step; ``sync`` (several processes) averages gradients and losses over
     ranks once, after the whole sandwich and before the optimizer step."""
     opt.zero_grad(set_to_none=True)
-    losses = sandwich_backward(model, x, y, subnets, cfg)
+    losses = sandwich_backward(model, x, y, subnets, cfg, teacher)
     if sync is not None:
         losses = sync(losses)
     opt.step()
