@@ -25,11 +25,12 @@ then cuts from it, for each target device, the most accurate subnet that fits a
 measured latency budget, exports it to ONNX with a manifest, and lets QA re-measure it.
 
 the day, in pipeline order:
-  tightfit train recipes/demo.toml --run runs/demo          1. train the supernet once
-  tightfit inspect runs/demo                                   (space, accuracies, latency range: pick budgets)
-  tightfit profile runs/demo --name this-host               2. latency table of this machine
-  tightfit probe runs/demo --zip                               (or: a probe bundle for another device)
-  tightfit search runs/demo --table runs/demo/latency/this-host.json --budget 0.3ms
+  tightfit inspect recipes/demo.toml                           (space, sizes: before any training)
+  tightfit profile recipes/demo.toml --out this-host.json   1. latency table of this machine
+  tightfit probe recipes/demo.toml --out probe --zip           (or: a probe bundle for another device)
+  tightfit train recipes/demo.toml --run runs/demo --table this-host.json --budget 0.3ms
+                                                            2. train the supernet once, for the budgets
+  tightfit search runs/demo --table this-host.json --budget 0.3ms
                                                             3. best subnet per budget, exported
   tightfit verify runs/demo/exports/this-host-0.3ms         4. QA: re-measure, PASS/MISS
   tightfit reproduce runs/demo/exports/* --runs 10             (does the figure reproduce? N fresh runs)

@@ -44,11 +44,13 @@ def with_command_line_targets(recipe: Recipe, tables: list[str], budgets: list[s
 
 
 def add_train_parser(sub: argparse._SubParsersAction) -> None:
-    t = sub.add_parser("train", help="train the supernet of a recipe (sandwich rule + in-place distillation)",
+    t = sub.add_parser("train", help="train the supernet of a recipe, for the budgets you declare (sandwich rule)",
                        description="Train the supernet described by RECIPE into the run folder RUN. A checkpoint "
                                    "is written atomically at the end of every epoch (and every "
                                    "train.checkpoint_every steps); Ctrl-C or SIGTERM writes one and exits 130/143. "
-                                   "Continue with --resume.")
+                                   "Continue with --resume. With targets (--table/--budget, or [[train.targets]] in the recipe), each step also "
+                                   "trains subnets the table predicts just under each budget: profile first "
+                                   "(tightfit profile RECIPE --out TABLE.json), then train, then search.")
     t.add_argument("recipe", help="TOML recipe (see recipes/)")
     t.add_argument("--run", "--run-dir", dest="run", required=True, metavar="RUN",
                    help="run folder to create (or resume); spell it --run-dir under torchrun")
