@@ -48,8 +48,9 @@ def add_train_parser(sub: argparse._SubParsersAction) -> None:
                        description="Train the supernet described by RECIPE into the run folder RUN. A checkpoint "
                                    "is written atomically at the end of every epoch (and every "
                                    "train.checkpoint_every steps); Ctrl-C or SIGTERM writes one and exits 130/143. "
-                                   "Continue with --resume. With targets (--table/--budget, or [[train.targets]] in the recipe), each step also "
-                                   "trains subnets the table predicts just under each budget: profile first "
+                                   "Continue with --resume. With targets (--table/--budget, or [[train.targets]] in the "
+                                   "recipe), each step also trains subnets the table predicts just under each budget: "
+                                   "profile first "
                                    "(tightfit profile RECIPE --out TABLE.json), then train, then search.")
     t.add_argument("recipe", help="TOML recipe (see recipes/)")
     t.add_argument("--run", "--run-dir", dest="run", required=True, metavar="RUN",
