@@ -128,7 +128,10 @@ def test_the_device_chooses_again_only_where_the_confirmed_pick_lost_its_guard(t
     ctx = SimpleNamespace(settings=SearchSettings(), say=lambda line: None)
     out = driver._confirm(ctx, SimpleNamespace(name="host"), [], {1.0: ["order-1"], 2.0: ["order-2"]}, None)
     assert asked == [(1.0, ["order-1"], 0.07)]
-    assert out[0].chosen_again == lost.confirmation and out[1] is kept
+    assert out[0].chosen_again == lost.confirmation
+    assert out[1].export_dir == kept.export_dir and out[1].chosen_again is None
+    # the confirmation is one measurement of every confirmed pick: each bills a share of its CPU-seconds
+    assert all("confirm" in p.search_cpu_s for p in out) and "choose again" in out[0].search_cpu_s
     asked.clear()
     ctx = SimpleNamespace(settings=SearchSettings(guard=0.05), say=lambda line: None)  # a fixed --guard does not widen
     driver._confirm(ctx, SimpleNamespace(name="host"), [], {1.0: ["order-1"], 2.0: ["order-2"]}, None)

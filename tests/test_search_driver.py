@@ -213,7 +213,7 @@ def _drive(tmp_path, monkeypatch, use: float, ratio: float):
     calls = []
 
     def fake_search(space_, fitness, latency, budget_ms, device, settings, log_path=None, progress=False,
-                    limit_ms=None, usable_ms=None):
+                    limit_ms=None, usable_ms=None, seeds=()):
         calls.append((limit_ms, settings.evaluations))
         return driver.BudgetResult(device, budget_ms, [], 0.0, 0, 0)
 
@@ -269,7 +269,9 @@ def test_capped_scores_choose_what_is_rescored_and_the_whole_split_orders_it():
         asked.append(subnet.to_key())
         return whole_acc[subnet.to_key()]
     whole.fresh = 0
-    ctx = SimpleNamespace(settings=SearchSettings(val_images=100, rescore=2), whole=whole, say=lambda s: None)
+    from tightfit.search.cpu import CpuSplit
+    ctx = SimpleNamespace(settings=SearchSettings(val_images=100, rescore=2), whole=whole, say=lambda s: None,
+                          cpu=CpuSplit())
     order = measuring_order(ctx, cheap)
     assert asked == [subs[0].to_key(), subs[1].to_key()]          # only the best two by the capped score
     assert [c.key for c in order] == [subs[1].to_key(), subs[0].to_key(), subs[2].to_key()]

@@ -137,3 +137,33 @@ def test_a_budget_that_admits_few_subnets_ends_the_evolution_after_a_bounded_num
     found = regularized_evolution(space, synthetic_fitness(0), latency, budget, cfg)
     assert 3 <= len(found) < 96 and all(c.latency_ms <= budget for c in found)
     assert predictor.calls < 400_000, predictor.calls
+
+
+def test_budgets_of_a_device_share_what_they_evaluated():
+    # This project's rule (search/evolution.py, seeds): a subnet's accuracy does not depend on the budget, so a
+    # second budget starts from the first budget's candidates that lie in its own band: they count towards its
+    # evaluations without a fitness call. Checked by counting calls to an injected fitness: every subnet is
+    # evaluated once across both budgets, each budget's candidates stay within its own limit, and the second
+    # budget calls the fitness fewer times than a budget searched alone.
+    space = wide_space()
+    predictor = FakePredictor(space)
+    scores = synthetic_fitness(7)
+    calls: list[str] = []
+
+    def fitness(subnet):
+        calls.append(subnet.to_key())
+        return scores(subnet)
+    cfg = EvolutionSettings(population=8, evaluations=40, seed=1)
+    low, high = 0.95 * BUDGET, BUDGET  # bands [0.855, 0.95] x and [0.9, 1] x BUDGET overlap
+    first = regularized_evolution(space, fitness, predictor.predict_ms, low, cfg)
+    after_first = len(calls)
+    second = regularized_evolution(space, fitness, predictor.predict_ms, high, cfg, seeds=first)
+    assert len(calls) == len(set(calls))                                # one fitness call per subnet, both budgets
+    assert all(c.latency_ms <= low for c in first) and all(c.latency_ms <= high for c in second)
+    floor = band_floor(space, predictor.predict_ms, high, cfg.band)
+    shared = {c.key for c in first if floor <= c.latency_ms <= high}
+    assert shared and shared <= {c.key for c in second}                # the first's in-band candidates serve it
+    assert len(second) == cfg.evaluations and len(calls) - after_first == cfg.evaluations - len(shared)
+    alone: list[str] = []
+    regularized_evolution(space, lambda s: alone.append(s.to_key()) or scores(s), predictor.predict_ms, high, cfg)
+    assert len(calls) - after_first < len(alone)

@@ -71,3 +71,26 @@ def test_held_out_accuracy_uses_the_images_the_search_did_not(tiny_run):
     path = tiny_run / "held_out_cache.jsonl"
     AccuracyCache(path, {**rest.tag(tiny_run), "images": 7}).put("k", {"val_acc": 1.0})
     assert AccuracyCache(path, {**first.tag(tiny_run), "images": 7}).get("k") is None
+
+
+def test_whole_split_from_a_scored_part_and_the_rest_equals_the_whole_split(tiny_run):
+    """A re-score adds the images not yet scored to the capped part's count: top-1 is a count over images
+    (common practice), so the figure must equal a whole-split evaluation's to its 4 decimals, under the
+    same cache tag, and the capped part is read from its cache, not evaluated again."""
+    from tightfit.data.dataset import load_dataset
+    from tightfit.rundir import load_trained
+    from tightfit.search.cache import AccuracyCache, CachedAccuracy
+    from tightfit.search.fitness import RunAccuracy, WholeSplit
+    run = load_trained(tiny_run)
+    ds = load_dataset(run.recipe.data, run.recipe.seed)
+    part = RunAccuracy(run, ds, val_images=len(ds.val_y) // 3)
+    cached = CachedAccuracy(AccuracyCache(tiny_run / "part_cache.jsonl", part.tag(tiny_run)), part)
+    combined = WholeSplit(cached, part.images, RunAccuracy(run, ds, skip=part.images, recalibrator=part.recalibrate))
+    whole = RunAccuracy(run, ds)
+    assert combined.tag(tiny_run) == whole.tag(tiny_run)
+    rng = random.Random(5)
+    for subnet in [run.recipe.space.smallest(), run.recipe.space.largest(), run.recipe.space.sample(rng)]:
+        cached(subnet)
+        fresh = cached.fresh
+        assert combined(subnet)["val_acc"] == pytest.approx(whole(subnet)["val_acc"], abs=1e-9)
+        assert cached.fresh == fresh  # the part came from the cache

@@ -76,6 +76,7 @@ class Pick:
     timings: dict[str, float] = field(default_factory=dict)
     session_drift: Optional[float] = None
     chosen_again: Optional[Confirmation] = None  # the confirmation the first pick of this budget lost
+    search_cpu_s: dict[str, float] = field(default_factory=dict)  # CPU-seconds per search phase, with "total"
 
     @property
     def key(self) -> str:
@@ -122,7 +123,8 @@ def pick_row(pick: Pick) -> dict[str, Any]:
            "guard": None if pick.guard is None else pick.guard.to_dict(),
            "measured_over_predicted": None if pick.measured_over_predicted is None
            else round(pick.measured_over_predicted, 4),
-           "budget_use": pick.use(), "session_drift": pick.session_drift, "timings": pick.timings}
+           "budget_use": pick.use(), "session_drift": pick.session_drift, "timings": pick.timings,
+           "search_cpu_s": pick.search_cpu_s}
     if pick.finetune is not None:
         row["finetune"] = _finetune_summary(pick.finetune)
     if pick.confirmation is not None:

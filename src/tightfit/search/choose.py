@@ -29,6 +29,7 @@ from tightfit.ondevice.timing import Protocol
 from tightfit.progress import bar as progress_bar
 from tightfit.rundir import TrainedRun
 from tightfit.search.cache import CachedAccuracy, CachedLatency
+from tightfit.search.cpu import CpuSplit, cpu_seconds
 from tightfit.search.choice_rule import Tried, guard_of, guard_share, measure_and_choose
 from tightfit.search.evolution import Candidate
 from tightfit.search.fitness import RunAccuracy
@@ -49,6 +50,7 @@ class SearchContext:
     say: Callable[[str], None]
     whole: Optional[CachedAccuracy] = None  # the whole validation split, when ``compute`` sees a capped part
     pick_runs: dict[str, PickRuns] = field(default_factory=dict)  # export folder -> its pick's raw repeats
+    cpu: CpuSplit = field(default_factory=CpuSplit)  # the current budget's CPU-seconds per phase (driver.py)
 
 
 @dataclass(frozen=True)
@@ -75,10 +77,11 @@ class _Measurer:
     def __init__(self, ctx: SearchContext, staging: Path, protocol: Protocol, guard_floor: float = 0.0):
         self.ctx, self.staging, self.protocol, self.guard_floor = ctx, staging, protocol, guard_floor
         self.clock: dict[str, float] = {}
+        self.cpu = CpuSplit()  # CPU-seconds per phase, the repeats' child processes included
         self.runs: dict[str, list[dict[str, Any]]] = {}  # each candidate's repeats so far
 
     def cut(self, cands: list[Candidate], start: int) -> list[Tried]:
-        t0 = time.perf_counter()
+        t0 = self._start()
         out = [Tried(c, *cut_one(self.ctx.run, self.ctx.ds, f"candidate{start + i}", c.subnet, self.staging,
                                  validate=False)) for i, c in enumerate(cands)]
         self._tick("cut", t0)
@@ -95,7 +98,7 @@ class _Measurer:
             t.remeasured = True
 
     def _measure(self, batch: list[Tried]) -> None:
-        t0 = time.perf_counter()
+        t0 = self._start()
         runs = repeat_summaries([str(t.cut.onnx_path) for t in batch], self.protocol)
         self._tick("measure", t0)
         for t in batch:
@@ -107,13 +110,19 @@ class _Measurer:
 
     def hits(self, t: Tried, split: str) -> np.ndarray:
         """Right/wrong per image of the candidate's ONNX file on a whole split ("val" or "test")."""
-        t0 = time.perf_counter()
+        t0 = self._start()
         out = shipped_hits(Path(t.cut.onnx_path).read_bytes(), self.ctx.ds, split)
         self._tick("score", t0)
         return out
 
-    def _tick(self, phase: str, t0: float) -> None:
-        self.clock[phase] = self.clock.get(phase, 0.0) + time.perf_counter() - t0
+    @staticmethod
+    def _start() -> tuple[float, float]:
+        return time.perf_counter(), cpu_seconds()
+
+    def _tick(self, phase: str, t0: tuple[float, float]) -> None:
+        """Wall seconds into the pick's timings, CPU-seconds (children's included) into its CPU split."""
+        self.clock[phase] = self.clock.get(phase, 0.0) + time.perf_counter() - t0[0]
+        self.cpu.add(phase, cpu_seconds() - t0[1])
 
 
 def staging_dir(ctx: SearchContext, device: str, budget_ms: float) -> Path:
@@ -164,7 +173,7 @@ def choose_pick(ctx: SearchContext, table: LatencyTable, ranked: list[Candidate]
     return Pick(table.name, budget_ms, protocol.percentile, chosen.cand.subnet, chosen.cand.latency_ms,
                 chosen.cand.fitness, validation, test, chosen.measured, hardware, protocol, guard, fits, note,
                 chosen.cut, chosen.net, export_dir, ratio, lead,
-                timings={k: round(v, 2) for k, v in measurer.clock.items()})
+                timings={k: round(v, 2) for k, v in measurer.clock.items()}, search_cpu_s=measurer.cpu.rounded())
 
 
 def guard_rule(fixed: Optional[float], floor: float = 0.0) -> str:

@@ -13,7 +13,7 @@ import json
 import time
 from dataclasses import dataclass, replace
 from pathlib import Path
-from typing import Any, Callable, Optional
+from typing import Any, Callable, Optional, Sequence
 
 
 from tightfit.data.dataset import load_dataset
@@ -33,7 +33,8 @@ from tightfit.export.pick import Pick, write_picks
 from tightfit.search.choose import SearchContext, choose_pick, finetune_pick, remove_staging
 from tightfit.search.confirm import confirm_picks, guard_floor_of
 from tightfit.search.evolution import Candidate, fastest_check, front_first, pareto_front, regularized_evolution
-from tightfit.search.fitness import RunAccuracy
+from tightfit.search.cpu import CpuSplit, merged
+from tightfit.search.fitness import RunAccuracy, WholeSplit
 from tightfit.search.settings import SearchSettings
 from tightfit.rundir import load_trained
 
@@ -64,10 +65,10 @@ def search_slack(settings: SearchSettings, predictor: LatencyPredictor, verifiab
 def search_budget(space: SpaceSpec, fitness: CachedAccuracy, latency: CachedLatency, budget_ms: float,
                   device: str, settings: SearchSettings, log_path: Optional[Path] = None,
                   progress: bool = False, limit_ms: Optional[float] = None,
-                  usable_ms: Optional[float] = None) -> BudgetResult:
+                  usable_ms: Optional[float] = None, seeds: Sequence[Candidate] = ()) -> BudgetResult:
     """Evolution under predicted latency <= limit_ms (default: the budget), its preferred band under
-    ``usable_ms`` (the budget less its expected guard; default: the limit); every evaluated candidate
-    is appended to ``log_path``."""
+    ``usable_ms`` (the budget less its expected guard; default: the limit), started from ``seeds`` (the
+    device's candidates so far) that lie in its band; every candidate is appended to ``log_path``."""
     cfg = settings.evolution()
     limit_ms = budget_ms if limit_ms is None else limit_ms
     fresh0, hits0, t0 = fitness.fresh, fitness.hits, time.perf_counter()
@@ -87,7 +88,7 @@ def search_budget(space: SpaceSpec, fitness: CachedAccuracy, latency: CachedLate
             bar.set_postfix(best=f"{best[0]:.2f}")
 
     try:
-        cands = regularized_evolution(space, fitness, latency, limit_ms, cfg, on_eval, device, usable_ms)
+        cands = regularized_evolution(space, fitness, latency, limit_ms, cfg, on_eval, device, usable_ms, seeds)
     finally:
         if bar is not None:
             bar.close()
@@ -137,7 +138,8 @@ def measuring_order(ctx: SearchContext, ranked: list[Candidate]) -> list[Candida
     if ctx.whole is None or n <= 0:
         return front_first(ranked)
     t0, fresh = time.perf_counter(), ctx.whole.fresh
-    head = sorted((replace(c, fitness=ctx.whole(c.subnet)) for c in ranked[:n]), key=lambda c: (-c.fitness, c.latency_ms))
+    with ctx.cpu.phase("rescore"):
+        head = sorted((replace(c, fitness=ctx.whole(c.subnet)) for c in ranked[:n]), key=lambda c: (-c.fitness, c.latency_ms))
     ctx.say(f"  re-scored the best {len(head)} on the whole validation split ({ctx.whole.fresh - fresh} new) "
             f"in {time.perf_counter() - t0:.1f} s")
     return front_first(head) + ranked[n:]
@@ -148,7 +150,9 @@ def time_report(r: BudgetResult, phases: dict[str, float]) -> str:
     n = len(r.candidates)
     other = r.seconds - sum(phases.values())
     spent = ", ".join(f"{k} {v:.1f} s" for k, v in [*phases.items(), ("other", other)])
-    return (f"{r.device} {budget_label(r.budget_ms)}: {n} candidates ({r.fresh} evaluated, {r.cached} from cache) "
+    shared = n - r.fresh - r.cached  # adopted from the device's other budgets without a fitness call
+    return (f"{r.device} {budget_label(r.budget_ms)}: {n} candidates ({r.fresh} evaluated, {r.cached} from cache, "
+            f"{shared} from other budgets) "
             f"in {r.seconds:.1f} s = {r.fresh / max(r.seconds, 1e-9):.2f} evaluations/s; {spent}")
 
 
@@ -183,7 +187,8 @@ def run_search(run_dir: str | Path, table_paths: list[str], budget_ms: list[floa
     fitness = CachedAccuracy(AccuracyCache(run_dir / "search" / "accuracy_cache.jsonl", compute.tag(run_dir)), compute)
     whole = None
     if settings.rescore > 0 and compute.images < len(ds.val_y):
-        full = RunAccuracy(run, ds, 0, settings.backend, recalibrator=compute.recalibrate)
+        rest = RunAccuracy(run, ds, 0, settings.backend, skip=compute.images, recalibrator=compute.recalibrate)
+        full = WholeSplit(fitness, compute.images, rest)  # a re-score pays for the images not yet scored only
         whole = CachedAccuracy(AccuracyCache(run_dir / "search" / "accuracy_cache.jsonl", full.tag(run_dir)), full)
     ctx = SearchContext(run_dir, run, ds, settings, fitness, compute, progress, say, whole)
     say(f"fitness: validation top-1 on {compute.images} of {len(ds.val_y)} validation images ({compute.backend}) "
@@ -207,6 +212,7 @@ def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPr
     orders: dict[float, list[Candidate]] = {}  # each budget's measuring order, for a choice made again
     for b in budgets:
         drop_logged(out / "candidates.jsonl", table.name, b)
+        ctx.cpu = CpuSplit()  # this budget's CPU-seconds per phase, into its pick's record
         t0 = time.perf_counter()
         drift = _drift(ctx, table, predictor) if verifiable and ctx.settings.drift_check else None
         # picks measured here must fit budget x (1 - guard): search around that, not the budget itself
@@ -220,13 +226,16 @@ def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPr
         settings = ctx.settings
         for attempt in range(2):
             before = compute.phases(latency)
-            result = search_budget(ctx.run.recipe.space, ctx.fitness, latency, b, table.name, settings,
-                                   out / "candidates.jsonl", ctx.progress, limit_ms=limit, usable_ms=usable)
+            with ctx.cpu.phase("evaluate"):
+                result = search_budget(ctx.run.recipe.space, ctx.fitness, latency, b, table.name, settings,
+                                       out / "candidates.jsonl", ctx.progress, limit_ms=limit, usable_ms=usable,
+                                       seeds=seen)
             say(time_report(result, {k: v - before[k] for k, v in compute.phases(latency).items()}))
             seen += result.candidates
             write_front(out / f"front-{device_name(table.name)}.json", table.name, out / "candidates.jsonl")
             orders[b] = measuring_order(ctx, ranked_within(seen, limit))
             pick = replace(choose_pick(ctx, table, orders[b], b, latency, verifiable), session_drift=drift)
+            ctx.cpu.merge(pick.search_cpu_s)  # measuring and scoring, every attempt's
             again = corrected_limit(pick, base, limit) if attempt == 0 else None
             if again is None:
                 break
@@ -236,8 +245,9 @@ def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPr
             # a correction, not a new search: half the evaluations (the budget's time bar holds on a noisy host)
             settings = replace(settings, evaluations=max(settings.population, settings.evaluations // 2))
         if ctx.settings.finetune_steps > 0:
-            pick = finetune_pick(ctx, pick)
-        picks.append(pick)
+            with ctx.cpu.phase("finetune"):
+                pick = finetune_pick(ctx, pick)
+        picks.append(replace(pick, search_cpu_s=ctx.cpu.rounded()))
     if verifiable and ctx.settings.confirm:
         picks = _confirm(ctx, table, picks, orders, latency)
     rows = write_picks(ctx.run, picks, out / "picks.json")
@@ -250,17 +260,27 @@ def _confirm(ctx: SearchContext, table: LatencyTable, picks: list[Pick], orders:
              latency: CachedLatency) -> list[Pick]:
     """Measure the device's picks again (confirm.py); where one no longer keeps its guard and the guard
     comes from the spread, choose that budget again with every candidate's guard at least as wide."""
-    picks = confirm_picks(ctx, table, picks)
+    split = CpuSplit()
+    with split.phase("confirm"):
+        picks = confirm_picks(ctx, table, picks)
+    confirmed = [p for p in picks if p.confirmation is not None]
+    share = {"confirm": round(split.seconds["confirm"] / max(1, len(confirmed)), 2)}  # one measurement for all
+    picks = [replace(p, search_cpu_s=merged(p.search_cpu_s, share)) if p.confirmation else p for p in picks]
     out = []
     for pick in picks:
         floor = guard_floor_of(pick) if ctx.settings.guard is None else None
         if floor is not None:
+            ctx.cpu = CpuSplit()
             ctx.say(f"  {budget_label(pick.budget_ms)}: the pick measured {pick.confirmation.pooled_ms:.4g} ms over both "
                     f"windows and no longer keeps its {100 * floor:.1f} % guard: choosing again with guards of at least that")
             again = choose_pick(ctx, table, orders[pick.budget_ms], pick.budget_ms, latency, True, guard_floor=floor)
-            pick = replace(again, session_drift=pick.session_drift, chosen_again=pick.confirmation)
+            ctx.cpu.merge(again.search_cpu_s)
             if ctx.settings.finetune_steps > 0:
-                pick = finetune_pick(ctx, pick)
+                with ctx.cpu.phase("finetune"):
+                    again = finetune_pick(ctx, again)
+            spent = {"choose again": ctx.cpu.rounded()["total"]}
+            pick = replace(again, session_drift=pick.session_drift, chosen_again=pick.confirmation,
+                           search_cpu_s=merged(pick.search_cpu_s, spent))
         out.append(pick)
     return out
 
@@ -273,7 +293,8 @@ def expected_guard(settings: SearchSettings) -> float:
 def _drift(ctx: SearchContext, table: LatencyTable, predictor: LatencyPredictor) -> Optional[float]:
     """This machine's speed now against the table's, from its calibration subnets (None without them)."""
     cfg = ctx.run.recipe
-    return measure_drift(ctx.run.supernet, table, getattr(predictor, "calibration_keys", []), cfg.data.channels, cfg.data.image_size)
+    with ctx.cpu.phase("drift check"):
+        return measure_drift(ctx.run.supernet, table, getattr(predictor, "calibration_keys", []), cfg.data.channels, cfg.data.image_size)
 
 
 UNDER_USE = 0.85  # a verified pick below this share of its budget triggers one corrected search

@@ -18,7 +18,7 @@ from __future__ import annotations
 import random
 from collections import deque
 from dataclasses import dataclass
-from typing import Callable, Optional
+from typing import Callable, Optional, Sequence
 
 from tightfit.errors import UserError
 from tightfit.model.space import SpaceSpec, Subnet
@@ -150,6 +150,13 @@ class _Ledger:
                 self.on_eval(c)
         return self.seen[key]
 
+    def adopt(self, c: Candidate) -> None:
+        """A candidate evaluated elsewhere: remembered (and reported) without calling the fitness."""
+        if c.key not in self.seen:
+            self.seen[c.key] = c
+            if self.on_eval:
+                self.on_eval(c)
+
 
 def _fresh_within(space: SpaceSpec, rng: random.Random, ledger: _Ledger, budget_ms: float, tries: int,
                   floor_ms: float = 0.0) -> Subnet:
@@ -183,18 +190,32 @@ def _child(space: SpaceSpec, parent: Subnet, rng: random.Random, ledger: _Ledger
     return fallback or _fresh_within(space, rng, ledger, budget_ms, cfg.sample_tries, floor_ms)
 
 
+def in_band(seeds: Sequence[Candidate], floor_ms: float, budget_ms: float) -> list[Candidate]:
+    """Distinct candidates already evaluated (another budget's) inside [floor, budget], most accurate first."""
+    unique = {c.key: c for c in seeds if floor_ms <= c.latency_ms <= budget_ms}
+    return sorted(unique.values(), key=lambda c: (-c.fitness, c.latency_ms))
+
+
 def regularized_evolution(space: SpaceSpec, fitness: Fitness, latency: Latency, budget_ms: float,
                           cfg: EvolutionSettings, on_eval: Optional[Callable[[Candidate], None]] = None,
-                          device: str = "device", band_under_ms: Optional[float] = None) -> list[Candidate]:
+                          device: str = "device", band_under_ms: Optional[float] = None,
+                          seeds: Sequence[Candidate] = ()) -> list[Candidate]:
     """Aging evolution under ``latency <= budget_ms``; returns every evaluated candidate in order.
     The preferred band lies under ``band_under_ms`` (default: the budget searched), so a search that
-    may go above the budget still explores the rungs under it (choose.py measures them)."""
+    may go above the budget still explores the rungs under it (choose.py measures them).
+    ``seeds``: candidates other budgets of the device evaluated. A subnet's accuracy does not depend on the
+    budget, so those in this band join the ledger without a fitness call, count towards ``evaluations`` and
+    start the population (most accurate first); only the rest of the population is drawn."""
     fastest_check(space, latency, budget_ms, device)
     rng = random.Random(cfg.seed)
     ledger = _Ledger(fitness, latency, on_eval)
     floor_ms = band_floor(space, latency, min(budget_ms, band_under_ms or budget_ms), cfg.band)
     population: deque[Candidate] = deque()
-    for _ in range(min(cfg.population, cfg.evaluations)):
+    for c in in_band(seeds, floor_ms, budget_ms)[:cfg.evaluations]:
+        ledger.adopt(c)
+        if len(population) < cfg.population:
+            population.append(c)
+    while len(population) < min(cfg.population, cfg.evaluations):
         population.append(ledger.evaluate(_fresh_within(space, rng, ledger, budget_ms, cfg.sample_tries, floor_ms), 0))
     cycle, stalls = 0, 0
     # Consecutive cycles without a new subnet: the budget admits too few to find more. Each such cycle
