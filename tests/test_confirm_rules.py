@@ -90,8 +90,8 @@ def test_the_time_between_the_windows_is_wall_clock_time_since_the_choice(tmp_pa
 
 
 def test_only_verified_picks_chosen_here_are_measured_again_with_the_protocol_they_were_chosen_on(tmp_path):
-    # Pooling mixes like with like: the second window runs the protocol the pick was chosen on
-    # (search/choose.py verification_protocol: at least 2 fresh-process repeats), and only a verified pick whose
+    # The second window runs the verification protocol at full length (search/choose.py verification_protocol: at
+    # least 2 fresh-process repeats; the choice times candidates shorter), and only a verified pick whose
     # first repeats are at hand has a window to pool with.
     protocol = Protocol(repeats=1)
     ctx, table, row = _pick(tmp_path / "a", _steady(0.9), protocol=protocol)

@@ -70,6 +70,17 @@ def verification_protocol(table_protocol: dict[str, Any]) -> Protocol:
                    time_runs=max(p.time_runs, full.time_runs))
 
 
+CHOICE_SECONDS = 0.25  # timed seconds per candidate and repeat while choosing: 5 pooled fresh processes of
+#                        0.25 s land within +-5 % of the sustained p90 as often as 5 of 1 s (docs/measurements.md,
+#                        "Seconds per process vs processes"); the confirmation measures the picks at full length
+
+
+def choice_protocol(verification: Protocol) -> Protocol:
+    """The verification protocol at CHOICE_SECONDS per repeat: candidates are many, picks few, and more
+    processes, not more seconds, is what makes a figure reproduce."""
+    return replace(verification, time_seconds=CHOICE_SECONDS)
+
+
 class _Measurer:
     """Cuts candidates into ``staging`` and measures them whole, interleaved; keeps the time spent.
     ``guard_floor``: no candidate's guard is narrower (a spread seen over a longer window, confirm.py)."""
@@ -139,7 +150,7 @@ def choose_pick(ctx: SearchContext, table: LatencyTable, ranked: list[Candidate]
     staging = staging_dir(ctx, table.name, budget_ms)
     shutil.rmtree(staging, ignore_errors=True)
     protocol = verification_protocol(table.protocol)
-    measurer = _Measurer(ctx, staging, protocol, guard_floor)
+    measurer = _Measurer(ctx, staging, choice_protocol(protocol), guard_floor)
 
     def fallback() -> Candidate:
         smallest = ctx.run.recipe.space.smallest()
@@ -148,7 +159,8 @@ def choose_pick(ctx: SearchContext, table: LatencyTable, ranked: list[Candidate]
     fixed, guard = ctx.settings.guard, None
     if verifiable:
         top = ctx.settings.top
-        ctx.say(f"  measuring the top {min(top, len(ranked))} candidates directly ({protocol.repeats} repeats)")
+        ctx.say(f"  measuring the top {min(top, len(ranked))} candidates directly ({protocol.repeats} repeats of "
+                f"{measurer.protocol.time_seconds:g} s)")
         choice = measure_and_choose(ranked, budget_ms, measurer, top, fallback, ctx.say, guard=fixed,
                                     remeasure=measurer.remeasure)
         chosen, rival, hardware = choice.pick, runner_up(choice, budget_ms, fixed), describe_hardware()
@@ -170,8 +182,9 @@ def choose_pick(ctx: SearchContext, table: LatencyTable, ranked: list[Candidate]
         ctx.say(too_small_line(lead, validation, scores, budget_label(budget_ms)))
     if note:
         ctx.say(f"  {note}")
+    used = measurer.protocol if chosen.measured is not None else protocol  # the figure's, or QA's to measure with
     return Pick(table.name, budget_ms, protocol.percentile, chosen.cand.subnet, chosen.cand.latency_ms,
-                chosen.cand.fitness, validation, test, chosen.measured, hardware, protocol, guard, fits, note,
+                chosen.cand.fitness, validation, test, chosen.measured, hardware, used, guard, fits, note,
                 chosen.cut, chosen.net, export_dir, ratio, lead,
                 timings={k: round(v, 2) for k, v in measurer.clock.items()}, search_cpu_s=measurer.cpu.rounded())
 
