@@ -20,6 +20,7 @@ from tightfit.ondevice.repeats import combine_repeats, repeat_summaries
 from tightfit.ondevice.timing import Protocol
 from tightfit.search.choice_rule import guard_share
 from tightfit.search.choose import SearchContext, guard_rule, verification_protocol
+from tightfit.search.cpu import cpu_seconds, merged
 
 MeasureAgain = Callable[[list[str], Protocol], dict[str, list[dict[str, Any]]]]
 """(model paths, protocol) -> each path's new repeat summaries (ondevice.repeats.repeat_summaries)."""
@@ -35,11 +36,13 @@ def confirm_picks(ctx: SearchContext, table: LatencyTable, picks: list[Pick],
     if not todo:
         return picks
     paths = {str(p.export_dir): str(p.cut.onnx_path) for p in todo}
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), cpu_seconds()
     new = measure(list(paths.values()), protocol)
+    share = {"confirm": round((cpu_seconds() - c0) / len(todo), 2)}  # one measurement of them all: each bills a share
     ctx.say(f"{table.name}: measured its {len(todo)} pick(s) again ({protocol.repeats} repeats, "
             f"{time.perf_counter() - t0:.1f} s), pooled with the repeats each was chosen on")
-    done = {str(p.export_dir): _pooled(ctx, p, new[paths[str(p.export_dir)]], protocol) for p in todo}
+    done = {str(p.export_dir): replace(_pooled(ctx, p, new[paths[str(p.export_dir)]], protocol),
+                                       search_cpu_s=merged(p.search_cpu_s, share)) for p in todo}
     return [done.get(str(p.export_dir), p) for p in picks]
 
 

@@ -200,6 +200,7 @@ def run_search(run_dir: str | Path, table_paths: list[str], budget_ms: list[floa
     return picks
 
 
+# long: a budget's steps in the order they run (search, one correction, choose, fine-tune, bill its CPU)
 def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPredictor, budgets: list[float]) -> list[dict[str, Any]]:
     """Every budget for one device: search, choose (and fine-tune) the pick; then confirm the device's
     picks and write each once (export folder and picks.json row, export/pick.py write_pick)."""
@@ -260,12 +261,7 @@ def _confirm(ctx: SearchContext, table: LatencyTable, picks: list[Pick], orders:
              latency: CachedLatency) -> list[Pick]:
     """Measure the device's picks again (confirm.py); where one no longer keeps its guard and the guard
     comes from the spread, choose that budget again with every candidate's guard at least as wide."""
-    split = CpuSplit()
-    with split.phase("confirm"):
-        picks = confirm_picks(ctx, table, picks)
-    confirmed = [p for p in picks if p.confirmation is not None]
-    share = {"confirm": round(split.seconds["confirm"] / max(1, len(confirmed)), 2)}  # one measurement for all
-    picks = [replace(p, search_cpu_s=merged(p.search_cpu_s, share)) if p.confirmation else p for p in picks]
+    picks = confirm_picks(ctx, table, picks)
     out = []
     for pick in picks:
         floor = guard_floor_of(pick) if ctx.settings.guard is None else None
