@@ -73,7 +73,7 @@ MUTATIONS = (
              "band = bands[(step * per_step + j) % len(bands)]", "band = bands[0]",
              ("tests/test_targets.py::test_band_draws_come_from_their_band_take_bands_in_turn_and_depend_only_on_seed_and_step",)),
     Mutation("soft targets without softmax", "train/sandwich.py",
-             "log_p = F.log_softmax(teacher_logits / t, 1)", "log_p = teacher_logits / t",
+             "p = F.softmax(teacher_logits / t, 1)", "p = teacher_logits / t",
              (f"{RULES}::test_sandwich_gradient_is_label_loss_of_largest_plus_distillation_of_the_others",)),
     Mutation("teacher recomputed from each subnet", "train/sandwich.py",
              "        if i == 0 and given is None:\n            teacher =", "        if given is None:\n            teacher =",

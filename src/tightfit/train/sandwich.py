@@ -96,7 +96,7 @@ def distill_loss(logits: torch.Tensor, teacher_logits: torch.Tensor, kind: str =
     log_p = F.log_softmax(teacher_logits / t, 1)
     if kind == "alpha":
         return torch.maximum(*(alpha_divergence(log_p, log_q, a).mean() for a in alphas)) * t * t
-    p = log_p.exp()
+    p = F.softmax(teacher_logits / t, 1)
     per_row = -(p * log_q).sum(1)
     if kind == "kl":
         per_row = per_row + (p * log_p).sum(1)
