@@ -59,7 +59,9 @@ def test_benchmark_smoke(tmp_path):
     assert c["family"] == pytest.approx(c["family_training"] + c["family_measuring"])
     # equal compute: the supernet's epochs follow from the family's CPU-seconds (smoke keeps 1 epoch, records the figure)
     eq = result["equal_compute"]
-    assert eq["family_cpu_s"] == pytest.approx(c["family"], rel=0.01) and eq["epoch_cpu_s"] >= 0
+    # the page's phases are rounded to 0.1 CPU-s each, the equal-compute sum is taken before rounding
+    family_phases = [k for k in result["phases"] if k.startswith(("train baseline ", "measure family "))]
+    assert eq["family_cpu_s"] == pytest.approx(c["family"], abs=0.05 * len(family_phases) + 0.05) and eq["epoch_cpu_s"] >= 0
     assert eq["profiling_cpu_s"] == pytest.approx(c["profiling"], abs=0.2) and eq["budgets"] == len(result["budgets"])
     assert eq["search_cpu_s_estimate"] == pytest.approx(
         eq["budgets"] * eq["search_share_per_budget"] * eq["family_cpu_s"], abs=0.2)
