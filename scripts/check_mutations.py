@@ -72,6 +72,16 @@ MUTATIONS = (
     Mutation("every step draws from the first band", "train/targets.py",
              "band = bands[(step * per_step + j) % len(bands)]", "band = bands[0]",
              ("tests/test_targets.py::test_band_draws_come_from_their_band_take_bands_in_turn_and_depend_only_on_seed_and_step",)),
+    Mutation("elite challenger wins ties", "train/targets.py",
+             "if fresh in elite or loss_of(fresh) >= loss_of(member):",
+             "if fresh in elite or loss_of(fresh) > loss_of(member):",
+             ("tests/test_target_elite.py::test_challenge_trains_and_keeps_the_lower_loss_and_the_member_on_ties",)),
+    Mutation("elite slot from the step, not the band's own turns", "train/targets.py",
+             "slot = turn // len(bands) % len(elite[name])", "slot = step % len(elite[name])",
+             ("tests/test_target_elite.py::test_round_robin_visits_every_slot_of_each_band_in_turn",)),
+    Mutation("a resumed run starts from the first elite", "train/loop.py",
+             'if state is not None and "target_elite" in state:', "if False:",
+             ("tests/test_target_elite.py::test_resume_with_an_elite_is_bit_identical_and_continues_the_elite",)),
     Mutation("soft targets without softmax", "train/sandwich.py",
              "p = F.softmax(teacher_logits / t, 1)", "p = teacher_logits / t",
              (f"{RULES}::test_sandwich_gradient_is_label_loss_of_largest_plus_distillation_of_the_others",)),
@@ -390,6 +400,10 @@ MUTATIONS = (
              "used = measurer.protocol if chosen.measured is not None else protocol",
              "used = protocol if chosen.measured is not None else protocol",
              (f"{PICK}::test_candidates_are_timed_a_quarter_second_per_repeat_and_the_pick_records_it",)),
+    Mutation("a redirected progress line per postfix change", "progress.py",
+             "super().set_postfix(ordered_dict, refresh=False, **kwargs)",
+             "super().set_postfix(ordered_dict, refresh=refresh, **kwargs)",
+             ("tests/test_progress.py::test_redirected_progress_writes_a_few_lines_not_one_per_step",)),
 )
 
 

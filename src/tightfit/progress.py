@@ -28,10 +28,18 @@ class _Lines(io.TextIOBase):
         self.stream.flush()
 
 
+class _PlainBar(tqdm):
+    """tqdm whose postfix changes wait for the next timed line: tqdm redraws on every set_postfix by
+    default, which wrote one line per training step into redirected logs."""
+
+    def set_postfix(self, ordered_dict=None, refresh=True, **kwargs):  # noqa: ARG002 (refresh ignored)
+        super().set_postfix(ordered_dict, refresh=False, **kwargs)
+
+
 def bar(iterable: Optional[Iterable[Any]] = None, *, stream: Optional[TextIO] = None, **kwargs: Any) -> tqdm:
     """tqdm with the project's defaults; `stream` defaults to stderr."""
     stream = stream or sys.stderr
     if getattr(stream, "isatty", lambda: False)():
         return tqdm(iterable, file=stream, dynamic_ncols=True, **kwargs)
-    return tqdm(iterable, file=_Lines(stream), mininterval=PLAIN_EVERY_S, maxinterval=PLAIN_EVERY_S,
+    return _PlainBar(iterable, file=_Lines(stream), mininterval=PLAIN_EVERY_S, maxinterval=PLAIN_EVERY_S,
                 ncols=100, ascii=True, **kwargs)
