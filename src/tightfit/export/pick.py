@@ -28,9 +28,11 @@ class Guard:
     """The share of its budget a pick measured here had to leave free, and where that share came from."""
     share: float
     rule: str
+    typical: Optional[float] = None  # the median guard of every candidate measured for this budget
 
     def to_dict(self) -> dict[str, Any]:
-        return {"share": round(self.share, 4), "rule": self.rule}
+        typical = {} if self.typical is None else {"candidates_median": round(self.typical, 4)}
+        return {"share": round(self.share, 4), "rule": self.rule, **typical}
 
 
 @dataclass(frozen=True)

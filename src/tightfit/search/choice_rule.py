@@ -113,7 +113,7 @@ def measure_and_choose(ranked: list[Candidate], budget_ms: float, measure: Measu
     ratio: Optional[float] = None
     for attempt in range(rounds):
         done = {t.cand.key for t in tried}
-        expected = budget_ms * (1.0 - _expected_guard(tried, guard))
+        expected = budget_ms * (1.0 - typical_guard(tried, guard))
         pool = [c for c in ranked if c.key not in done and (ratio is None or c.latency_ms * ratio <= expected)]
         last_resort = not pool
         if last_resort:
@@ -168,8 +168,9 @@ def _remeasure_close(tried: list[Tried], budget_ms: float, remeasure: Remeasure,
     return [t for t in tried if keeps_guard(t, budget_ms, guard)]
 
 
-def _expected_guard(tried: list[Tried], fixed: Optional[float]) -> float:
-    """The guard an unmeasured candidate will likely need: --guard, else the median of those measured."""
+def typical_guard(tried: list[Tried], fixed: Optional[float]) -> float:
+    """The guard an unmeasured candidate will likely need: --guard, else the median of those measured
+    (a corrected search centres on the budget less this, driver.corrected_limit)."""
     if fixed is not None:
         return fixed
     return float(np.median([guard_of(t, None) for t in tried])) if tried else DEFAULT_GUARD

@@ -30,7 +30,7 @@ from tightfit.progress import bar as progress_bar
 from tightfit.rundir import TrainedRun
 from tightfit.search.cache import CachedAccuracy, CachedLatency
 from tightfit.search.cpu import CpuSplit, cpu_seconds
-from tightfit.search.choice_rule import Tried, guard_of, guard_share, measure_and_choose
+from tightfit.search.choice_rule import Tried, guard_of, guard_share, measure_and_choose, typical_guard
 from tightfit.search.evolution import Candidate
 from tightfit.search.fitness import RunAccuracy
 from tightfit.search.lead import contenders, runner_up, too_small_line, too_small_to_separate
@@ -165,7 +165,7 @@ def choose_pick(ctx: SearchContext, table: LatencyTable, ranked: list[Candidate]
                                     remeasure=measurer.remeasure)
         chosen, rival, hardware = choice.pick, runner_up(choice, budget_ms, fixed), describe_hardware()
         rivals, fits, note, ratio = contenders(choice, budget_ms, fixed), choice.fits, choice.note, choice.ratio()
-        guard = Guard(guard_of(chosen, fixed), guard_rule(fixed, guard_floor))
+        guard = Guard(guard_of(chosen, fixed), guard_rule(fixed, guard_floor), typical_guard(choice.tried, fixed))
     else:  # another device: by prediction; the next candidate within the budget is the runner-up
         rivals = measurer.cut(([c for c in ranked if c.latency_ms <= budget_ms] or [fallback()])[:2], 0)
         chosen, rival, hardware = rivals[0], (rivals[1:] or [None])[0], table.hardware

@@ -57,7 +57,8 @@ def _pooled(ctx: SearchContext, pick: Pick, later: list[dict[str, Any]], protoco
                           pooled_ms=pooled.figure_ms, repeats=len(first.runs) + len(later),
                           after_s=time.time() - first.at, keeps_guard=keeps)
     fits = pooled.fits(pick.budget_ms)
-    return replace(pick, measurement=pooled, fits=fits, guard=Guard(share, guard_rule(fixed)), confirmation=record,
+    typical = None if pick.guard is None else pick.guard.typical
+    return replace(pick, measurement=pooled, fits=fits, guard=Guard(share, guard_rule(fixed), typical), confirmation=record,
                    hardware=describe_hardware(), protocol=protocol,
                    note="; ".join(filter(None, [pick.note, None if fits else "over its budget when measured again"])))
 

@@ -28,10 +28,10 @@ from tightfit.budgets import budget_label
 from tightfit.progress import bar
 from tightfit.search.cache import AccuracyCache, CachedAccuracy, CachedLatency
 from tightfit.ondevice.hardware import same_host
-from tightfit.search.choice_rule import DEFAULT_GUARD
 from tightfit.export.pick import Pick, write_picks
 from tightfit.search.choose import SearchContext, choose_pick, finetune_pick, remove_staging
 from tightfit.search.confirm import confirm_picks, guard_floor_of
+from tightfit.search.correction import centre_guard, corrected_limit, expected_guard
 from tightfit.search.evolution import Candidate, fastest_check, front_first, pareto_front, regularized_evolution
 from tightfit.search.cpu import CpuSplit, merged
 from tightfit.search.fitness import RunAccuracy, WholeSplit
@@ -230,20 +230,23 @@ def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPr
             with ctx.cpu.phase("evaluate"):
                 result = search_budget(ctx.run.recipe.space, ctx.fitness, latency, b, table.name, settings,
                                        out / "candidates.jsonl", ctx.progress, limit_ms=limit, usable_ms=usable,
-                                       seeds=seen)
+                                       seeds=seen if attempt == 0 else ())
             say(time_report(result, {k: v - before[k] for k, v in compute.phases(latency).items()}))
             seen += result.candidates
             write_front(out / f"front-{device_name(table.name)}.json", table.name, out / "candidates.jsonl")
             orders[b] = measuring_order(ctx, ranked_within(seen, limit))
             pick = replace(choose_pick(ctx, table, orders[b], b, latency, verifiable), session_drift=drift)
             ctx.cpu.merge(pick.search_cpu_s)  # measuring and scoring, every attempt's
-            again = corrected_limit(pick, base, limit) if attempt == 0 else None
+            centre = centre_guard(pick, ctx.settings)
+            again = corrected_limit(pick, b, centre, slack, limit) if attempt == 0 else None
             if again is None:
                 break
-            say(f"  the pick uses {pick.use():.0%} of the budget and the measured candidates ran "
-                f"{pick.measured_over_predicted:.2f} x their predictions: searching again up to {again:.4g} ms predicted")
-            limit = again
-            # a correction, not a new search: half the evaluations (the budget's time bar holds on a noisy host)
+            limit, usable = again
+            say(f"  the pick uses {pick.use():.0%} of the budget; the measured candidates ran "
+                f"{pick.measured_over_predicted:.2f} x their predictions and needed guards of about {100 * centre:.0f} %: "
+                f"searching again up to {limit:.4g} ms predicted")
+            # a correction, not a new search: half the evaluations (the budget's time bar holds on a noisy host),
+            # all fresh: seeded with the candidates seen, it once took all of them from those (the demo at fbcf81f)
             settings = replace(settings, evaluations=max(settings.population, settings.evaluations // 2))
         if ctx.settings.finetune_steps > 0:
             with ctx.cpu.phase("finetune"):
@@ -281,30 +284,8 @@ def _confirm(ctx: SearchContext, table: LatencyTable, picks: list[Pick], orders:
     return out
 
 
-def expected_guard(settings: SearchSettings) -> float:
-    """The guard to centre the search on before anything is measured: --guard, else the usual one."""
-    return DEFAULT_GUARD if settings.guard is None else settings.guard
-
-
 def _drift(ctx: SearchContext, table: LatencyTable, predictor: LatencyPredictor) -> Optional[float]:
     """This machine's speed now against the table's, from its calibration subnets (None without them)."""
     cfg = ctx.run.recipe
     with ctx.cpu.phase("drift check"):
         return measure_drift(ctx.run.supernet, table, getattr(predictor, "calibration_keys", []), cfg.data.channels, cfg.data.image_size)
-
-
-UNDER_USE = 0.85  # a verified pick below this share of its budget triggers one corrected search
-
-
-def corrected_limit(pick: Pick, base_ms: float, limit_ms: float) -> Optional[float]:
-    """Where a verified pick uses less than UNDER_USE of its budget, the uncorrected limit
-    `base_ms` divided by measured/predicted over the measured candidates, if that differs from
-    the `limit_ms` searched by more than 3 % (else None). Below 1 the predictor overestimated:
-    a wider search brings in faster-than-predicted, more accurate subnets. Above 1 every top
-    candidate measured over and the pick fell back far below them (the search's candidates all
-    sit in a band just under its limit): a narrower search looks where subnets now fit."""
-    ratio = pick.measured_over_predicted
-    if not (pick.measurement and pick.fits and ratio) or pick.use() >= UNDER_USE:
-        return None
-    new = base_ms / ratio
-    return new if abs(new / limit_ms - 1) > 0.03 else None
