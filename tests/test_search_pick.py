@@ -55,7 +55,8 @@ def _choose(tmp_path, monkeypatch, scores: dict[str, float], hits: dict[str, np.
     monkeypatch.setattr(choose, "repeat_summaries", measure)
     monkeypatch.setattr(choose, "shipped_hits", lambda data, ds, split: hits[data.decode()])
     said: list[str] = []
-    ctx = SimpleNamespace(run_dir=tmp_path, run=SimpleNamespace(recipe=SimpleNamespace(space=None)), ds=None,
+    ctx = SimpleNamespace(run_dir=tmp_path, run=SimpleNamespace(recipe=SimpleNamespace(space=None)),
+                          ds=SimpleNamespace(val_y=np.zeros(N_VAL)),
                           settings=SearchSettings(top=len(scores), guard=0.05), say=said.append, pick_runs={})
     ranked = [Candidate(k, SimpleNamespace(to_key=lambda k=k: k), acc, 0.9, 0)
               for k, acc in sorted(scores.items(), key=lambda kv: -kv[1])]

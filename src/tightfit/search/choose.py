@@ -30,7 +30,7 @@ from tightfit.progress import bar as progress_bar
 from tightfit.rundir import TrainedRun
 from tightfit.search.cache import CachedAccuracy, CachedLatency
 from tightfit.search.cpu import CpuSplit, cpu_seconds
-from tightfit.search.choice_rule import Tried, guard_of, guard_share, measure_and_choose, typical_guard
+from tightfit.search.choice_rule import Tried, guard_of, guard_share, measure_and_choose, tie_points, typical_guard
 from tightfit.search.evolution import Candidate
 from tightfit.search.fitness import RunAccuracy
 from tightfit.search.lead import contenders, runner_up, too_small_line, too_small_to_separate
@@ -161,8 +161,9 @@ def choose_pick(ctx: SearchContext, table: LatencyTable, ranked: list[Candidate]
         top = ctx.settings.top
         ctx.say(f"  measuring the top {min(top, len(ranked))} candidates directly ({protocol.repeats} repeats of "
                 f"{measurer.protocol.time_seconds:g} s)")
+        tie = tie_points(max((c.fitness for c in ranked), default=0.0), len(ctx.ds.val_y))
         choice = measure_and_choose(ranked, budget_ms, measurer, top, fallback, ctx.say, guard=fixed,
-                                    remeasure=measurer.remeasure)
+                                    remeasure=measurer.remeasure, tie=tie)
         chosen, rival, hardware = choice.pick, runner_up(choice, budget_ms, fixed), describe_hardware()
         rivals, fits, note, ratio = contenders(choice, budget_ms, fixed), choice.fits, choice.note, choice.ratio()
         guard = Guard(guard_of(chosen, fixed), guard_rule(fixed, guard_floor), typical_guard(choice.tried, fixed))
