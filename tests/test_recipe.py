@@ -138,7 +138,7 @@ def test_training_levers_at_their_defaults_keep_the_recipe_hash():
     for key in ("zero_init_residual", "largest_dropout", "final_lr_fraction", "largest_only_epochs", "distill_loss",
                 "distill_temperature", "random_macs_target", "random_candidates", "distill_weight", "targets",
                 "target_subnets", "target_band_bottom", "target_candidates", "distill_when", "distill_alpha_low",
-                "distill_alpha_high", "teacher", "teacher_decay"):
+                "distill_alpha_high", "teacher", "teacher_decay", "target_elite"):
         del d["train"][key]
     assert recipe.hash() == hashlib.sha256(json.dumps(d, sort_keys=True).encode()).hexdigest()[:16]
     changed = dataclasses.replace(recipe, train=dataclasses.replace(recipe.train, final_lr_fraction=0.05))

@@ -88,6 +88,8 @@ class TrainConfig:
     target_subnets: int = 1        # band subnets per step (when there are targets)
     target_band_bottom: float = 0.85  # a band spans [this * budget, budget] as the target's table predicts
     target_candidates: int = 1     # > 1: of this many band draws, train the one with the lowest loss on the batch
+    target_elite: int = 0          # > 0: each band keeps this many architectures; each turn one is challenged by a
+                                   # fresh band draw, the lower loss on the batch is trained and kept (member on ties)
 
 
 # Added after recipes, checkpoints and caches were keyed by Recipe.hash(): left out of the hash while
@@ -95,7 +97,7 @@ class TrainConfig:
 _LEVERS = ("zero_init_residual", "largest_dropout", "final_lr_fraction", "largest_only_epochs", "distill_loss",
            "distill_temperature", "random_macs_target", "random_candidates", "distill_weight", "targets",
            "target_subnets", "target_band_bottom", "target_candidates", "distill_when", "distill_alpha_low",
-           "distill_alpha_high", "teacher", "teacher_decay")
+           "distill_alpha_high", "teacher", "teacher_decay", "target_elite")
 _LEVER_DEFAULTS = {f.name: f.default for f in fields(TrainConfig) if f.name in _LEVERS}
 
 
@@ -212,6 +214,11 @@ def _check_levers(train: TrainConfig) -> None:
         raise fail("train.teacher_decay", train.teacher_decay, "must be in (0, 1)")
     if not 0 < train.target_band_bottom < 1:
         raise fail("train.target_band_bottom", train.target_band_bottom, "must be in (0, 1)")
+    if train.target_elite < 0:
+        raise fail("train.target_elite", train.target_elite, "must be >= 0 (0: no kept elite)")
+    if train.target_elite and train.target_candidates > 1:
+        raise fail("train.target_elite", train.target_elite, f"a kept elite meets one fresh draw per turn; set "
+                   f"train.target_candidates = 1 (it is {train.target_candidates}) or train.target_elite = 0")
 
 
 def load_recipe(path: str | Path) -> Recipe:

@@ -207,6 +207,16 @@ class GradientSync:
         return dict(zip(losses, avg))
 
 
+def mean_over_ranks(value: float, ranks: Ranks, dev: torch.device) -> float:
+    """A batch loss over the global batch: the mean of the ranks' equal shares (the value itself in one
+    process), so choices made from it are the same on every rank."""
+    if not ranks.launched:
+        return value
+    t = torch.tensor([value], dtype=torch.float64, device=dev)
+    dist.all_reduce(t)  # SUM
+    return t.item() / ranks.world
+
+
 def step_seed(seed: int, rank: int, step: int) -> int:
     """Seed of the global RNG (dropout) for one rank and step: masks differ between ranks,
     and a resumed run draws the same masks as an uninterrupted one."""

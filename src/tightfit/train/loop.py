@@ -2,13 +2,15 @@
 
 One step is the sandwich of sandwich.py. Subnet sampling and augmentation are seeded from
 the step, so a resumed run (and every distributed rank) draws exactly the same subnets
-and batches.
+and batches; the one sampling state carried from step to step, the bands' kept elite
+(train.target_elite), goes into the checkpoint.
 """
 from __future__ import annotations
 
 import json
 import signal
 import time
+from functools import partial
 from pathlib import Path
 
 import torch
@@ -16,7 +18,7 @@ from tightfit.progress import bar as progress_bar
 
 from tightfit.checkpoint import load_checkpoint, remove_stale_temporaries, save_checkpoint
 from tightfit.train.distributed import (GradientSync, Ranks, barrier, broadcast_weights, decided_on_main, joined,
-                                  local_rows, step_seed)
+                                  local_rows, mean_over_ranks, step_seed)
 from tightfit.data.dataset import Dataset, calibration_batches, eval_batches, load_dataset, steps_per_epoch, train_batches
 from tightfit.errors import Interrupted, UserError
 from tightfit.model.recalibrate import subnet_accuracy
@@ -27,7 +29,8 @@ from tightfit.rundir import checkpoint_path
 from tightfit.train.initialise import zero_init_residual
 from tightfit.train.sandwich import lr_at, macs_distance, make_optimizer, step_subnets, train_step
 from tightfit.train.teacher import MeanTeacher
-from tightfit.train.targets import Band, band_draws, batch_loss, lowest_loss, target_bands
+from tightfit.train.targets import (Band, Elite, band_subnets, batch_loss, elite_from_keys, elite_keys, first_elite,
+                                    target_bands)
 
 
 class _StopFlag:
@@ -50,13 +53,22 @@ class _StopFlag:
             signal.signal(s, h)
 
 
-def _state(model, opt, step, recipe, ds: Dataset, complete: bool, averaged: MeanTeacher | None = None) -> dict:
+def _state(model, opt, step, recipe, ds: Dataset, complete: bool, averaged: MeanTeacher | None = None,
+           elite: Elite | None = None) -> dict:
     state = {"model": model.state_dict(), "optimizer": opt.state_dict(), "step": step,
              "rng": torch.get_rng_state(), "recipe": recipe.to_dict(), "recipe_hash": recipe.hash(),
              "class_names": list(ds.class_names), "mean": list(ds.mean), "std": list(ds.std), "complete": complete}
     if averaged is not None:
         state["mean_teacher"] = averaged.state_dict()
+    if elite:
+        state["target_elite"] = elite_keys(elite)
     return state
+
+
+def _global_batch_loss(model: Supernet, x: torch.Tensor, y: torch.Tensor, ranks: Ranks, dev: torch.device,
+                       subnet) -> float:
+    """A subnet's loss on the whole global batch, so every rank chooses the same band subnets."""
+    return mean_over_ranks(batch_loss(model, x, y, subnet), ranks, dev)
 
 
 def _trim_log(path: Path, step: int) -> None:
@@ -111,9 +123,13 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, recipe_p
         averaged = MeanTeacher(model, recipe.train.teacher_decay) if recipe.train.teacher == "mean" else None
         if averaged is not None and state is not None:
             averaged.load_state_dict(state["mean_teacher"])
+        elite = first_elite(bands, recipe.seed, recipe.train.target_elite)
+        if state is not None and "target_elite" in state:
+            elite = elite_from_keys(state["target_elite"])
         if ranks.is_main and recipe_path is not None and not (run_dir / "recipe.toml").exists():
             write_bytes(run_dir / "recipe.toml", Path(recipe_path).read_bytes() + extra_toml.encode())
-        return _loop(model, opt, recipe, ds, run_dir, start, progress, dev, ranks, stop_at_step, complete, bands, averaged)
+        return _loop(model, opt, recipe, ds, run_dir, start, progress, dev, ranks, stop_at_step, complete, bands,
+                     averaged, elite)
 
 
 def _open_run(run_dir: Path, recipe: Recipe, resume: bool) -> dict | None:
@@ -139,7 +155,7 @@ def _open_run(run_dir: Path, recipe: Recipe, resume: bool) -> dict | None:
 # long: one training step's bookkeeping (schedule, sync, logging, checkpoint, stop) must stay in one visible order
 def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, start: int, progress: bool,
           dev: torch.device, ranks: Ranks = Ranks(), stop_at_step: int | None = None, complete: bool = False,
-          bands: list[Band] = (), averaged: MeanTeacher | None = None) -> Path:
+          bands: list[Band] = (), averaged: MeanTeacher | None = None, elite: Elite | None = None) -> Path:
     cfg = recipe.train
     spe = steps_per_epoch(ds, cfg.batch_size)
     if spe == 0:
@@ -174,8 +190,9 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
                     torch.manual_seed(step_seed(recipe.seed, ranks.rank, step))
                 subnets = step_subnets(recipe, step, spe, distance)
                 if len(subnets) > 1:  # not in the largest-only warm-up
-                    subnets += [lowest_loss(c, lambda s, x=x, y=y: batch_loss(model, x, y, s)) for c in
-                                band_draws(bands, step, recipe.seed, cfg.target_subnets, cfg.target_candidates)]
+                    loss_of = partial(_global_batch_loss, model, x, y, ranks, dev)
+                    band, elite = band_subnets(bands, elite, step, recipe.seed, cfg, loss_of)
+                    subnets += band
                 teacher = averaged.logits(x) if averaged is not None and len(subnets) > 1 else None
                 losses = train_step(model, opt, x, y, subnets, cfg, sync, teacher)
                 if averaged is not None:
@@ -194,7 +211,7 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
                     append_jsonl(metrics, _epoch_eval(model, recipe, ds, epoch + 1, step))
                 if end_of_epoch or (cfg.checkpoint_every and step % cfg.checkpoint_every == 0) or stopping:
                     if main:
-                        save_checkpoint(ckpt, _state(model, opt, step, recipe, ds, step == total, averaged))
+                        save_checkpoint(ckpt, _state(model, opt, step, recipe, ds, step == total, averaged, elite))
                     barrier(ranks)  # nobody leaves (or is stopped by torchrun) before the file is whole
                 if stopping:
                     bar.close()
@@ -205,12 +222,12 @@ def _loop(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, star
                     break
     bar.close()
     if start >= total and not complete:
-        _finish(model, opt, recipe, ds, run_dir, total, spe, ranks, averaged)
+        _finish(model, opt, recipe, ds, run_dir, total, spe, ranks, averaged, elite)
     return ckpt
 
 
 def _finish(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, total: int, spe: int,
-            ranks: Ranks, averaged: MeanTeacher | None = None) -> None:
+            ranks: Ranks, averaged: MeanTeacher | None = None, elite: Elite | None = None) -> None:
     """Resume of a run stopped after its last step's checkpoint but before the one marked
     complete (only older checkpoints, or a kill between the two writes, leave that state): run the
     final evaluation again and write the complete checkpoint, as the uninterrupted run does."""
@@ -219,5 +236,5 @@ def _finish(model: Supernet, opt, recipe: Recipe, ds: Dataset, run_dir: Path, to
         keep = [r for r in read_jsonl(metrics)[0] if not (r.get("step") == total and "val_acc_largest" in r)]
         write_text(metrics, "".join(json.dumps(r) + "\n" for r in keep))
         append_jsonl(metrics, _epoch_eval(model, recipe, ds, (total - 1) // spe + 1, total))
-        save_checkpoint(checkpoint_path(run_dir), _state(model, opt, total, recipe, ds, True, averaged))
+        save_checkpoint(checkpoint_path(run_dir), _state(model, opt, total, recipe, ds, True, averaged, elite))
     barrier(ranks)

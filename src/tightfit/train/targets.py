@@ -5,6 +5,10 @@ band is [bottom * budget, budget] as its table predicts it; the search later pic
 so those are the architectures worth training often (weight sharing costs the middle of the space
 most when it is trained rarely). Band members come from a seeded uniform sample of the space, so a
 band holds what the space offers there, in proportion.
+
+With ``target_elite`` a band also keeps a few architectures it trains again and again (the band's
+current front, where the search will pick): each turn, one member is challenged by a fresh band draw
+on the current batch, and the lower loss is trained and keeps the slot.
 """
 from __future__ import annotations
 
@@ -20,7 +24,9 @@ from tightfit.errors import UserError
 from tightfit.latency.predict import load_predictor
 from tightfit.model.space import SpaceSpec, Subnet
 from tightfit.model.supernet import Supernet
-from tightfit.recipe import Recipe
+from tightfit.recipe import Recipe, TrainConfig
+
+Elite = dict[str, tuple[Subnet, ...]]  # band name -> the architectures it keeps
 
 POOL_DRAWS = 20_000  # uniform draws a band is filled from (~1 s of prediction on this host's demo space)
 
@@ -87,6 +93,59 @@ def lowest_loss(candidates: tuple[Subnet, ...], loss_of: Callable[[Subnet], floa
         return candidates[0]
     losses = [loss_of(s) for s in candidates]
     return candidates[min(range(len(candidates)), key=losses.__getitem__)]
+
+
+def first_elite(bands: list[Band], seed: int, size: int) -> Elite:
+    """Each band's first ``size`` distinct seeded draws from its members (all of them when it has
+    fewer); seeded from (seed, band), so a fresh and a resumed run start alike. {} when ``size`` is 0."""
+    if not size:
+        return {}
+    return {b.name: tuple(random.Random(f"{seed}:{b.name}:elite").sample(b.members, min(size, len(b.members))))
+            for b in bands}
+
+
+def challenge(elite: tuple[Subnet, ...], slot: int, fresh: Subnet,
+              loss_of: Callable[[Subnet], float]) -> tuple[Subnet, tuple[Subnet, ...]]:
+    """(trained, new elite): the lower-loss of the member in ``slot`` and a fresh draw is trained and
+    holds the slot, the member on ties; a draw already kept does not challenge (the elite stays distinct)."""
+    member = elite[slot]
+    if fresh in elite or loss_of(fresh) >= loss_of(member):
+        return member, elite
+    return fresh, elite[:slot] + (fresh,) + elite[slot + 1:]
+
+
+def elite_subnets(bands: list[Band], elite: Elite, step: int, seed: int, per_step: int,
+                  loss_of: Callable[[Subnet], float]) -> tuple[list[Subnet], Elite]:
+    """The band subnets of ``step`` with a kept elite, and the elite after it: bands in turn as
+    ``band_draws`` takes them, its draw the challenger of the slot whose turn it is (each band's own
+    turns counted, so every slot is visited in turn)."""
+    trained, elite = [], dict(elite)
+    for j, (fresh,) in enumerate(band_draws(bands, step, seed, per_step, 1)):
+        turn = step * per_step + j
+        name = bands[turn % len(bands)].name
+        slot = turn // len(bands) % len(elite[name])
+        subnet, elite[name] = challenge(elite[name], slot, fresh, loss_of)
+        trained.append(subnet)
+    return trained, elite
+
+
+def band_subnets(bands: list[Band], elite: Elite, step: int, seed: int, cfg: TrainConfig,
+                 loss_of: Callable[[Subnet], float]) -> tuple[list[Subnet], Elite]:
+    """The band subnets ``step`` trains under the recipe's target levers, and the elite after it."""
+    if cfg.target_elite:
+        return elite_subnets(bands, elite, step, seed, cfg.target_subnets, loss_of)
+    draws = band_draws(bands, step, seed, cfg.target_subnets, cfg.target_candidates)
+    return [lowest_loss(c, loss_of) for c in draws], elite
+
+
+def elite_keys(elite: Elite) -> dict[str, list[str]]:
+    """The elite as checkpoint data: subnet keys per band name."""
+    return {name: [s.to_key() for s in members] for name, members in elite.items()}
+
+
+def elite_from_keys(keys: dict[str, list[str]]) -> Elite:
+    """The elite a checkpoint stored, for the resumed run to continue with."""
+    return {name: tuple(Subnet.from_key(k) for k in members) for name, members in keys.items()}
 
 
 @torch.no_grad()
