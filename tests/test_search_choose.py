@@ -165,6 +165,12 @@ def test_rungs_span_the_band_from_the_most_preferred_down():
     assert [c.key for c in rungs(pool[:4], 4, 0.9)] == ["a", "c", "d", "b"]  # no rung left: the next in order
     assert [c.key for c in rungs(pool, 1, 0.9)] == ["a"]
     assert rungs([], 4, 0.9) == []
+    # with a tie, a rung takes the slowest of the candidates under its limit within the tie of the most
+    # accurate there: under 0.96, e (88), c (87) and d (86); 1.5 points tie e and c, and c is slower
+    tied = [Candidate(k, None, acc, ms, 0) for k, acc, ms in
+            [("a", 90, 1.0), ("e", 88.0, 0.8), ("c", 87.0, 0.95), ("d", 86.0, 0.9)]]
+    assert [c.key for c in rungs(tied, 2, 0.96)] == ["a", "e"]          # no tie: the most accurate under 0.96
+    assert [c.key for c in rungs(tied, 2, 0.96, tie=1.5)] == ["a", "c"]  # c (87) ties with e (88) and is slower
 
 
 def test_the_smallest_as_last_resort_names_the_fastest_measured_above_it():

@@ -100,12 +100,12 @@ def keeps_guard(t: Tried, budget_ms: float, fixed: Optional[float]) -> bool:
 RUNG_BOTTOM = 0.9  # the lowest rung: this share of the usable budget (budget less the expected guard)
 
 
-def rungs(pool: list[Candidate], top: int, bottom_ms: float) -> list[Candidate]:
+def rungs(pool: list[Candidate], top: int, bottom_ms: float, tie: float = 0.0) -> list[Candidate]:
     """Up to ``top`` candidates that span the band under the limit: the first of ``pool`` (the most
-    preferred), then the first at or under each of ``top - 1`` limits spaced geometrically from the
-    pool's highest prediction down to ``bottom_ms``, then the next in order if rungs coincide. The top
-    few of an evolution crowd the limit and share one fate when measured; a rung lower down is what a
-    miss falls to, instead of the smallest subnet."""
+    preferred), then at or under each of ``top - 1`` limits spaced geometrically from the pool's highest
+    prediction down to ``bottom_ms`` the most accurate (of those within ``tie`` of it, the slowest), then
+    the next in order if rungs coincide. The top few of an evolution crowd the limit and share one fate
+    when measured; a rung lower down is what a miss falls to, instead of the smallest subnet."""
     if not pool:
         return []
     ceiling = max(c.latency_ms for c in pool)
@@ -115,7 +115,7 @@ def rungs(pool: list[Candidate], top: int, bottom_ms: float) -> list[Candidate]:
     for lim in limits:
         below = [c for c in pool if c.latency_ms <= lim and c not in chosen]
         if below:
-            chosen.append(below[0])
+            chosen.append(tied_slowest_first(below, tie)[0])
     chosen += [c for c in pool if c not in chosen][:top - len(chosen)]
     return chosen[:top]
 
@@ -146,7 +146,7 @@ def measure_and_choose(ranked: list[Candidate], budget_ms: float, measure: Measu
             pool = [] if last.key in done else [last]
         if not pool:
             break
-        tried += measure(rungs(tied_slowest_first(pool, tie), top, RUNG_BOTTOM * expected / (ratio or 1.0)), len(tried))
+        tried += measure(rungs(tied_slowest_first(pool, tie), top, RUNG_BOTTOM * expected / (ratio or 1.0), tie), len(tried))
         fitting = [t for t in tried if keeps_guard(t, budget_ms, guard)]
         if not fitting and remeasure is not None:
             fitting = _remeasure_close(tried, budget_ms, remeasure, top, guard, say)
