@@ -196,6 +196,15 @@ def test_corrected_limit_only_for_a_verified_pick_far_under_budget(tmp_path):
     assert corrected_limit(demo, 0.0662, 0.05, 0.05, 0.0662 * 0.95 * 1.05) is None  # the old rule: no correction
     limit, usable = corrected_limit(demo, 0.0662, 0.14, 0.05, 0.0662 * 0.95 * 1.05)
     assert usable == pytest.approx(0.0662 * 0.86 / 1.03) and limit == pytest.approx(usable * 1.05)
+    # The demo at 7eeba9a: every candidate under the limit failed (one by a spiky 32 % guard) and the pick fell
+    # back to the smallest at 58 %; the others' 2.3 % median guard and the 1.044 ratio move the limit by 1.4 %,
+    # inside the 3 % dead band. Fallen back, the search goes 3 % lower: 0.97 x the limit searched.
+    fell = fake_pick(tmp_path, budget_ms=0.0662, predicted_ms=0.0372, measurement=steady(0.0382),
+                     measured_over_predicted=1.044)
+    searched = 0.0662 * 0.95 * 1.05
+    assert corrected_limit(fell, 0.0662, 0.0226, 0.05, searched) is None
+    limit, usable = corrected_limit(fell, 0.0662, 0.0226, 0.05, searched, fell_back=True)
+    assert limit == pytest.approx(0.97 * searched) and usable == pytest.approx(0.97 * searched / 1.05)
 
 
 def test_a_corrected_search_centres_on_the_guard_its_candidates_needed(tmp_path):

@@ -25,8 +25,11 @@ def centre_guard(pick: Pick, settings: SearchSettings) -> float:
     return expected_guard(settings) if typical is None else typical
 
 
-def corrected_limit(pick: Pick, budget_ms: float, guard: float, slack: float, limit_ms: float
-                    ) -> Optional[tuple[float, float]]:
+DEAD_BAND = 0.03  # a corrected limit closer than this to the one searched finds nothing new
+
+
+def corrected_limit(pick: Pick, budget_ms: float, guard: float, slack: float, limit_ms: float,
+                    fell_back: bool = False) -> Optional[tuple[float, float]]:
     """Where a verified pick uses less than UNDER_USE of its budget: the (limit, usable) of one
     corrected search, usable = budget x (1 - guard) / measured-over-predicted and the limit ``slack``
     above it, unless that limit is within 3 % of the ``limit_ms`` searched (else None). The first
@@ -34,10 +37,14 @@ def corrected_limit(pick: Pick, budget_ms: float, guard: float, slack: float, li
     they needed. A ratio below 1 (the predictor overestimated) widens the search to faster-than-
     predicted, more accurate subnets; above 1, or guards wider than expected, narrow it to where
     candidates now fit (the first search's all sat in a band just under its limit, and a miss there
-    fell far below them)."""
+    fell far below them). A pick that ``fell_back`` to the smallest subnet had every candidate under
+    the limit fail: the search goes at least DEAD_BAND lower (the demo at 7eeba9a: one candidate's
+    spiky 32 % guard sank the band, and the others' 2 % median moved the limit by 1.4 %)."""
     ratio = pick.measured_over_predicted
     if not (pick.measurement and pick.fits and ratio) or pick.use() >= UNDER_USE:
         return None
     usable = budget_ms * (1 - guard) / ratio
+    if fell_back:
+        usable = min(usable, (1 - DEAD_BAND) * limit_ms / (1 + slack))
     new = usable * (1 + slack)
-    return (new, usable) if abs(new / limit_ms - 1) > 0.03 else None
+    return (new, usable) if abs(new / limit_ms - 1) > DEAD_BAND - 1e-9 else None

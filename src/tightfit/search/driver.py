@@ -238,7 +238,8 @@ def _search_device(ctx: SearchContext, table: LatencyTable, predictor: LatencyPr
             pick = replace(choose_pick(ctx, table, orders[b], b, latency, verifiable), session_drift=drift)
             ctx.cpu.merge(pick.search_cpu_s)  # measuring and scoring, every attempt's
             centre = centre_guard(pick, ctx.settings)
-            again = corrected_limit(pick, b, centre, slack, limit) if attempt == 0 else None
+            fell_back = pick.subnet == ctx.run.recipe.space.smallest()
+            again = corrected_limit(pick, b, centre, slack, limit, fell_back) if attempt == 0 else None
             if again is None:
                 break
             limit, usable = again
