@@ -3,6 +3,7 @@ targets' way in through the recipe and the command line."""
 from __future__ import annotations
 
 import dataclasses
+import math
 import subprocess
 import sys
 
@@ -193,6 +194,19 @@ def test_alpha_distillation_takes_the_larger_of_its_two_divergences():
     low, high = alpha_divergence(log_p, log_q, -1.0).mean(), alpha_divergence(log_p, log_q, 1.0).mean()
     got = distill_loss(log_q, log_p, "alpha", 1.0, (-1.0, 1.0))
     assert torch.allclose(got, torch.maximum(low, high)) and not torch.allclose(low, high)
+
+
+def test_alpha_distillation_stays_finite_where_the_teacher_gives_a_class_almost_nothing():
+    # A confident teacher (log p = -80 on two classes) and a student spread evenly: D_-1 = (sum q^2 / p - 1) / 2
+    # is ~ e^80 and its gradient overflows (a screen went to NaN). With log(q / p) bounded by 5, by hand:
+    # per class q^2 / p = q (q / p) <= q e^5, so the loss is at most (e^5 - 1) / 2 and every gradient finite.
+    from tightfit.train.sandwich import ALPHA_LOG_RATIO, distill_loss
+    teacher = torch.tensor([[80.0, 0.0, 0.0]])
+    student = torch.zeros(1, 3, requires_grad=True)
+    loss = distill_loss(student, teacher, "alpha", 1.0, (-1.0, 1.0))
+    loss.backward()
+    assert torch.isfinite(loss) and torch.isfinite(student.grad).all()
+    assert 0 < loss.item() <= (math.exp(ALPHA_LOG_RATIO) - 1) / 2 + 1e-4
 
 
 def test_a_teacher_not_ahead_on_the_batch_teaches_nothing():
