@@ -205,6 +205,10 @@ def test_corrected_limit_only_for_a_verified_pick_far_under_budget(tmp_path):
     assert corrected_limit(fell, 0.0662, 0.0226, 0.05, searched) is None
     limit, usable = corrected_limit(fell, 0.0662, 0.0226, 0.05, searched, fell_back=True)
     assert limit == pytest.approx(0.97 * searched) and usable == pytest.approx(0.97 * searched / 1.05)
+    # guards of half the budget or more (two noisy repeats gave 180 %, and a negative limit): no correction
+    assert corrected_limit(fell, 0.0662, 1.8, 0.05, searched, fell_back=True) is None
+    assert corrected_limit(fell, 0.0662, 0.5, 0.05, searched) is None
+    assert corrected_limit(fell, 0.0662, 0.3, 0.05, searched) is not None
 
 
 def test_a_corrected_search_centres_on_the_guard_its_candidates_needed(tmp_path):

@@ -26,6 +26,9 @@ def centre_guard(pick: Pick, settings: SearchSettings) -> float:
 
 
 DEAD_BAND = 0.03  # a corrected limit closer than this to the one searched finds nothing new
+# Guards this wide say the repeats were noise, not where subnets fit: no correction. (Two repeats on a
+# loaded 2-core host gave a median guard over 100 % and a negative limit, commit ec24717.)
+NOISE_GUARD = 0.5
 
 
 def corrected_limit(pick: Pick, budget_ms: float, guard: float, slack: float, limit_ms: float,
@@ -41,7 +44,7 @@ def corrected_limit(pick: Pick, budget_ms: float, guard: float, slack: float, li
     the limit fail: the search goes at least DEAD_BAND lower (the demo at 7eeba9a: one candidate's
     spiky 32 % guard sank the band, and the others' 2 % median moved the limit by 1.4 %)."""
     ratio = pick.measured_over_predicted
-    if not (pick.measurement and pick.fits and ratio) or pick.use() >= UNDER_USE:
+    if not (pick.measurement and pick.fits and ratio) or pick.use() >= UNDER_USE or guard >= NOISE_GUARD:
         return None
     usable = budget_ms * (1 - guard) / ratio
     if fell_back:
