@@ -101,9 +101,9 @@ RUNG_BOTTOM = 0.9  # the lowest rung: this share of the usable budget (budget le
 
 
 def rungs(pool: list[Candidate], top: int, bottom_ms: float, tie: float = 0.0) -> list[Candidate]:
-    """Up to ``top`` candidates that span the band under the limit: the first of ``pool`` (the most
-    preferred), then at or under each of ``top - 1`` limits spaced geometrically from the pool's highest
-    prediction down to ``bottom_ms`` the most accurate (of those within ``tie`` of it, the slowest), then
+    """Up to ``top`` candidates that span the band under the limit: at or under each of ``top`` limits
+    spaced geometrically from the pool's highest prediction down to ``bottom_ms``, the most accurate (of
+    those within ``tie`` of it, the slowest: the first rung is the most preferred of the whole pool), then
     the next in order if rungs coincide. The top few of an evolution crowd the limit and share one fate
     when measured; a rung lower down is what a miss falls to, instead of the smallest subnet."""
     if not pool:
@@ -128,7 +128,7 @@ def measure_and_choose(ranked: list[Candidate], budget_ms: float, measure: Measu
     (``rungs``); the most accurate whose measured percentile fits within budget x (1 - its guard) wins,
     so that QA's later measurement still fits (guard: fixed, or None for each candidate's own from its
     measured spread). Scores within ``tie`` points of the most accurate are tied, and of tied candidates
-    the slowest is preferred and measured first (``tied_slowest_first``). If none does, rescale
+    the slowest is preferred and measured first (``rungs``). If none does, rescale
     predictions by measured/predicted and measure rungs among those that should then fit; the smallest
     subnet only when no ranked candidate is left, and then the note names the fastest ones measured. If
     still none, the most accurate that fits the budget itself. With ``remeasure``, candidates that fit
@@ -146,7 +146,7 @@ def measure_and_choose(ranked: list[Candidate], budget_ms: float, measure: Measu
             pool = [] if last.key in done else [last]
         if not pool:
             break
-        tried += measure(rungs(tied_slowest_first(pool, tie), top, RUNG_BOTTOM * expected / (ratio or 1.0), tie), len(tried))
+        tried += measure(rungs(pool, top, RUNG_BOTTOM * expected / (ratio or 1.0), tie), len(tried))
         fitting = [t for t in tried if keeps_guard(t, budget_ms, guard)]
         if not fitting and remeasure is not None:
             fitting = _remeasure_close(tried, budget_ms, remeasure, top, guard, say)
